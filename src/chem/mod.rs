@@ -1,0 +1,1 @@
+//! Elements, masses, geometries and XYZ files. Placeholder: being written.

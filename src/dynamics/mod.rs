@@ -1,0 +1,2 @@
+//! Nuclear and electronic propagation.
+pub mod wavepacket;

@@ -1,0 +1,1 @@
+//! Exact split-operator wavepacket reference solver. Placeholder.

@@ -1,0 +1,2 @@
+//! LVC models. Placeholder.
+pub struct Lvc;

@@ -1,0 +1,3 @@
+//! One-state oscillators. Placeholder.
+pub struct Harmonic;
+pub struct Morse;

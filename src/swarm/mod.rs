@@ -1,0 +1,1 @@
+//! Ensembles of trajectories.

@@ -1,0 +1,1 @@
+//! Physical constants (CODATA 2018) and unit conversions. Placeholder: being written.
