@@ -8,6 +8,7 @@
 //! Everything inside is in atomic units; conversions live in [`units`].
 
 pub mod chem;
+pub mod cli;
 pub mod config;
 pub mod dynamics;
 pub mod electronic;

@@ -1,1 +1,379 @@
-//! Run configuration.
+//! Ensemble definitions: one TOML schema for files and `--set` overrides,
+//! validated completely before any work starts (parse, then build).
+//!
+//! Keys carry their unit in the name (`timestep_fs`, `mass_au`,
+//! `width_bohr`); inside, everything is converted to atomic units once, here.
+//! Unknown keys are errors that name the nearest valid key; every error names
+//! the file and line (or the `--set` option) and the key.
+//!
+//! The full list of keys, their units and defaults is [`SCHEMA`]; the README
+//! and `flipswarm run --help` show it.
+
+mod reader;
+pub mod suggest;
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+
+pub use reader::Reader;
+
+use crate::dynamics::{DecoherenceScheme, FrustratedHops, HopDirection, Settings};
+use crate::electronic::models::{DiabaticModel, Harmonic, Lvc, Morse, Tully, TullyModel};
+use crate::units;
+
+/// A configuration problem, located as precisely as possible.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub struct ConfigError {
+    /// File name, or `--set` for command-line overrides.
+    pub origin: String,
+    /// Line in the file, when known.
+    pub line: Option<usize>,
+    /// The key path (`dynamics.timestep_fs`), when the problem has one.
+    pub key: Option<String>,
+    /// What is wrong.
+    pub message: String,
+}
+
+impl fmt::Display for ConfigError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "{}", self.origin)?;
+        if let Some(l) = self.line {
+            write!(f, ":{l}")?;
+        }
+        if let Some(k) = &self.key {
+            write!(f, ": key `{k}`")?;
+        }
+        write!(f, ": {}", self.message)
+    }
+}
+
+/// One documented key: path, what it holds, default.
+pub struct KeyDoc {
+    /// Dotted key path.
+    pub path: &'static str,
+    /// Meaning and unit.
+    pub meaning: &'static str,
+    /// Default, or "required".
+    pub default: &'static str,
+}
+
+/// Every key an ensemble file may contain.
+pub const SCHEMA: &[KeyDoc] = &[
+    KeyDoc { path: "title", meaning: "free text describing the ensemble", default: "\"\"" },
+    KeyDoc { path: "model.kind", meaning: "back end: tully-1, tully-2, tully-3, lvc, harmonic, morse", default: "required" },
+    KeyDoc { path: "model.mass_au", meaning: "nuclear mass of 1D models, electron masses", default: "2000 (tully), 1836.15 (harmonic, morse)" },
+    KeyDoc { path: "model.file", meaning: "LVC model file (relative to the ensemble file)", default: "required for lvc" },
+    KeyDoc { path: "model.frequency_au", meaning: "harmonic angular frequency, hartree/ħ", default: "required for harmonic" },
+    KeyDoc { path: "model.depth_hartree", meaning: "Morse well depth D", default: "required for morse" },
+    KeyDoc { path: "model.range_per_bohr", meaning: "Morse range parameter a", default: "required for morse" },
+    KeyDoc { path: "model.equilibrium_bohr", meaning: "equilibrium position (harmonic centre, Morse r_e)", default: "0" },
+    KeyDoc { path: "start.sampling", meaning: "fixed (one phase-space point) or wigner (Gaussian wavepacket in 1D; harmonic ground state per mode for lvc)", default: "fixed" },
+    KeyDoc { path: "start.position_bohr", meaning: "initial position (1D models)", default: "required for 1D models" },
+    KeyDoc { path: "start.momentum_au", meaning: "initial (mean) momentum, ħ/bohr (1D models)", default: "0" },
+    KeyDoc { path: "start.width_bohr", meaning: "position standard deviation of the wavepacket |ψ|² (1D, wigner)", default: "required for 1D wigner" },
+    KeyDoc { path: "start.state", meaning: "initial adiabatic state, 0 = lowest", default: "0" },
+    KeyDoc { path: "dynamics.timestep_fs", meaning: "nuclear time step, fs (or timestep_au)", default: "required (one of the two)" },
+    KeyDoc { path: "dynamics.timestep_au", meaning: "nuclear time step, atomic units of time", default: "required (one of the two)" },
+    KeyDoc { path: "dynamics.duration_fs", meaning: "simulated time, fs (or duration_au)", default: "required (one of the two)" },
+    KeyDoc { path: "dynamics.duration_au", meaning: "simulated time, atomic units", default: "required (one of the two)" },
+    KeyDoc { path: "dynamics.substeps", meaning: "electronic substeps per nuclear step", default: "20" },
+    KeyDoc { path: "dynamics.hop_direction", meaning: "velocity adjustment at hops: coupling or velocity", default: "coupling" },
+    KeyDoc { path: "dynamics.frustrated", meaning: "frustrated hops: keep or reflect", default: "keep" },
+    KeyDoc { path: "dynamics.decoherence", meaning: "none or energy-based", default: "energy-based" },
+    KeyDoc { path: "dynamics.decoherence_constant_hartree", meaning: "C of the energy-based correction", default: "0.1" },
+    KeyDoc { path: "dynamics.max_energy_drift_ev", meaning: "total-energy change that fails a trajectory, eV", default: "0.05" },
+    KeyDoc { path: "dynamics.exit_region_bohr", meaning: "[low, high]: 1D trajectories stop once outside, moving away", default: "none" },
+    KeyDoc { path: "swarm.trajectories", meaning: "number of trajectories", default: "required" },
+    KeyDoc { path: "swarm.seed", meaning: "ensemble random seed (per-trajectory streams derive from it)", default: "required" },
+];
+
+const TABLES: &[&str] = &["model", "start", "dynamics", "swarm"];
+
+/// The model, built and validated.
+#[derive(Clone, Debug, PartialEq)]
+pub enum ModelSpec {
+    /// One of Tully's models.
+    Tully(Tully),
+    /// A linear vibronic coupling model and the file it came from.
+    Lvc { path: PathBuf, model: Lvc },
+    /// A harmonic oscillator.
+    Harmonic(Harmonic),
+    /// A Morse oscillator.
+    Morse(Morse),
+}
+
+impl ModelSpec {
+    /// Number of electronic states.
+    pub fn n_states(&self) -> usize {
+        match self {
+            ModelSpec::Tully(m) => m.n_states(),
+            ModelSpec::Lvc { model, .. } => model.n_states(),
+            ModelSpec::Harmonic(m) => m.n_states(),
+            ModelSpec::Morse(m) => m.n_states(),
+        }
+    }
+    /// Number of coordinates.
+    pub fn n_dof(&self) -> usize {
+        match self {
+            ModelSpec::Lvc { model, .. } => model.n_modes(),
+            _ => 1,
+        }
+    }
+    /// Whether this is a one-dimensional scattering-type model.
+    pub fn is_one_dimensional(&self) -> bool {
+        !matches!(self, ModelSpec::Lvc { .. })
+    }
+}
+
+/// How initial conditions are drawn.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Sampling {
+    /// Every trajectory starts at the same point.
+    Fixed { position: f64, momentum: f64 },
+    /// Wigner distribution of a Gaussian wavepacket in 1D: x ~ N(x0, σ²), p ~ N(p0, (1/2σ)²).
+    Wavepacket { position: f64, momentum: f64, width: f64 },
+    /// Harmonic ground-state Wigner distribution in every LVC mode.
+    HarmonicGround,
+    /// LVC at the reference geometry, at rest.
+    Origin,
+}
+
+/// A validated run description, atomic units.
+#[derive(Clone, Debug, PartialEq)]
+pub struct RunConfig {
+    /// Free text.
+    pub title: String,
+    /// The model.
+    pub model: ModelSpec,
+    /// Initial conditions.
+    pub sampling: Sampling,
+    /// Initial adiabatic state.
+    pub initial_state: usize,
+    /// Engine settings.
+    pub settings: Settings,
+    /// Number of trajectories.
+    pub trajectories: usize,
+    /// Ensemble seed.
+    pub seed: u64,
+    /// The configuration text after overrides (kept with the results).
+    pub effective_toml: String,
+}
+
+/// Read and validate an ensemble file with `key=value` overrides.
+pub fn load_file(path: &Path, overrides: &[String]) -> Result<RunConfig, ConfigError> {
+    let origin = path.display().to_string();
+    let text = std::fs::read_to_string(path).map_err(|e| ConfigError {
+        origin: origin.clone(),
+        line: None,
+        key: None,
+        message: format!("cannot read the ensemble file: {e}"),
+    })?;
+    let base = path.parent().unwrap_or(Path::new("."));
+    load_str(&text, &origin, base, overrides)
+}
+
+/// Validate ensemble text; relative model files are resolved against `base`.
+pub fn load_str(text: &str, origin: &str, base: &Path, overrides: &[String]) -> Result<RunConfig, ConfigError> {
+    let r = Reader::parse(text, origin, overrides)?;
+    check_keys(&r)?;
+    let model = build_model(&r, base)?;
+    let n_states = model.n_states();
+    let initial_state = r.u64("start.state")?.unwrap_or(0) as usize;
+    if initial_state >= n_states {
+        return Err(r.error(
+            "start.state",
+            format!("state {initial_state} does not exist: the model has {n_states} state(s), numbered 0–{}", n_states - 1),
+        ));
+    }
+    let sampling = build_sampling(&r, &model)?;
+    let settings = build_settings(&r, &model, &sampling)?;
+    let trajectories = r.u64("swarm.trajectories")?.ok_or_else(|| r.error("swarm.trajectories", "missing (how many trajectories to run)"))?;
+    if trajectories == 0 || trajectories > 10_000_000 {
+        return Err(r.error("swarm.trajectories", format!("must be between 1 and 10 000 000, found {trajectories}")));
+    }
+    let seed = r.u64("swarm.seed")?.ok_or_else(|| r.error("swarm.seed", "missing (the ensemble seed makes runs reproducible)"))?;
+    Ok(RunConfig {
+        title: r.string("title")?.unwrap_or_default(),
+        model,
+        sampling,
+        initial_state,
+        settings,
+        trajectories: trajectories as usize,
+        seed,
+        effective_toml: r.effective_text(),
+    })
+}
+
+fn check_keys(r: &Reader) -> Result<(), ConfigError> {
+    let known: Vec<&str> = SCHEMA.iter().map(|k| k.path).collect();
+    for (path, is_table) in r.all_keys() {
+        let ok = if is_table { TABLES.contains(&path.as_str()) } else { known.contains(&path.as_str()) };
+        if ok {
+            continue;
+        }
+        let leaf = path.rsplit('.').next().unwrap_or(&path);
+        // Nearest by full path, then by the last component anywhere.
+        let hint = suggest::nearest(&path, known.iter().copied().chain(TABLES.iter().copied()))
+            .or_else(|| {
+                let by_leaf = known.iter().copied().map(|k| (k, k.rsplit('.').next().unwrap_or(k)));
+                by_leaf
+                    .map(|(k, l)| (suggest::distance(leaf, l), k))
+                    .filter(|(d, _)| *d <= (leaf.len() / 2).max(2))
+                    .min_by_key(|(d, _)| *d)
+                    .map(|(_, k)| k)
+            })
+            .map(|k| format!("; did you mean `{k}`?"))
+            .unwrap_or_else(|| "; see `flipswarm keys` for the valid keys".into());
+        let what = if is_table { "unknown table" } else { "unknown key" };
+        return Err(r.error(&path, format!("{what}{hint}")));
+    }
+    Ok(())
+}
+
+fn positive(r: &Reader, key: &str) -> Result<Option<f64>, ConfigError> {
+    match r.f64(key)? {
+        Some(x) if x <= 0.0 => Err(r.error(key, format!("must be positive, found {x}"))),
+        other => Ok(other),
+    }
+}
+
+fn require<T>(r: &Reader, key: &str, v: Option<T>, why: &str) -> Result<T, ConfigError> {
+    v.ok_or_else(|| r.error(key, format!("missing ({why})")))
+}
+
+/// Keys that only some model kinds use; any other kind rejects them.
+const MODEL_KEYS: &[(&str, &[&str])] = &[
+    ("model.mass_au", &["tully-1", "tully-2", "tully-3", "harmonic", "morse"]),
+    ("model.file", &["lvc"]),
+    ("model.frequency_au", &["harmonic"]),
+    ("model.depth_hartree", &["morse"]),
+    ("model.range_per_bohr", &["morse"]),
+    ("model.equilibrium_bohr", &["harmonic", "morse"]),
+];
+
+fn build_model(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
+    let kinds = ["tully-1", "tully-2", "tully-3", "lvc", "harmonic", "morse"];
+    let kind = r.choice("model.kind", &kinds)?.ok_or_else(|| r.error("model.kind", "missing (which model to run)"))?;
+    for (key, users) in MODEL_KEYS {
+        if r.has(key) && !users.contains(&kind.as_str()) {
+            return Err(r.error(key, format!("not used by model kind \"{kind}\" (only by {})", users.join(", "))));
+        }
+    }
+    let proton_mass = units::amu_to_me(1.007_276_466_621);
+    let mass = positive(r, "model.mass_au")?;
+    let centre = r.f64("model.equilibrium_bohr")?.unwrap_or(0.0);
+    Ok(match kind.as_str() {
+        "tully-1" | "tully-2" | "tully-3" => {
+            let which = match kind.as_str() {
+                "tully-1" => TullyModel::SimpleAvoidedCrossing,
+                "tully-2" => TullyModel::DualAvoidedCrossing,
+                _ => TullyModel::ExtendedCoupling,
+            };
+            ModelSpec::Tully(Tully { model: which, mass: mass.unwrap_or(2000.0) })
+        }
+        "lvc" => {
+            let file = r.string("model.file")?.ok_or_else(|| r.error("model.file", "missing (the LVC model file)"))?;
+            let path = base.join(&file);
+            let model = Lvc::from_file(&path).map_err(|e| r.error("model.file", e.to_string()))?;
+            ModelSpec::Lvc { path, model }
+        }
+        "harmonic" => {
+            let w = require(r, "model.frequency_au", positive(r, "model.frequency_au")?, "the angular frequency")?;
+            ModelSpec::Harmonic(Harmonic { masses: vec![mass.unwrap_or(proton_mass)], omegas: vec![w], centres: vec![centre] })
+        }
+        _ => {
+            let depth = require(r, "model.depth_hartree", positive(r, "model.depth_hartree")?, "the well depth")?;
+            let alpha = require(r, "model.range_per_bohr", positive(r, "model.range_per_bohr")?, "the range parameter")?;
+            ModelSpec::Morse(Morse { mass: mass.unwrap_or(proton_mass), depth, alpha, r_eq: centre })
+        }
+    })
+}
+
+fn build_sampling(r: &Reader, model: &ModelSpec) -> Result<Sampling, ConfigError> {
+    let kind = r.choice("start.sampling", &["fixed", "wigner"])?.unwrap_or_else(|| "fixed".into());
+    if !model.is_one_dimensional() {
+        for key in ["start.position_bohr", "start.momentum_au", "start.width_bohr"] {
+            if r.has(key) {
+                return Err(r.error(key, "not used by LVC models (they start from their reference geometry or its Wigner distribution)"));
+            }
+        }
+        return Ok(if kind == "wigner" { Sampling::HarmonicGround } else { Sampling::Origin });
+    }
+    let position = require(r, "start.position_bohr", r.f64("start.position_bohr")?, "where the trajectories start")?;
+    let momentum = r.f64("start.momentum_au")?.unwrap_or(0.0);
+    let width = positive(r, "start.width_bohr")?;
+    match (kind.as_str(), width) {
+        ("fixed", Some(_)) => Err(r.error("start.width_bohr", "only used with sampling = \"wigner\"")),
+        ("fixed", None) => Ok(Sampling::Fixed { position, momentum }),
+        (_, None) => Err(r.error("start.width_bohr", "missing (the wavepacket width is needed for sampling = \"wigner\")")),
+        (_, Some(width)) => Ok(Sampling::Wavepacket { position, momentum, width }),
+    }
+}
+
+fn one_of(r: &Reader, fs_key: &str, au_key: &str, what: &str) -> Result<f64, ConfigError> {
+    match (positive(r, fs_key)?, positive(r, au_key)?) {
+        (Some(_), Some(_)) => Err(r.error(au_key, format!("give the {what} once: both `{fs_key}` and `{au_key}` are set"))),
+        (Some(fs), None) => Ok(units::fs_to_au(fs)),
+        (None, Some(au)) => Ok(au),
+        (None, None) => Err(r.error(fs_key, format!("missing (the {what}, as `{fs_key}` or `{au_key}`)"))),
+    }
+}
+
+fn build_settings(r: &Reader, model: &ModelSpec, sampling: &Sampling) -> Result<Settings, ConfigError> {
+    let dt = one_of(r, "dynamics.timestep_fs", "dynamics.timestep_au", "time step")?;
+    let duration = one_of(r, "dynamics.duration_fs", "dynamics.duration_au", "simulated time")?;
+    if duration < dt {
+        let key = if r.has("dynamics.duration_fs") { "dynamics.duration_fs" } else { "dynamics.duration_au" };
+        return Err(r.error(key, "shorter than one time step"));
+    }
+    let steps = duration / dt;
+    if steps > 1e9 {
+        let key = if r.has("dynamics.timestep_fs") { "dynamics.timestep_fs" } else { "dynamics.timestep_au" };
+        return Err(r.error(key, format!("{steps:.3e} steps per trajectory is more than 10⁹; lengthen the time step or shorten the run")));
+    }
+    let substeps = r.u64("dynamics.substeps")?.unwrap_or(20);
+    if !(1..=100_000).contains(&substeps) {
+        return Err(r.error("dynamics.substeps", format!("must be between 1 and 100 000, found {substeps}")));
+    }
+    let hop_direction = match r.choice("dynamics.hop_direction", &["coupling", "velocity"])?.as_deref() {
+        Some("velocity") => HopDirection::Velocity,
+        _ => HopDirection::Coupling,
+    };
+    let frustrated = match r.choice("dynamics.frustrated", &["keep", "reflect"])?.as_deref() {
+        Some("reflect") => FrustratedHops::Reflect,
+        _ => FrustratedHops::Keep,
+    };
+    let c = positive(r, "dynamics.decoherence_constant_hartree")?.unwrap_or(0.1);
+    let decoherence = match r.choice("dynamics.decoherence", &["none", "energy-based"])?.as_deref() {
+        Some("none") => DecoherenceScheme::None,
+        _ => DecoherenceScheme::EnergyBased { c },
+    };
+    let drift = units::ev_to_hartree(positive(r, "dynamics.max_energy_drift_ev")?.unwrap_or(0.05));
+    let exit_region = r.pair("dynamics.exit_region_bohr")?;
+    if let Some((lo, hi)) = exit_region {
+        let key = "dynamics.exit_region_bohr";
+        if !model.is_one_dimensional() {
+            return Err(r.error(key, "only one-dimensional models have an exit region"));
+        }
+        if lo >= hi {
+            return Err(r.error(key, format!("low end {lo} is not below high end {hi}")));
+        }
+        let x0 = match sampling {
+            Sampling::Fixed { position, .. } | Sampling::Wavepacket { position, .. } => *position,
+            _ => 0.0,
+        };
+        if x0 < lo || x0 > hi {
+            return Err(r.error(key, format!("the start position {x0} bohr lies outside [{lo}, {hi}]: every trajectory would stop at once")));
+        }
+    }
+    Ok(Settings {
+        dt,
+        substeps: substeps as usize,
+        max_time: duration,
+        hop_direction,
+        frustrated,
+        decoherence,
+        energy_drift_limit: drift,
+        exit_region,
+    })
+}

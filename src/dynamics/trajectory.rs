@@ -1,0 +1,381 @@
+//! One surface-hopping trajectory: the step loop of the engine.
+//!
+//! Each step: velocity Verlet on the active state; the back end at the new
+//! geometry (energies, active-state gradient, overlaps with the previous
+//! step); phase alignment and the step coupling T from the overlaps; the
+//! amplitudes over the step with fewest-switches probabilities; a hop test
+//! with one uniform number; momentum adjustment or frustrated-hop handling;
+//! the decoherence correction; stop conditions. Observers see every step.
+
+use num_complex::Complex64;
+use rand::Rng;
+use rand_chacha::ChaCha20Rng;
+use serde::{Deserialize, Serialize};
+
+use super::amplitudes::{align_phases, StepCoupling};
+use super::decoherence::{Decoherence, DecoherenceScheme};
+use super::hopping::{adjust_velocity, choose_target, kinetic_energy, reflect_velocity, FrustratedHops, HopDirection};
+use super::verlet;
+use crate::electronic::{Backend, BackendError, Request};
+
+/// Validated engine settings, atomic units.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Settings {
+    /// Nuclear time step (a.u. of time).
+    pub dt: f64,
+    /// Electronic substeps per nuclear step.
+    pub substeps: usize,
+    /// Stop at this time (a.u.).
+    pub max_time: f64,
+    /// Velocity adjustment direction at hops.
+    pub hop_direction: HopDirection,
+    /// Frustrated-hop treatment.
+    pub frustrated: FrustratedHops,
+    /// Decoherence correction.
+    pub decoherence: DecoherenceScheme,
+    /// A total-energy change beyond this (hartree) fails the trajectory.
+    pub energy_drift_limit: f64,
+    /// For one-dimensional models: stop once the coordinate is outside
+    /// [min, max] and moving away.
+    pub exit_region: Option<(f64, f64)>,
+}
+
+/// Why a trajectory ended normally.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub enum EndReason {
+    /// Reached the configured time.
+    TimeLimit,
+    /// Left the interaction region at the low side (reflection in 1D).
+    ExitLow,
+    /// Left the interaction region at the high side (transmission in 1D).
+    ExitHigh,
+    /// An observer asked to stop.
+    Observer,
+}
+
+/// Trajectory status (design §5).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub enum Status {
+    /// Still running.
+    Running,
+    /// Ended normally.
+    Finished(EndReason),
+    /// Ended by an error at `step`.
+    Failed { step: u64, reason: String },
+}
+
+/// A hop attempt that happened at the end of a step.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Hop {
+    /// Step number (after the step completed).
+    pub step: u64,
+    /// Time (a.u.).
+    pub time: f64,
+    /// Active state before.
+    pub from: usize,
+    /// Target state.
+    pub to: usize,
+    /// Whether the hop happened (false: frustrated).
+    pub accepted: bool,
+    /// E_to − E_from (hartree).
+    pub gap: f64,
+    /// Nuclear kinetic energy before and after (hartree).
+    pub kinetic_before: f64,
+    /// Nuclear kinetic energy after the hop (or the frustrated-hop treatment).
+    pub kinetic_after: f64,
+}
+
+/// Everything needed to continue a trajectory exactly (with the back end's
+/// snapshot). Serialisable, so checkpoints are exact.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct TrajectoryState {
+    /// Steps done.
+    pub step: u64,
+    /// Time reached (a.u.).
+    pub time: f64,
+    /// Coordinates (bohr or the model's own).
+    pub q: Vec<f64>,
+    /// Velocities (a.u.).
+    pub v: Vec<f64>,
+    /// Active state.
+    pub active: usize,
+    /// Electronic amplitudes in the phase-aligned adiabatic basis.
+    pub amplitudes: Vec<Complex64>,
+    /// Adiabatic energies at `q` (hartree).
+    pub energies: Vec<f64>,
+    /// Gradient of the active state at `q` (hartree/bohr).
+    pub gradient: Vec<f64>,
+    /// Accumulated ±1 phases that align the back end's states with the
+    /// trajectory's continuous basis.
+    pub phases: Vec<f64>,
+    /// Total energy at the start (hartree).
+    pub initial_total_energy: f64,
+    /// The hopping generator.
+    pub rng: ChaCha20Rng,
+    /// Status.
+    pub status: Status,
+}
+
+impl TrajectoryState {
+    /// Nuclear kinetic energy.
+    pub fn kinetic(&self, masses: &[f64]) -> f64 {
+        kinetic_energy(&self.v, masses)
+    }
+    /// Potential energy of the active state.
+    pub fn potential(&self) -> f64 {
+        self.energies[self.active]
+    }
+    /// Quantum populations |c_j|².
+    pub fn populations(&self) -> Vec<f64> {
+        self.amplitudes.iter().map(|c| c.norm_sqr()).collect()
+    }
+}
+
+/// Where in the run a record comes from.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum RecordKind {
+    /// The initial point, before the first step.
+    Start,
+    /// After a completed step.
+    Step,
+    /// The trajectory ended (the state is the last step's, seen again with its final status).
+    End,
+}
+
+/// What an observer sees after each step.
+pub struct StepRecord<'a> {
+    /// Start, step or end.
+    pub kind: RecordKind,
+    /// The state after the step.
+    pub state: &'a TrajectoryState,
+    /// Masses of the coordinates.
+    pub masses: &'a [f64],
+    /// A hop attempt in this step.
+    pub hop: Option<&'a Hop>,
+}
+
+/// Whether the run goes on.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Flow {
+    /// Keep going.
+    Continue,
+    /// Stop cleanly (resumable).
+    Stop,
+}
+
+/// Observers attach to a run (writers, recorders, checkpointers).
+pub trait Observer {
+    /// Called for the initial point, after every step, and once at the end.
+    fn observe(&mut self, record: &StepRecord) -> Result<Flow, String>;
+}
+
+impl Observer for () {
+    fn observe(&mut self, _: &StepRecord) -> Result<Flow, String> {
+        Ok(Flow::Continue)
+    }
+}
+
+/// A trajectory bound to its back end.
+pub struct Trajectory<'b> {
+    backend: &'b mut dyn Backend,
+    settings: Settings,
+    masses: Vec<f64>,
+    /// Current state.
+    pub state: TrajectoryState,
+    /// Hop attempts so far (accepted and frustrated) in this session.
+    pub hops: Vec<Hop>,
+}
+
+impl<'b> Trajectory<'b> {
+    /// Start from positions, velocities and an active state (amplitude 1 on it).
+    pub fn start(
+        backend: &'b mut dyn Backend,
+        settings: Settings,
+        q: Vec<f64>,
+        v: Vec<f64>,
+        active: usize,
+        rng: ChaCha20Rng,
+    ) -> Result<Self, BackendError> {
+        let info = backend.info();
+        let n = info.n_states;
+        if active >= n {
+            return Err(BackendError::NoSuchState { state: active, n_states: n });
+        }
+        let res = backend.compute(&q, &Request::gradient_of(active))?;
+        let energies = res.energies.clone();
+        let gradient = res.gradient(active).expect("requested").to_vec();
+        let mut amplitudes = vec![Complex64::new(0.0, 0.0); n];
+        amplitudes[active] = Complex64::new(1.0, 0.0);
+        let e0 = kinetic_energy(&v, &info.masses) + energies[active];
+        let state = TrajectoryState {
+            step: 0,
+            time: 0.0,
+            q,
+            v,
+            active,
+            amplitudes,
+            energies,
+            gradient,
+            phases: vec![1.0; n],
+            initial_total_energy: e0,
+            rng,
+            status: Status::Running,
+        };
+        Ok(Self { backend, settings, masses: info.masses, state, hops: Vec::new() })
+    }
+
+    /// Continue from a saved state; the back end must already hold the
+    /// matching snapshot.
+    pub fn resume(backend: &'b mut dyn Backend, settings: Settings, state: TrajectoryState) -> Self {
+        let masses = backend.info().masses;
+        Self { backend, settings, masses, state, hops: Vec::new() }
+    }
+
+    /// Masses of the coordinates.
+    pub fn masses(&self) -> &[f64] {
+        &self.masses
+    }
+
+    /// The back end (for snapshots).
+    pub fn backend(&self) -> &dyn Backend {
+        &*self.backend
+    }
+
+    /// One nuclear step. Returns the hop attempt, if any.
+    pub fn step(&mut self) -> Result<Option<Hop>, BackendError> {
+        let dt = self.settings.dt;
+        let s = &mut self.state;
+        verlet::kick_drift(&mut s.q, &mut s.v, &s.gradient, &self.masses, dt);
+        let n = s.amplitudes.len();
+        let req = Request { gradients: vec![s.active], overlaps: n > 1, couplings: false };
+        let res = self.backend.compute(&s.q, &req)?;
+        let gradient = res.gradient(s.active).expect("requested").to_vec();
+        verlet::kick(&mut s.v, &gradient, &self.masses, dt);
+        let new_energies = res.energies.clone();
+
+        let coupling = match (&res.overlaps, n > 1) {
+            (Some(raw), true) => {
+                let (aligned, mut phases) = align_phases(raw, &s.phases);
+                let c = StepCoupling::from_overlaps(&aligned, &mut phases, dt, self.settings.substeps)
+                    .map_err(|e| BackendError::Failed(e.to_string()))?;
+                s.phases = phases;
+                c
+            }
+            _ => StepCoupling::none(n),
+        };
+        let g = coupling.propagate(&mut s.amplitudes, &s.energies, &new_energies, dt, self.settings.substeps, s.active);
+        s.energies = new_energies;
+        s.gradient = gradient;
+        s.step += 1;
+        s.time = s.step as f64 * dt;
+
+        // One uniform number per step, drawn whether or not a hop is possible,
+        // so the generator's stream does not depend on the amplitudes.
+        let xi: f64 = s.rng.gen();
+        let hop = match choose_target(&g, s.active, xi) {
+            Some(target) => Some(self.attempt_hop(target)?),
+            None => None,
+        };
+        let s = &mut self.state;
+        let kinetic = kinetic_energy(&s.v, &self.masses);
+        self.settings.decoherence.apply(&mut s.amplitudes, s.active, &s.energies, kinetic, dt);
+        if let Some(h) = &hop {
+            self.hops.push(h.clone());
+        }
+        Ok(hop)
+    }
+
+    fn attempt_hop(&mut self, target: usize) -> Result<Hop, BackendError> {
+        let s = &mut self.state;
+        let from = s.active;
+        let gap = s.energies[target] - s.energies[from];
+        let kinetic_before = kinetic_energy(&s.v, &self.masses);
+        let direction: Vec<f64> = match self.settings.hop_direction {
+            HopDirection::Velocity => s.v.iter().zip(&self.masses).map(|(v, m)| m * v).collect(),
+            HopDirection::Coupling => {
+                let req = Request { couplings: true, ..Request::default() };
+                let res = self.backend.compute(&s.q, &req)?;
+                res.couplings.as_ref().expect("requested").get(from, target)
+            }
+        };
+        let accepted = adjust_velocity(&mut s.v, &self.masses, &direction, gap);
+        if accepted {
+            s.active = target;
+            let res = self.backend.compute(&s.q, &Request::gradient_of(target))?;
+            s.gradient = res.gradient(target).expect("requested").to_vec();
+        } else if self.settings.frustrated == FrustratedHops::Reflect {
+            reflect_velocity(&mut s.v, &self.masses, &direction);
+        }
+        Ok(Hop {
+            step: s.step,
+            time: s.time,
+            from,
+            to: target,
+            accepted,
+            gap,
+            kinetic_before,
+            kinetic_after: kinetic_energy(&s.v, &self.masses),
+        })
+    }
+
+    /// Why the trajectory should stop now, if it should.
+    fn stop_reason(&self) -> Option<Status> {
+        let s = &self.state;
+        let etot = kinetic_energy(&s.v, &self.masses) + s.potential();
+        let drift = etot - s.initial_total_energy;
+        if !(drift.abs() <= self.settings.energy_drift_limit) {
+            return Some(Status::Failed {
+                step: s.step,
+                reason: format!(
+                    "total energy drifted by {drift:.3e} hartree (limit {:.3e}); reduce the time step",
+                    self.settings.energy_drift_limit
+                ),
+            });
+        }
+        if let Some((lo, hi)) = self.settings.exit_region {
+            if s.q[0] < lo && s.v[0] < 0.0 {
+                return Some(Status::Finished(EndReason::ExitLow));
+            }
+            if s.q[0] > hi && s.v[0] > 0.0 {
+                return Some(Status::Finished(EndReason::ExitHigh));
+            }
+        }
+        if s.time >= self.settings.max_time - 1e-9 * self.settings.dt {
+            return Some(Status::Finished(EndReason::TimeLimit));
+        }
+        None
+    }
+
+    /// Run until a stop condition, an error or an observer's stop. Errors of
+    /// the back end end the trajectory as `Failed` (they are values, never
+    /// panics); an observer's error is returned as `Err` after marking the
+    /// state failed.
+    pub fn run(&mut self, observer: &mut dyn Observer) -> Result<&Status, String> {
+        if self.state.step == 0 && self.state.status == Status::Running {
+            let flow = observer.observe(&StepRecord { kind: RecordKind::Start, state: &self.state, masses: &self.masses, hop: None })?;
+            if flow == Flow::Stop {
+                return Ok(&self.state.status);
+            }
+        }
+        while self.state.status == Status::Running {
+            if let Some(status) = self.stop_reason() {
+                self.state.status = status;
+                break;
+            }
+            let hop = match self.step() {
+                Ok(h) => h,
+                Err(e) => {
+                    self.state.status = Status::Failed { step: self.state.step, reason: e.to_string() };
+                    break;
+                }
+            };
+            let flow = observer.observe(&StepRecord { kind: RecordKind::Step, state: &self.state, masses: &self.masses, hop: hop.as_ref() })?;
+            if flow == Flow::Stop {
+                return Ok(&self.state.status);
+            }
+        }
+        // The final status is reported once more, so writers see it.
+        observer.observe(&StepRecord { kind: RecordKind::End, state: &self.state, masses: &self.masses, hop: None })?;
+        Ok(&self.state.status)
+    }
+}
