@@ -212,12 +212,19 @@ fn check_keys(r: &Reader) -> Result<(), ConfigError> {
             continue;
         }
         let leaf = path.rsplit('.').next().unwrap_or(&path);
-        // Nearest by full path, then by the last component anywhere.
-        let hint = suggest::nearest(&path, known.iter().copied().chain(TABLES.iter().copied()))
+        let leaf_of = |k: &'static str| k.rsplit('.').next().unwrap_or(k);
+        let same_kind: Vec<&str> = if is_table { TABLES.to_vec() } else { known.clone() };
+        // The right key in the wrong table first, then the nearest spelling.
+        let hint = same_kind
+            .iter()
+            .copied()
+            .find(|k| leaf_of(k) == leaf)
+            .or_else(|| suggest::nearest(&path, same_kind.iter().copied()))
             .or_else(|| {
-                let by_leaf = known.iter().copied().map(|k| (k, k.rsplit('.').next().unwrap_or(k)));
-                by_leaf
-                    .map(|(k, l)| (suggest::distance(leaf, l), k))
+                same_kind
+                    .iter()
+                    .copied()
+                    .map(|k| (suggest::distance(leaf, leaf_of(k)), k))
                     .filter(|(d, _)| *d <= (leaf.len() / 2).max(2))
                     .min_by_key(|(d, _)| *d)
                     .map(|(_, k)| k)
