@@ -6,7 +6,7 @@ use clap::Args;
 
 use super::exit;
 use crate::config;
-use crate::swarm::{self, Summary};
+use crate::swarm::{self, PopulationCurves, Summary};
 
 /// Arguments of `flipswarm run`.
 #[derive(Debug, Args)]
@@ -23,6 +23,11 @@ pub struct RunArgs {
     /// Print the summary as JSON on standard output.
     #[arg(long)]
     pub json: bool,
+    /// Write ensemble-averaged population curves (time in fs; fraction of
+    /// trajectories and mean |c|² per state) to this CSV file. An existing
+    /// file is not overwritten.
+    #[arg(long, value_name = "CSV")]
+    pub populations: Option<PathBuf>,
 }
 
 /// Execute; returns the exit code.
@@ -34,6 +39,12 @@ pub fn execute(args: &RunArgs) -> i32 {
             return exit::INPUT;
         }
     };
+    if let Some(p) = &args.populations {
+        if p.exists() {
+            eprintln!("error: {} exists; choose another name or remove it first", p.display());
+            return exit::INPUT;
+        }
+    }
     tracing::info!(
         "ensemble {}: {} trajectories, model {}, {} states, time step {:.4} a.u., {} steps at most",
         args.ensemble.display(),
@@ -51,6 +62,14 @@ pub fn execute(args: &RunArgs) -> i32 {
         }
     };
     let summary = Summary::new(&cfg, &outcomes);
+    if let Some(p) = &args.populations {
+        let curves = PopulationCurves::new(&cfg, &outcomes, swarm::record_interval(&cfg));
+        if let Err(e) = std::fs::write(p, curves.to_csv()) {
+            eprintln!("error: cannot write {}: {e}", p.display());
+            return exit::RUNTIME;
+        }
+        tracing::info!("population curves written to {}", p.display());
+    }
     if args.json {
         match serde_json::to_string_pretty(&summary) {
             Ok(s) => println!("{s}"),

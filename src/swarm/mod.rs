@@ -17,7 +17,7 @@ use rand_chacha::ChaCha20Rng;
 use rand_distr::{Distribution, Normal};
 use rayon::prelude::*;
 
-pub use summary::{Channel, ChannelEstimate, Summary};
+pub use summary::{Channel, ChannelEstimate, PopulationCurves, Summary};
 
 use crate::config::{ModelSpec, RunConfig, Sampling};
 use crate::dynamics::{Flow, Hop, Observer, RecordKind, Status, StepRecord, Trajectory};
@@ -173,11 +173,14 @@ pub fn run_indices(cfg: &RunConfig, indices: &[usize], threads: usize, record_ev
     Ok(outcomes)
 }
 
+/// How often (in steps) populations are recorded: about 200 points per curve.
+pub fn record_interval(cfg: &RunConfig) -> u64 {
+    let steps = (cfg.settings.max_time / cfg.settings.dt).ceil().max(1.0) as u64;
+    (steps / 200).max(1)
+}
+
 /// Run the whole ensemble.
 pub fn run(cfg: &RunConfig, threads: usize) -> Result<Vec<Outcome>, rayon::ThreadPoolBuildError> {
     let indices: Vec<usize> = (0..cfg.trajectories).collect();
-    let steps = (cfg.settings.max_time / cfg.settings.dt).ceil().max(1.0) as u64;
-    // About 200 points per population curve.
-    let every = (steps / 200).max(1);
-    run_indices(cfg, &indices, threads, every)
+    run_indices(cfg, &indices, threads, record_interval(cfg))
 }

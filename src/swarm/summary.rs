@@ -164,3 +164,65 @@ fn channel_of(status: &Status) -> Option<Channel> {
         _ => None,
     }
 }
+
+/// Ensemble-averaged population curves.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct PopulationCurves {
+    /// Times (a.u.).
+    pub times: Vec<f64>,
+    /// Fraction of trajectories on each state: `fractions[t][state]`.
+    pub fractions: Vec<Vec<f64>>,
+    /// Mean |c|² of each state: `populations[t][state]`.
+    pub populations: Vec<Vec<f64>>,
+    /// Trajectories contributing.
+    pub trajectories: usize,
+}
+
+impl PopulationCurves {
+    /// Average the recorded series of the finished trajectories; a trajectory
+    /// that ended before the others (left a 1D interaction region) keeps its
+    /// last values.
+    pub fn new(cfg: &RunConfig, outcomes: &[Outcome], record_every: u64) -> Self {
+        let n_states = cfg.model.n_states();
+        let ok: Vec<&Outcome> = outcomes
+            .iter()
+            .filter(|o| matches!(o.status, Status::Finished(_)) && !o.series.is_empty())
+            .collect();
+        let len = ok.iter().map(|o| o.series.len()).max().unwrap_or(0);
+        let mut fractions = vec![vec![0.0; n_states]; len];
+        let mut populations = vec![vec![0.0; n_states]; len];
+        let w = 1.0 / ok.len().max(1) as f64;
+        for o in &ok {
+            for t in 0..len {
+                let (active, pops) = &o.series[t.min(o.series.len() - 1)];
+                fractions[t][*active] += w;
+                for (p, x) in populations[t].iter_mut().zip(pops) {
+                    *p += w * x;
+                }
+            }
+        }
+        let times = (0..len).map(|t| t as f64 * record_every as f64 * cfg.settings.dt).collect();
+        Self { times, fractions, populations, trajectories: ok.len() }
+    }
+
+    /// CSV text: time in fs, then fraction and mean |c|² per state.
+    pub fn to_csv(&self) -> String {
+        let n = self.fractions.first().map_or(0, Vec::len);
+        let mut s = String::from("time_fs");
+        for k in 0..n {
+            s.push_str(&format!(",fraction_{k}"));
+        }
+        for k in 0..n {
+            s.push_str(&format!(",population_{k}"));
+        }
+        s.push('\n');
+        for (t, time) in self.times.iter().enumerate() {
+            s.push_str(&format!("{:.6}", crate::units::au_to_fs(*time)));
+            for x in self.fractions[t].iter().chain(&self.populations[t]) {
+                s.push_str(&format!(",{x:.6}"));
+            }
+            s.push('\n');
+        }
+        s
+    }
+}

@@ -1,0 +1,39 @@
+# Shared set-up for scripts/demo, scripts/check and scripts/bench.
+# Installs only what is missing, from Debian packages and the Rust toolchain
+# already on the machine; nothing is downloaded from anywhere else.
+set -euo pipefail
+
+ROOT="$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)"
+export CARGO_TERM_COLOR="${CARGO_TERM_COLOR:-never}"
+
+say() { printf '==> %s\n' "$*"; }
+
+# need_debian PACKAGE...: install the Debian packages that are not installed.
+need_debian() {
+    local missing=()
+    for p in "$@"; do
+        dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "install ok installed" || missing+=("$p")
+    done
+    [ ${#missing[@]} -eq 0 ] && return 0
+    say "installing Debian packages: ${missing[*]}"
+    local sudo=""
+    [ "$(id -u)" -ne 0 ] && sudo="sudo"
+    $sudo apt-get update -qq
+    DEBIAN_FRONTEND=noninteractive $sudo apt-get install -y -qq --no-install-recommends "${missing[@]}"
+}
+
+# need_rust: cargo must be on PATH (Debian's cargo package is the fallback).
+need_rust() {
+    if ! command -v cargo >/dev/null 2>&1; then
+        [ -x "$HOME/.cargo/bin/cargo" ] && export PATH="$HOME/.cargo/bin:$PATH"
+    fi
+    if ! command -v cargo >/dev/null 2>&1; then
+        need_debian cargo rustc
+    fi
+    say "$(cargo --version)"
+}
+
+# The system libraries the crate links against.
+need_system_libraries() {
+    need_debian pkg-config gcc
+}
