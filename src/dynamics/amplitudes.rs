@@ -53,6 +53,11 @@ pub struct StepCoupling {
     pub t: DMatrix<f64>,
     /// exp(−T h) for the substep length h it was built for.
     propagator: DMatrix<f64>,
+    /// For two states, exp(−T h) as three shears (tan(α/2), sin α) of the
+    /// rotation angle α = −θh/Δt: an exactly area-preserving map whose
+    /// eigenvalues lie on the unit circle in floating point too, so repeated
+    /// application cannot make the norm drift.
+    shears: Option<(f64, f64)>,
     /// Smallest singular value of the overlap before orthonormalisation.
     pub min_singular_value: f64,
 }
@@ -115,7 +120,7 @@ impl StepCoupling {
             phases[j] = -phases[j];
         }
         let (t, propagator) = log_and_power(&s, dt, h);
-        Ok(Self { t, propagator, min_singular_value: min_sv })
+        Ok(Self { t, propagator, shears: None, min_singular_value: min_sv })
     }
 
     /// Closed form for two states: the nearest rotation to S has angle
@@ -135,17 +140,18 @@ impl StepCoupling {
         let theta = (s[(1, 0)] - s[(0, 1)]).atan2(s[(0, 0)] + s[(1, 1)]);
         let w = theta / dt;
         let t = DMatrix::from_row_slice(2, 2, &[0.0, -w, w, 0.0]);
-        let (sn, cs) = (w * h).sin_cos();
-        let r = sn.hypot(cs);
-        let (sn, cs) = (sn / r, cs / r);
-        // exp(−T h) is the rotation by −θ h/Δt.
-        let propagator = DMatrix::from_row_slice(2, 2, &[cs, sn, -sn, cs]);
-        Ok(Self { t, propagator, min_singular_value: sv_min })
+        let alpha = -w * h;
+        let (sn, cs) = alpha.sin_cos();
+        // exp(−T h) is the rotation by α = −θ h/Δt.
+        let propagator = DMatrix::from_row_slice(2, 2, &[cs, -sn, sn, cs]);
+        // Shears only for moderate angles (tan(α/2) grows without bound near π).
+        let shears = (alpha.abs() < 1.0).then(|| ((0.5 * alpha).tan(), sn));
+        Ok(Self { t, propagator, shears, min_singular_value: sv_min })
     }
 
     /// No coupling (one state, or a step with no overlap information).
     pub fn none(n: usize) -> Self {
-        Self { t: DMatrix::zeros(n, n), propagator: DMatrix::identity(n, n), min_singular_value: 1.0 }
+        Self { t: DMatrix::zeros(n, n), propagator: DMatrix::identity(n, n), shears: None, min_singular_value: 1.0 }
     }
 
     /// Propagate `c` over the step with energies varying linearly from `e0`
@@ -157,33 +163,20 @@ impl StepCoupling {
         let mut g = vec![0.0; n];
         let mut work = vec![Complex64::new(0.0, 0.0); n];
         let energy = |j: usize, tau: f64| e0[j] + (e1[j] - e0[j]) * (tau / dt);
-        // Half of the diagonal phase: the exact integral of a linear E over
-        // [τ, τ + h/2] is (h/2)·E(τ + h/4), and over [τ + h/2, τ + h] it is
-        // (h/2)·E(τ + 3h/4). Both advance by the same factor from one substep
-        // to the next, so they are updated by multiplication (no sin/cos in
-        // the loop).
-        let mut first: Vec<Complex64> = (0..n).map(|j| Complex64::from_polar(1.0, -0.5 * h * energy(j, 0.25 * h))).collect();
-        let mut second: Vec<Complex64> = (0..n).map(|j| Complex64::from_polar(1.0, -0.5 * h * energy(j, 0.75 * h))).collect();
-        let advance: Vec<Complex64> = (0..n).map(|j| Complex64::from_polar(1.0, -0.5 * h * h * (e1[j] - e0[j]) / dt)).collect();
+        // Consecutive half phases merge: for a linear E the second half of
+        // substep m and the first half of substep m + 1 together give
+        // exp(−i h E((m+1)h)). So the step is
+        //   P(h/4) R D(h) R D(2h) … R P(Δt − h/4),
+        // with half phases P(τ) = exp(−i (h/2) E(τ)) at the ends and full
+        // phases D(τ) = exp(−i h E(τ)) between the rotations R = exp(−T h).
+        // D advances by a constant factor from one substep to the next.
+        let mut phase: Vec<Complex64> = (0..n).map(|j| Complex64::from_polar(1.0, -h * energy(j, h))).collect();
+        let advance: Vec<Complex64> = (0..n).map(|j| Complex64::from_polar(1.0, -h * h * (e1[j] - e0[j]) / dt)).collect();
+        for (j, cj) in c.iter_mut().enumerate() {
+            *cj *= Complex64::from_polar(1.0, -0.5 * h * energy(j, 0.25 * h));
+        }
         for m in 0..substeps {
-            if m > 0 {
-                for j in 0..n {
-                    // Renormalising keeps |phase| = 1 to the last bit, so
-                    // rounding does not bias the norm over many steps.
-                    let (a, b) = (first[j] * advance[j], second[j] * advance[j]);
-                    first[j] = a / a.norm();
-                    second[j] = b / b.norm();
-                }
-            }
-            for (cj, f) in c.iter_mut().zip(&first) {
-                *cj *= f;
-            }
-            for (i, w) in work.iter_mut().enumerate() {
-                *w = (0..n).map(|j| c[j] * self.propagator[(i, j)]).sum();
-            }
-            for (j, cj) in c.iter_mut().enumerate() {
-                *cj = work[j] * second[j];
-            }
+            self.rotate(c, &mut work);
             let pa = c[active].norm_sqr();
             if pa > 0.0 {
                 for j in (0..n).filter(|&j| j != active) {
@@ -191,8 +184,36 @@ impl StepCoupling {
                     g[j] += h * flux.max(0.0) / pa;
                 }
             }
+            if m + 1 < substeps {
+                for j in 0..n {
+                    c[j] *= phase[j];
+                    phase[j] *= advance[j];
+                }
+            }
+        }
+        for (j, cj) in c.iter_mut().enumerate() {
+            *cj *= Complex64::from_polar(1.0, -0.5 * h * energy(j, dt - 0.25 * h));
         }
         g
+    }
+
+    /// c ← exp(−T h) c.
+    fn rotate(&self, c: &mut [Complex64], work: &mut [Complex64]) {
+        if let Some((t, s)) = self.shears {
+            // Rotation by α as x ← x − tan(α/2) y; y ← y + sin(α) x; x ← x − tan(α/2) y.
+            let (mut x, mut y) = (c[0], c[1]);
+            x -= y * t;
+            y += x * s;
+            x -= y * t;
+            c[0] = x;
+            c[1] = y;
+            return;
+        }
+        let n = c.len();
+        for (i, w) in work.iter_mut().enumerate() {
+            *w = (0..n).map(|j| c[j] * self.propagator[(i, j)]).sum();
+        }
+        c.copy_from_slice(work);
     }
 }
 
@@ -279,6 +300,22 @@ mod tests {
             let (t, p) = log_and_power(&s2, 0.5, 0.5 / 3.0);
             assert!((fast.t - t).norm() < 1e-13, "theta {theta}");
             assert!((fast.propagator - p).norm() < 1e-13);
+        }
+    }
+
+    /// The three-shear rotation equals the rotation matrix.
+    #[test]
+    fn shears_equal_the_rotation_matrix() {
+        let s2 = DMatrix::from_row_slice(2, 2, &[0.8f64.cos(), -0.8f64.sin(), 0.8f64.sin(), 0.8f64.cos()]);
+        let mut ph = vec![1.0; 2];
+        let sc = StepCoupling::from_overlaps(&s2, &mut ph, 1.0, 4).unwrap();
+        assert!(sc.shears.is_some());
+        let mut c = vec![Complex64::new(0.3, -0.2), Complex64::new(0.1, 0.9)];
+        let expect: Vec<Complex64> = (0..2).map(|i| (0..2).map(|j| c[j] * sc.propagator[(i, j)]).sum()).collect();
+        let mut work = vec![Complex64::new(0.0, 0.0); 2];
+        sc.rotate(&mut c, &mut work);
+        for k in 0..2 {
+            assert!((c[k] - expect[k]).norm() < 1e-15);
         }
     }
 

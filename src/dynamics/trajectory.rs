@@ -184,6 +184,9 @@ pub struct Trajectory<'b> {
     pub state: TrajectoryState,
     /// Hop attempts so far (accepted and frustrated) in this session.
     pub hops: Vec<Hop>,
+    /// Reused per-step buffers.
+    request: Request,
+    new_energies: Vec<f64>,
 }
 
 impl<'b> Trajectory<'b> {
@@ -221,14 +224,14 @@ impl<'b> Trajectory<'b> {
             rng,
             status: Status::Running,
         };
-        Ok(Self { backend, settings, masses: info.masses, state, hops: Vec::new() })
+        Ok(Self { backend, settings, masses: info.masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new() })
     }
 
     /// Continue from a saved state; the back end must already hold the
     /// matching snapshot.
     pub fn resume(backend: &'b mut dyn Backend, settings: Settings, state: TrajectoryState) -> Self {
         let masses = backend.info().masses;
-        Self { backend, settings, masses, state, hops: Vec::new() }
+        Self { backend, settings, masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new() }
     }
 
     /// Masses of the coordinates.
@@ -247,11 +250,16 @@ impl<'b> Trajectory<'b> {
         let s = &mut self.state;
         verlet::kick_drift(&mut s.q, &mut s.v, &s.gradient, &self.masses, dt);
         let n = s.amplitudes.len();
-        let req = Request { gradients: vec![s.active], overlaps: n > 1, couplings: false };
-        let res = self.backend.compute(&s.q, &req)?;
-        let gradient = res.gradient(s.active).expect("requested").to_vec();
-        verlet::kick(&mut s.v, &gradient, &self.masses, dt);
-        let new_energies = res.energies.clone();
+        self.request.gradients.clear();
+        self.request.gradients.push(s.active);
+        self.request.overlaps = n > 1;
+        let res = self.backend.compute(&s.q, &self.request)?;
+        let gradient = res.gradient(s.active).expect("requested");
+        verlet::kick(&mut s.v, gradient, &self.masses, dt);
+        s.gradient.copy_from_slice(gradient);
+        self.new_energies.clear();
+        self.new_energies.extend_from_slice(&res.energies);
+        let new_energies = &self.new_energies;
 
         let coupling = match (&res.overlaps, n > 1) {
             (Some(raw), true) => {
@@ -263,9 +271,8 @@ impl<'b> Trajectory<'b> {
             }
             _ => StepCoupling::none(n),
         };
-        let g = coupling.propagate(&mut s.amplitudes, &s.energies, &new_energies, dt, self.settings.substeps, s.active);
-        s.energies = new_energies;
-        s.gradient = gradient;
+        let g = coupling.propagate(&mut s.amplitudes, &s.energies, new_energies, dt, self.settings.substeps, s.active);
+        s.energies.copy_from_slice(new_energies);
         s.step += 1;
         s.time = s.step as f64 * dt;
 

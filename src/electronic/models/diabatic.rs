@@ -55,6 +55,8 @@ pub struct DiabaticBackend<M: DiabaticModel> {
     current: Option<Point>,
     /// Eigenvectors of the previous distinct geometry.
     previous_vectors: Option<DMatrix<f64>>,
+    /// Buffers for the diabatic matrix and its derivatives, reused.
+    spare: Option<(DMatrix<f64>, Vec<DMatrix<f64>>)>,
     results: Results,
 }
 
@@ -69,7 +71,7 @@ impl<M: DiabaticModel> DiabaticBackend<M> {
     pub fn new(model: M) -> Self {
         let n = model.n_states();
         let n_dof = model.masses().len();
-        Self { model, n, n_dof, current: None, previous_vectors: None, results: Results::default() }
+        Self { model, n, n_dof, current: None, previous_vectors: None, spare: None, results: Results::default() }
     }
 
     /// The wrapped model.
@@ -78,20 +80,50 @@ impl<M: DiabaticModel> DiabaticBackend<M> {
     }
 
     fn new_point(&mut self, q: &[f64]) {
-        let mut w = DMatrix::zeros(self.n, self.n);
-        let mut dw = vec![DMatrix::zeros(self.n, self.n); self.n_dof];
+        // Reuse the buffers of the point before the previous one: the
+        // dynamics calls this once per step, so it allocates as little as it can.
+        let (mut w, mut dw) = match self.spare.take() {
+            Some(buffers) => buffers,
+            None => (DMatrix::zeros(self.n, self.n), vec![DMatrix::zeros(self.n, self.n); self.n_dof]),
+        };
         self.model.diabatic(q, &mut w, &mut dw);
         let (energies, vectors) = eigh_ascending(&w);
-        self.previous_vectors = self.current.take().map(|p| p.vectors);
+        if let Some(old) = self.current.take() {
+            self.previous_vectors = Some(old.vectors);
+            self.spare = Some((w, old.dw));
+        } else {
+            self.previous_vectors = None;
+        }
+        let mut results = std::mem::take(&mut self.results);
+        results.energies = energies;
+        results.gradients.clear();
+        results.overlaps = None;
+        results.couplings = None;
+        results.diagnostics = Default::default();
+        self.results = results;
         self.current = Some(Point { q: q.to_vec(), vectors, dw });
-        self.results = Results { energies, ..Results::default() };
     }
 
     /// u_iᵀ (∂W/∂q_k) u_j for all k.
     fn projected(point: &Point, i: usize, j: usize) -> Vec<f64> {
         let ui = point.vectors.column(i);
         let uj = point.vectors.column(j);
-        point.dw.iter().map(|d| ui.dot(&(d * uj))).collect()
+        let n = ui.len();
+        point
+            .dw
+            .iter()
+            .map(|d| {
+                let mut sum = 0.0;
+                for b in 0..n {
+                    let mut row = 0.0;
+                    for a in 0..n {
+                        row += ui[a] * d[(a, b)];
+                    }
+                    sum += row * uj[b];
+                }
+                sum
+            })
+            .collect()
     }
 }
 
@@ -118,7 +150,7 @@ impl<M: DiabaticModel> Backend for DiabaticBackend<M> {
         }
         if request.overlaps && self.results.overlaps.is_none() {
             if let Some(prev) = &self.previous_vectors {
-                self.results.overlaps = Some(prev.transpose() * &point.vectors);
+                self.results.overlaps = Some(prev.tr_mul(&point.vectors));
             }
         }
         if request.couplings && self.results.couplings.is_none() {

@@ -1,0 +1,127 @@
+//! Engine throughput, printed, never asserted (`scripts/bench`).
+//!
+//! Each workload is timed beside a reference run made in the same process on
+//! the same trajectories: plain velocity Verlet on one adiabatic surface of
+//! the same back end (one back-end call per step, no amplitudes, no hops).
+//! The ratio is the cost of the surface-hopping machinery over that floor.
+
+use std::path::Path;
+use std::time::Instant;
+
+use flipswarm::config::{load_str, RunConfig};
+use flipswarm::dynamics::verlet;
+use flipswarm::electronic::Request;
+use flipswarm::swarm;
+
+fn tully_config(trajectories: usize) -> RunConfig {
+    let text = format!(
+        r#"[model]
+kind = "tully-1"
+[start]
+sampling = "wigner"
+position_bohr = -15.0
+momentum_au = 20.0
+width_bohr = 1.0
+[dynamics]
+timestep_au = 1.0
+duration_au = 4000.0
+decoherence = "energy-based"
+exit_region_bohr = [-15.5, 15.5]
+[swarm]
+trajectories = {trajectories}
+seed = 1
+"#
+    );
+    load_str(&text, "bench", Path::new("."), &[]).expect("valid bench config")
+}
+
+fn lvc_config(trajectories: usize, dir: &Path) -> RunConfig {
+    // 3 states, 10 modes: tuning modes 0–4, coupling modes 5–9 (a made-up model).
+    let mut m = String::from("frequencies_ev = [0.05, 0.07, 0.09, 0.11, 0.13, 0.15, 0.17, 0.19, 0.21, 0.23]\nvertical_ev = [0.0, 3.8, 4.2]\n");
+    for mode in 0..5 {
+        for (state, v) in [(1, -0.05), (2, 0.06)] {
+            m.push_str(&format!("[[gradient]]\nstate = {state}\nmode = {mode}\nvalue_ev = {}\n", v * (1.0 + 0.1 * mode as f64)));
+        }
+    }
+    for mode in 5..10 {
+        for (pair, v) in [("[1, 2]", 0.05), ("[0, 1]", 0.01)] {
+            m.push_str(&format!("[[coupling]]\nstates = {pair}\nmode = {mode}\nvalue_ev = {v}\n"));
+        }
+    }
+    std::fs::write(dir.join("bench-lvc.toml"), m).expect("temp dir writable");
+    let text = format!(
+        r#"[model]
+kind = "lvc"
+file = "bench-lvc.toml"
+[start]
+sampling = "wigner"
+state = 2
+[dynamics]
+timestep_fs = 0.1
+duration_fs = 100.0
+[swarm]
+trajectories = {trajectories}
+seed = 2
+"#
+    );
+    load_str(&text, "bench", dir, &[]).expect("valid bench config")
+}
+
+/// Trajectory-steps per second of the full engine, one thread.
+fn engine(cfg: &RunConfig) -> (u64, f64) {
+    let t = Instant::now();
+    let out = swarm::run(cfg, 1).expect("thread pool");
+    let steps: u64 = out.iter().map(|o| o.steps).sum();
+    (steps, t.elapsed().as_secs_f64())
+}
+
+/// The reference: velocity Verlet on the initial adiabatic surface, same
+/// initial conditions and step counts.
+fn reference(cfg: &RunConfig, steps_each: &[u64]) -> (u64, f64) {
+    let t = Instant::now();
+    let mut total = 0;
+    for (i, &n) in steps_each.iter().enumerate() {
+        let mut backend = swarm::make_backend(&cfg.model);
+        let masses = backend.info().masses;
+        let (mut q, mut v) = swarm::initial_condition(cfg, &masses, i);
+        let req = Request::gradient_of(cfg.initial_state);
+        let mut g = backend.compute(&q, &req).expect("model").gradient(cfg.initial_state).unwrap().to_vec();
+        for _ in 0..n {
+            verlet::kick_drift(&mut q, &mut v, &g, &masses, cfg.settings.dt);
+            g.copy_from_slice(backend.compute(&q, &req).expect("model").gradient(cfg.initial_state).unwrap());
+            verlet::kick(&mut v, &g, &masses, cfg.settings.dt);
+        }
+        total += n;
+    }
+    (total, t.elapsed().as_secs_f64())
+}
+
+fn report(name: &str, cfg: &RunConfig) {
+    let out = swarm::run(cfg, 1).expect("thread pool");
+    let steps_each: Vec<u64> = out.iter().map(|o| o.steps).collect();
+    let (n, secs) = engine(cfg);
+    let (nr, rsecs) = reference(cfg, &steps_each);
+    let rate = n as f64 / secs;
+    let rrate = nr as f64 / rsecs;
+    println!(
+        "{name:<34} {:>5} traj {n:>9} steps {secs:>7.3} s {rate:>12.0} steps/s/core | reference {rrate:>12.0} steps/s | ratio {:>5.2}",
+        cfg.trajectories,
+        rate / rrate
+    );
+}
+
+fn main() {
+    let quick = std::env::args().any(|a| a == "--quick");
+    let scale = if quick { 10 } else { 1 };
+    println!("flipswarm engine benchmark (one thread; ratio = engine rate / reference rate)");
+    report("Tully 1, k = 20, decoherence", &tully_config(2000 / scale));
+    let dir = std::env::temp_dir().join(format!("flipswarm-bench-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).expect("temp dir");
+    report("LVC 3 states x 10 modes", &lvc_config(200 / scale, &dir));
+    std::fs::remove_dir_all(&dir).ok();
+    let t = Instant::now();
+    let cfg = tully_config(2000);
+    let out = swarm::run(&cfg, 0).expect("thread pool");
+    let steps: u64 = out.iter().map(|o| o.steps).sum();
+    println!("Tully 1, 2000 trajectories on all cores: {steps} steps in {:.3} s (goal: under 1 s)", t.elapsed().as_secs_f64());
+}
