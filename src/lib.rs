@@ -12,5 +12,6 @@ pub mod cli;
 pub mod config;
 pub mod dynamics;
 pub mod electronic;
+pub mod ensemble;
 pub mod swarm;
 pub mod units;

@@ -33,7 +33,20 @@ need_rust() {
     say "$(cargo --version)"
 }
 
-# The system libraries the crate links against.
+# The system libraries the crate links against (HDF5 from Debian).
 need_system_libraries() {
-    need_debian pkg-config gcc
+    need_debian pkg-config gcc libhdf5-dev
+}
+
+# need_python_module MODULE PACKAGE...: pip-install PACKAGEs from PyPI when
+# MODULE cannot be imported (used by the interoperability tests).
+need_python_module() {
+    local module="$1"; shift
+    if ! command -v python3 >/dev/null 2>&1; then
+        need_debian python3 python3-pip
+    fi
+    python3 -c "import $module" 2>/dev/null && return 0
+    say "installing Python packages from PyPI: $*"
+    python3 -m pip install --quiet "$@" 2>/dev/null \
+        || python3 -m pip install --quiet --break-system-packages "$@"
 }

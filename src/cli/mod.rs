@@ -1,6 +1,9 @@
 //! Command-line interface: argument definitions and one function per
 //! subcommand. No physics here.
 
+pub mod inspect;
+pub mod merge;
+pub mod resume;
 pub mod run;
 
 use clap::{Parser, Subcommand};
@@ -51,6 +54,74 @@ pub enum Command {
     /// one-dimensional scattering models; state fractions and mean quantum
     /// populations otherwise).
     Run(run::RunArgs),
+    /// Continue every unfinished trajectory of a run directory (finished ones
+    /// are left untouched); the continued trajectories are bit-for-bit those
+    /// that never stopped.
+    Resume(resume::ResumeArgs),
+    /// Show the status of every trajectory of a run directory or part files.
+    Inspect(inspect::InspectArgs),
+    /// Gather part files into one ensemble file.
+    Merge(merge::MergeArgs),
     /// List every configuration key with its unit and default.
     Keys,
+}
+
+/// Install handlers: the first SIGINT, SIGTERM or SIGUSR1 asks the run to
+/// finish the current step of every trajectory, checkpoint and exit with
+/// code 3 (resumable); a second SIGINT or SIGTERM ends the process at once.
+pub fn stop_flag() -> std::sync::Arc<std::sync::atomic::AtomicBool> {
+    use signal_hook::consts::{SIGINT, SIGTERM, SIGUSR1};
+    let flag = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+    for sig in [SIGINT, SIGTERM] {
+        // Order matters: the conditional shutdown sees the flag set by the first signal.
+        let _ = signal_hook::flag::register_conditional_shutdown(sig, 130, flag.clone());
+        let _ = signal_hook::flag::register(sig, flag.clone());
+    }
+    let _ = signal_hook::flag::register(SIGUSR1, flag.clone());
+    flag
+}
+
+/// Run (or resume) into a directory and report; returns the exit code.
+pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (usize, usize), threads: usize, resume: bool, json: bool) -> i32 {
+    use crate::ensemble::runner;
+    let stop = stop_flag();
+    let model = cfg.model.clone();
+    let factory = move |_: usize| crate::swarm::make_backend(&model);
+    let opts = runner::Options { threads, stop: stop.clone(), factory: &factory, progress_bar: true };
+    let result = if resume { runner::resume(cfg, dir, slice, &opts) } else { runner::start(cfg, dir, slice, &opts) };
+    let report = match result {
+        Ok(r) => r,
+        Err(e @ (runner::RunError::Directory { .. } | runner::RunError::Config(_))) => {
+            eprintln!("error: {e}");
+            return exit::INPUT;
+        }
+        Err(e) => {
+            eprintln!("error: {e}");
+            eprintln!("what was computed up to the last checkpoint is kept in {}; `flipswarm resume {}` continues", dir.display(), dir.display());
+            return exit::RUNTIME;
+        }
+    };
+    let part = report.part.display();
+    if json {
+        let v = serde_json::json!({
+            "part": report.part, "finished": report.finished, "failed": report.failed,
+            "stopped": report.stopped, "pending": report.pending,
+            "resumed_from_checkpoint": report.resumed_from_checkpoint,
+            "resumed_from_previous_checkpoint": report.resumed_from_previous,
+        });
+        println!("{v}");
+    } else {
+        println!("{part}: {} finished, {} failed, {} stopped, {} not started", report.finished, report.failed, report.stopped, report.pending);
+        if report.resumed_from_previous > 0 {
+            println!("{} trajectories resumed from their previous checkpoint (the newest was damaged)", report.resumed_from_previous);
+        }
+    }
+    if report.stopped + report.pending > 0 {
+        eprintln!("stopped: {} trajectories can be continued with `flipswarm resume {}`", report.stopped + report.pending, dir.display());
+        return exit::STOPPED;
+    }
+    if report.failed > 0 {
+        return exit::SOME_FAILED;
+    }
+    exit::OK
 }

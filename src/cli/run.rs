@@ -23,11 +23,29 @@ pub struct RunArgs {
     /// Print the summary as JSON on standard output.
     #[arg(long)]
     pub json: bool,
+    /// Run directory for the ensemble files (part file, checkpoints, run.toml).
+    /// Without it nothing is saved: only the summary is printed.
+    #[arg(long, short = 'o', value_name = "DIR")]
+    pub out: Option<PathBuf>,
+    /// Run only slice K of N of the ensemble (trajectories K·T/N to (K+1)·T/N − 1), e.g. 0/4.
+    #[arg(long, value_name = "K/N", value_parser = parse_slice)]
+    pub slice: Option<(usize, usize)>,
     /// Write ensemble-averaged population curves (time in fs; fraction of
     /// trajectories and mean |c|² per state) to this CSV file. An existing
     /// file is not overwritten.
     #[arg(long, value_name = "CSV")]
     pub populations: Option<PathBuf>,
+}
+
+/// Parse "K/N" with 0 ≤ K < N.
+pub fn parse_slice(s: &str) -> Result<(usize, usize), String> {
+    let (k, n) = s.split_once('/').ok_or_else(|| format!("`{s}` is not of the form K/N, e.g. 0/4"))?;
+    let k: usize = k.trim().parse().map_err(|_| format!("`{k}` in `{s}` is not a whole number"))?;
+    let n: usize = n.trim().parse().map_err(|_| format!("`{n}` in `{s}` is not a whole number"))?;
+    if n == 0 || k >= n {
+        return Err(format!("slice {k}/{n}: need 0 ≤ K < N"));
+    }
+    Ok((k, n))
 }
 
 /// Execute; returns the exit code.
@@ -54,6 +72,14 @@ pub fn execute(args: &RunArgs) -> i32 {
         cfg.settings.dt,
         (cfg.settings.max_time / cfg.settings.dt).ceil()
     );
+    if let Some(dir) = &args.out {
+        return super::run_into(&cfg, dir, args.slice.unwrap_or((0, 1)), args.threads, false, args.json);
+    }
+    if args.slice.is_some() {
+        eprintln!("error: --slice needs --out (a slice is only useful when its results are saved)");
+        return exit::INPUT;
+    }
+    tracing::info!("no --out directory given: results are summarised, not saved");
     let outcomes = match swarm::run(&cfg, args.threads) {
         Ok(o) => o,
         Err(e) => {

@@ -6,8 +6,8 @@
 //! Unknown keys are errors that name the nearest valid key; every error names
 //! the file and line (or the `--set` option) and the key.
 //!
-//! The full list of keys, their units and defaults is [`SCHEMA`]; the README
-//! and `flipswarm run --help` show it.
+//! The full list of keys, their units and defaults is [`SCHEMA`];
+//! `flipswarm keys` and `flipswarm run --help` show it.
 
 mod reader;
 pub mod suggest;
@@ -83,11 +83,14 @@ pub const SCHEMA: &[KeyDoc] = &[
     KeyDoc { path: "dynamics.decoherence_constant_hartree", meaning: "C of the energy-based correction", default: "0.1" },
     KeyDoc { path: "dynamics.max_energy_drift_ev", meaning: "total-energy change that fails a trajectory, eV", default: "0.05" },
     KeyDoc { path: "dynamics.exit_region_bohr", meaning: "[low, high]: 1D trajectories stop once outside, moving away", default: "none" },
+    KeyDoc { path: "output.record_every_steps", meaning: "write one row of positions, energies, amplitudes every this many steps (hops are always written)", default: "1" },
+    KeyDoc { path: "output.checkpoint_every_steps", meaning: "checkpoint each trajectory every this many steps (0: by wall-clock time only)", default: "0" },
+    KeyDoc { path: "output.checkpoint_interval_s", meaning: "checkpoint each running trajectory at least this often, seconds of wall-clock time", default: "60" },
     KeyDoc { path: "swarm.trajectories", meaning: "number of trajectories", default: "required" },
     KeyDoc { path: "swarm.seed", meaning: "ensemble random seed (per-trajectory streams derive from it)", default: "required" },
 ];
 
-const TABLES: &[&str] = &["model", "start", "dynamics", "swarm"];
+const TABLES: &[&str] = &["model", "start", "dynamics", "output", "swarm"];
 
 /// The model, built and validated.
 #[derive(Clone, Debug, PartialEq)]
@@ -138,6 +141,17 @@ pub enum Sampling {
     Origin,
 }
 
+/// Output and checkpoint cadence.
+#[derive(Clone, Debug, PartialEq)]
+pub struct OutputSettings {
+    /// Rows every this many steps (the last step is always written).
+    pub record_every: u64,
+    /// Checkpoint every this many steps (0 = by time only).
+    pub checkpoint_every: u64,
+    /// Checkpoint at least this often (seconds of wall-clock time).
+    pub checkpoint_interval_s: f64,
+}
+
 /// A validated run description, atomic units.
 #[derive(Clone, Debug, PartialEq)]
 pub struct RunConfig {
@@ -155,6 +169,8 @@ pub struct RunConfig {
     pub trajectories: usize,
     /// Ensemble seed.
     pub seed: u64,
+    /// What is written to disk and how often.
+    pub output: OutputSettings,
     /// The configuration text after overrides (kept with the results).
     pub effective_toml: String,
 }
@@ -192,7 +208,15 @@ pub fn load_str(text: &str, origin: &str, base: &Path, overrides: &[String]) -> 
         return Err(r.error("swarm.trajectories", format!("must be between 1 and 10 000 000, found {trajectories}")));
     }
     let seed = r.u64("swarm.seed")?.ok_or_else(|| r.error("swarm.seed", "missing (the ensemble seed makes runs reproducible)"))?;
+    let record_every = r.u64("output.record_every_steps")?.unwrap_or(1);
+    if record_every == 0 {
+        return Err(r.error("output.record_every_steps", "must be at least 1"));
+    }
+    let checkpoint_every = r.u64("output.checkpoint_every_steps")?.unwrap_or(0);
+    let checkpoint_interval_s = positive(&r, "output.checkpoint_interval_s")?.unwrap_or(60.0);
+    let output = OutputSettings { record_every, checkpoint_every, checkpoint_interval_s };
     Ok(RunConfig {
+        output,
         title: r.string("title")?.unwrap_or_default(),
         model,
         sampling,

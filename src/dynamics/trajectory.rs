@@ -152,6 +152,8 @@ pub struct StepRecord<'a> {
     pub masses: &'a [f64],
     /// A hop attempt in this step.
     pub hop: Option<&'a Hop>,
+    /// The back end, for snapshots (checkpoints).
+    pub backend: &'a dyn Backend,
 }
 
 /// Whether the run goes on.
@@ -359,7 +361,7 @@ impl<'b> Trajectory<'b> {
     /// state failed.
     pub fn run(&mut self, observer: &mut dyn Observer) -> Result<&Status, String> {
         if self.state.step == 0 && self.state.status == Status::Running {
-            let flow = observer.observe(&StepRecord { kind: RecordKind::Start, state: &self.state, masses: &self.masses, hop: None })?;
+            let flow = observer.observe(&StepRecord { kind: RecordKind::Start, state: &self.state, masses: &self.masses, hop: None, backend: &*self.backend })?;
             if flow == Flow::Stop {
                 return Ok(&self.state.status);
             }
@@ -376,13 +378,13 @@ impl<'b> Trajectory<'b> {
                     break;
                 }
             };
-            let flow = observer.observe(&StepRecord { kind: RecordKind::Step, state: &self.state, masses: &self.masses, hop: hop.as_ref() })?;
+            let flow = observer.observe(&StepRecord { kind: RecordKind::Step, state: &self.state, masses: &self.masses, hop: hop.as_ref(), backend: &*self.backend })?;
             if flow == Flow::Stop {
                 return Ok(&self.state.status);
             }
         }
         // The final status is reported once more, so writers see it.
-        observer.observe(&StepRecord { kind: RecordKind::End, state: &self.state, masses: &self.masses, hop: None })?;
+        observer.observe(&StepRecord { kind: RecordKind::End, state: &self.state, masses: &self.masses, hop: None, backend: &*self.backend })?;
         Ok(&self.state.status)
     }
 }

@@ -1,0 +1,617 @@
+//! Running an ensemble into a run directory, and resuming it.
+//!
+//! Layout of a run directory (our own):
+//!
+//! ```text
+//! DIR/run.toml                         the effective configuration (after --set)
+//! DIR/part-KKKK-of-NNNN.h5             trajectories of slice K (one writer: this process)
+//! DIR/checkpoints/part-KKKK/traj-IIIIII.ckpt[.prev]   per-trajectory checkpoints
+//! ```
+//!
+//! One writer thread owns the part file; the trajectories, run in parallel
+//! by rayon, send it their rows. A trajectory checkpoints by sending its rows
+//! with an acknowledgement request (the writer appends and flushes, then
+//! answers) and only then writing its checkpoint file, so a checkpoint never
+//! claims rows that are not on disk. On resume, rows beyond a checkpoint are
+//! truncated and recomputed; because every trajectory is deterministic given
+//! its state, generator and snapshot, the continued trajectory is bit-for-bit
+//! the one that never stopped.
+
+use std::io::IsTerminal;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::mpsc::{self, RecvTimeoutError, Sender, SyncSender};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use rayon::prelude::*;
+
+use super::checkpoint::{self, Checkpoint, Source};
+use super::h5::{now_rfc3339, EnsembleError, PartReader, PartWriter};
+use super::record::{PartMeta, StepRow, TrajectoryHeader};
+use crate::config::RunConfig;
+use crate::dynamics::{Flow, Hop, Observer, RecordKind, Status, StepRecord, Trajectory, TrajectoryState};
+use crate::electronic::Backend;
+use crate::swarm;
+
+/// Creates the back end of trajectory `index` (tests inject faults here).
+pub type BackendFactory<'a> = dyn Fn(usize) -> Box<dyn Backend> + Sync + 'a;
+
+/// Problems of a run as a whole (single trajectories fail as values).
+#[derive(Debug, thiserror::Error)]
+pub enum RunError {
+    /// The run directory or a file in it cannot be used.
+    #[error("{path}: {message}")]
+    Directory { path: PathBuf, message: String },
+    /// The part file could not be written or read.
+    #[error(transparent)]
+    Ensemble(#[from] EnsembleError),
+    /// The configuration stored in the run directory is invalid.
+    #[error("{0}")]
+    Config(#[from] crate::config::ConfigError),
+    /// The thread pool could not be started.
+    #[error("cannot start worker threads: {0}")]
+    Threads(String),
+    /// Writing to the part file failed while running.
+    #[error("writing results failed: {0}")]
+    Writer(String),
+}
+
+/// How a run (or resume) ended.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct RunReport {
+    /// Trajectories that ended normally (including earlier sessions).
+    pub finished: usize,
+    /// Trajectories that failed (including earlier sessions).
+    pub failed: usize,
+    /// Trajectories stopped by a signal, resumable.
+    pub stopped: usize,
+    /// Trajectories never started (a stop came first).
+    pub pending: usize,
+    /// Trajectories continued from a checkpoint in this session.
+    pub resumed_from_checkpoint: usize,
+    /// Trajectories resumed from the previous checkpoint because the newest was damaged.
+    pub resumed_from_previous: usize,
+    /// The part file written.
+    pub part: PathBuf,
+}
+
+/// Which slice of the ensemble a process runs: trajectories
+/// [k·N/n, (k+1)·N/n), contiguous and deterministic.
+pub fn slice_indices(total: usize, k: usize, n: usize) -> Vec<usize> {
+    (k * total / n..(k + 1) * total / n).collect()
+}
+
+/// Part file name of slice k of n.
+pub fn part_name(k: usize, n: usize) -> String {
+    format!("part-{k:04}-of-{n:04}.h5")
+}
+
+fn checkpoint_dir(dir: &Path, k: usize) -> PathBuf {
+    dir.join("checkpoints").join(format!("part-{k:04}"))
+}
+
+/// Messages to the writer thread.
+enum ToWriter {
+    Begin(TrajectoryHeader),
+    /// Append rows; with `ack`, flush and answer with the counts on disk.
+    Append { index: usize, rows: Vec<StepRow>, hops: Vec<Hop>, ack: Option<SyncSender<Result<(u64, u64), String>>> },
+    /// Final rows and status; the checkpoint files are removed after the next flush.
+    Finish { index: usize, rows: Vec<StepRow>, hops: Vec<Hop>, status: Status, checkpoint: PathBuf },
+    /// Final rows of a stopped trajectory, with acknowledgement.
+    Stop { index: usize, rows: Vec<StepRow>, hops: Vec<Hop>, ack: SyncSender<Result<(u64, u64), String>> },
+}
+
+fn writer_loop(mut w: PartWriter, rx: mpsc::Receiver<ToWriter>) -> Result<(), String> {
+    let mut dirty = false;
+    let mut last_flush = Instant::now();
+    let mut to_remove: Vec<PathBuf> = Vec::new();
+    let mut failure: Option<String> = None;
+    let flush = |w: &mut PartWriter, to_remove: &mut Vec<PathBuf>, dirty: &mut bool| -> Result<(), String> {
+        w.flush().map_err(|e| e.to_string())?;
+        for p in to_remove.drain(..) {
+            checkpoint::remove(&p);
+        }
+        *dirty = false;
+        Ok(())
+    };
+    loop {
+        let msg = match rx.recv_timeout(Duration::from_millis(500)) {
+            Ok(m) => m,
+            Err(RecvTimeoutError::Timeout) => {
+                if dirty && failure.is_none() {
+                    if let Err(e) = flush(&mut w, &mut to_remove, &mut dirty) {
+                        failure = Some(e);
+                    }
+                    last_flush = Instant::now();
+                }
+                continue;
+            }
+            Err(RecvTimeoutError::Disconnected) => break,
+        };
+        let result: Result<Option<(SyncSender<_>, usize)>, String> = (|| match msg {
+            ToWriter::Begin(h) => {
+                w.begin(&h).map_err(|e| e.to_string())?;
+                Ok(None)
+            }
+            ToWriter::Append { index, rows, hops, ack } => {
+                w.append(index, &rows, &hops).map_err(|e| e.to_string())?;
+                Ok(ack.map(|a| (a, index)))
+            }
+            ToWriter::Finish { index, rows, hops, status, checkpoint } => {
+                w.append(index, &rows, &hops).map_err(|e| e.to_string())?;
+                w.set_status(index, &status).map_err(|e| e.to_string())?;
+                to_remove.push(checkpoint);
+                Ok(None)
+            }
+            ToWriter::Stop { index, rows, hops, ack } => {
+                w.append(index, &rows, &hops).map_err(|e| e.to_string())?;
+                w.mark_stopped(index).map_err(|e| e.to_string())?;
+                Ok(Some((ack, index)))
+            }
+        })();
+        dirty = true;
+        match result {
+            Err(e) => {
+                failure.get_or_insert(e);
+            }
+            Ok(Some((ack, index))) => {
+                let answer = match &failure {
+                    Some(e) => Err(e.clone()),
+                    None => flush(&mut w, &mut to_remove, &mut dirty)
+                        .and_then(|_| w.counts(index).map_err(|e| e.to_string())),
+                };
+                last_flush = Instant::now();
+                if let Err(e) = &answer {
+                    failure.get_or_insert(e.clone());
+                }
+                let _ = ack.send(answer);
+            }
+            Ok(None) => {
+                if last_flush.elapsed() > Duration::from_secs(2) && failure.is_none() {
+                    if let Err(e) = flush(&mut w, &mut to_remove, &mut dirty) {
+                        failure = Some(e);
+                    }
+                    last_flush = Instant::now();
+                }
+            }
+        }
+    }
+    if failure.is_none() {
+        if let Err(e) = flush(&mut w, &mut to_remove, &mut dirty) {
+            failure = Some(e);
+        }
+    }
+    let closed = w.close().map_err(|e| e.to_string());
+    match failure {
+        Some(e) => Err(e),
+        None => closed,
+    }
+}
+
+/// The observer that buffers rows, checkpoints and reports the end.
+struct Recorder<'a> {
+    index: usize,
+    every: u64,
+    checkpoint_every: u64,
+    checkpoint_interval: Duration,
+    last_checkpoint: Instant,
+    last_checkpoint_step: u64,
+    rows: Vec<StepRow>,
+    hops: Vec<Hop>,
+    last_recorded_step: Option<u64>,
+    resumed: bool,
+    writer: Sender<ToWriter>,
+    checkpoint_path: PathBuf,
+    stop: &'a AtomicBool,
+    stopped: bool,
+}
+
+fn row_of(s: &TrajectoryState, masses: &[f64]) -> StepRow {
+    let kinetic = s.kinetic(masses);
+    let potential = s.potential();
+    StepRow {
+        step: s.step,
+        time: s.time,
+        q: s.q.clone(),
+        v: s.v.clone(),
+        energies: s.energies.clone(),
+        active: s.active as u32,
+        amplitudes: s.amplitudes.clone(),
+        kinetic,
+        potential,
+        total: kinetic + potential,
+    }
+}
+
+impl Recorder<'_> {
+    fn record(&mut self, rec: &StepRecord) {
+        if self.last_recorded_step != Some(rec.state.step) {
+            self.rows.push(row_of(rec.state, rec.masses));
+            self.last_recorded_step = Some(rec.state.step);
+        }
+    }
+
+    fn checkpoint(&mut self, rec: &StepRecord) -> Result<(), String> {
+        let (ack, answer) = mpsc::sync_channel(1);
+        let msg = ToWriter::Append {
+            index: self.index,
+            rows: std::mem::take(&mut self.rows),
+            hops: std::mem::take(&mut self.hops),
+            ack: Some(ack),
+        };
+        self.writer.send(msg).map_err(|_| "the writer has stopped".to_string())?;
+        let (rows_written, hops_written) = answer.recv().map_err(|_| "the writer has stopped".to_string())??;
+        let ckpt = Checkpoint {
+            format: checkpoint::FORMAT.into(),
+            version: 1,
+            index: self.index,
+            rows_written,
+            hops_written,
+            state: rec.state.clone(),
+            snapshot: rec.backend.snapshot(),
+        };
+        checkpoint::write(&self.checkpoint_path, &ckpt).map_err(|e| e.to_string())?;
+        self.last_checkpoint = Instant::now();
+        self.last_checkpoint_step = rec.state.step;
+        Ok(())
+    }
+}
+
+impl Observer for Recorder<'_> {
+    fn observe(&mut self, rec: &StepRecord) -> Result<Flow, String> {
+        match rec.kind {
+            RecordKind::Start => {
+                if !self.resumed {
+                    self.record(rec);
+                }
+                Ok(Flow::Continue)
+            }
+            RecordKind::Step => {
+                if rec.state.step % self.every == 0 {
+                    self.record(rec);
+                }
+                if let Some(h) = rec.hop {
+                    self.hops.push(h.clone());
+                }
+                if self.stop.load(Ordering::Relaxed) {
+                    self.record(rec);
+                    self.checkpoint(rec)?;
+                    let (ack, answer) = mpsc::sync_channel(1);
+                    self.writer
+                        .send(ToWriter::Stop { index: self.index, rows: vec![], hops: vec![], ack })
+                        .map_err(|_| "the writer has stopped".to_string())?;
+                    answer.recv().map_err(|_| "the writer has stopped".to_string())??;
+                    self.stopped = true;
+                    return Ok(Flow::Stop);
+                }
+                let by_steps = self.checkpoint_every > 0 && rec.state.step - self.last_checkpoint_step >= self.checkpoint_every;
+                let by_time = self.last_checkpoint.elapsed() >= self.checkpoint_interval;
+                if by_steps || by_time {
+                    self.record(rec);
+                    self.checkpoint(rec)?;
+                }
+                Ok(Flow::Continue)
+            }
+            RecordKind::End => {
+                self.record(rec);
+                let msg = ToWriter::Finish {
+                    index: self.index,
+                    rows: std::mem::take(&mut self.rows),
+                    hops: std::mem::take(&mut self.hops),
+                    status: rec.state.status.clone(),
+                    checkpoint: self.checkpoint_path.clone(),
+                };
+                self.writer.send(msg).map_err(|_| "the writer has stopped".to_string())?;
+                Ok(Flow::Continue)
+            }
+        }
+    }
+}
+
+/// What to do with one trajectory in this session.
+enum Plan {
+    Fresh,
+    FromCheckpoint(Box<Checkpoint>),
+}
+
+enum Ended {
+    Done,
+    Stopped,
+    Skipped,
+}
+
+struct Session<'a> {
+    cfg: &'a RunConfig,
+    factory: &'a BackendFactory<'a>,
+    ckpt_dir: PathBuf,
+    stop: &'a AtomicBool,
+}
+
+impl Session<'_> {
+    fn run_one(&self, index: usize, plan: Plan, writer: Sender<ToWriter>) -> Result<Ended, String> {
+        if self.stop.load(Ordering::Relaxed) {
+            return Ok(Ended::Skipped);
+        }
+        let mut backend = (self.factory)(index);
+        let path = checkpoint::path_for(&self.ckpt_dir, index);
+        let out = &self.cfg.output;
+        let mut rec = Recorder {
+            index,
+            every: out.record_every,
+            checkpoint_every: out.checkpoint_every,
+            checkpoint_interval: Duration::from_secs_f64(out.checkpoint_interval_s),
+            last_checkpoint: Instant::now(),
+            last_checkpoint_step: 0,
+            rows: Vec::new(),
+            hops: Vec::new(),
+            last_recorded_step: None,
+            resumed: false,
+            writer: writer.clone(),
+            checkpoint_path: path.clone(),
+            stop: self.stop,
+            stopped: false,
+        };
+        let masses = backend.info().masses;
+        let mut traj = match plan {
+            Plan::Fresh => {
+                let (q, v) = swarm::initial_condition(self.cfg, &masses, index);
+                let header = TrajectoryHeader { index, q0: q.clone(), v0: v.clone(), initial_state: self.cfg.initial_state, seed: self.cfg.seed };
+                writer.send(ToWriter::Begin(header)).map_err(|_| "the writer has stopped".to_string())?;
+                let rng = swarm::trajectory_rng(self.cfg.seed, index, 1);
+                match Trajectory::start(backend.as_mut(), self.cfg.settings.clone(), q, v, self.cfg.initial_state, rng) {
+                    Ok(t) => t,
+                    Err(e) => {
+                        let status = Status::Failed { step: 0, reason: e.to_string() };
+                        writer
+                            .send(ToWriter::Finish { index, rows: vec![], hops: vec![], status, checkpoint: path })
+                            .map_err(|_| "the writer has stopped".to_string())?;
+                        return Ok(Ended::Done);
+                    }
+                }
+            }
+            Plan::FromCheckpoint(ckpt) => {
+                if let Err(e) = backend.restore(&ckpt.snapshot) {
+                    return Err(format!("trajectory {index}: {e}"));
+                }
+                rec.resumed = true;
+                rec.last_recorded_step = Some(ckpt.state.step);
+                rec.last_checkpoint_step = ckpt.state.step;
+                let mut state = ckpt.state;
+                state.status = Status::Running;
+                Trajectory::resume(backend.as_mut(), self.cfg.settings.clone(), state)
+            }
+        };
+        traj.run(&mut rec)?;
+        Ok(if rec.stopped { Ended::Stopped } else { Ended::Done })
+    }
+}
+
+/// Options common to `run` and `resume`.
+pub struct Options<'a> {
+    /// Worker threads (0 = all cores).
+    pub threads: usize,
+    /// Set by signal handlers: finish the current step, checkpoint, stop.
+    pub stop: Arc<AtomicBool>,
+    /// The back ends.
+    pub factory: &'a BackendFactory<'a>,
+    /// Draw a progress bar on a terminal (otherwise log lines).
+    pub progress_bar: bool,
+}
+
+/// Start a new run of slice (k, n) in `dir`, which must not exist yet.
+pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
+    let (k, n) = slice;
+    let derr = |message: String| RunError::Directory { path: dir.to_path_buf(), message };
+    if dir.join("run.toml").exists() || dir.join(part_name(k, n)).exists() {
+        return Err(derr("already holds a run; use `flipswarm resume` to continue it, or choose another directory".into()));
+    }
+    std::fs::create_dir_all(checkpoint_dir(dir, k)).map_err(|e| derr(format!("cannot create: {e}")))?;
+    let cfg = &self_contained(cfg, dir)?;
+    let toml_path = dir.join("run.toml");
+    if !toml_path.exists() {
+        write_new(&toml_path, cfg.effective_toml.as_bytes()).map_err(|e| derr(format!("cannot write run.toml: {e}")))?;
+    }
+    let indices = slice_indices(cfg.trajectories, k, n);
+    let masses = swarm::make_backend(&cfg.model).info().masses;
+    let meta = PartMeta {
+        config_toml: cfg.effective_toml.clone(),
+        program_version: env!("CARGO_PKG_VERSION").into(),
+        created: now_rfc3339(),
+        n_states: cfg.model.n_states(),
+        n_dof: cfg.model.n_dof(),
+        masses,
+        slice,
+        trajectories: indices.clone(),
+        timestep_au: cfg.settings.dt,
+    };
+    let part = dir.join(part_name(k, n));
+    let writer = PartWriter::create(&part, &meta)?;
+    let plans = indices.into_iter().map(|i| (i, Plan::Fresh)).collect();
+    let mut report = execute(cfg, dir, k, writer, plans, opts)?;
+    report.part = part;
+    finish_report(&mut report)?;
+    Ok(report)
+}
+
+/// The name under which an LVC model file is copied into the run directory.
+pub const MODEL_COPY: &str = "lvc-model.toml";
+
+/// A run directory must not depend on files outside it: an LVC model file is
+/// copied in and `model.file` rewritten to point at the copy.
+fn self_contained(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
+    let crate::config::ModelSpec::Lvc { path, .. } = &cfg.model else { return Ok(cfg.clone()) };
+    let copy = dir.join(MODEL_COPY);
+    if !copy.exists() {
+        std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the LVC model {}: {e}", path.display()) })?;
+    }
+    let set = format!("model.file=\"{MODEL_COPY}\"");
+    let effective = crate::config::Reader::parse(&cfg.effective_toml, "run.toml", &[set])?.effective_text();
+    let mut out = crate::config::load_str(&effective, "run.toml", dir, &[])?;
+    out.effective_toml = effective;
+    Ok(out)
+}
+
+fn write_new(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    use std::io::Write;
+    let mut f = std::fs::OpenOptions::new().write(true).create_new(true).open(path)?;
+    f.write_all(bytes)?;
+    f.sync_all()
+}
+
+/// Continue every unfinished trajectory of slice (k, n) in `dir`.
+pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
+    let (k, n) = slice;
+    let part = dir.join(part_name(k, n));
+    if !part.exists() {
+        return Err(RunError::Directory { path: part, message: "no such part file: nothing to resume".into() });
+    }
+    // Statuses first, read-only; then the file is opened for writing.
+    let statuses: std::collections::BTreeMap<usize, Status> = {
+        let reader = PartReader::open(&part)?;
+        let mut m = std::collections::BTreeMap::new();
+        for i in reader.trajectory_indices() {
+            m.insert(i, reader.summary(i)?.status);
+        }
+        m
+    };
+    let (mut writer, meta) = PartWriter::open_existing(&part)?;
+    if meta.config_toml != cfg.effective_toml {
+        return Err(RunError::Directory { path: part, message: "was written with a different configuration than run.toml".into() });
+    }
+    let ckpt_dir = checkpoint_dir(dir, k);
+    std::fs::create_dir_all(&ckpt_dir).map_err(|e| RunError::Directory { path: ckpt_dir.clone(), message: e.to_string() })?;
+    let mut plans = Vec::new();
+    let mut from_prev = 0;
+    let mut from_ckpt = 0;
+    for &index in &meta.trajectories {
+        let status = statuses.get(&index).cloned();
+        if matches!(status, Some(Status::Finished(_)) | Some(Status::Failed { .. })) {
+            continue;
+        }
+        let (best, problems) = checkpoint::read_best(&checkpoint::path_for(&ckpt_dir, index));
+        for p in &problems {
+            tracing::warn!("{p}");
+        }
+        match best {
+            Some((c, source)) => {
+                writer.truncate(index, c.rows_written, c.hops_written)?;
+                if source == Source::Previous {
+                    tracing::warn!("trajectory {index}: resuming from the previous checkpoint (step {})", c.state.step);
+                    from_prev += 1;
+                }
+                from_ckpt += 1;
+                plans.push((index, Plan::FromCheckpoint(Box::new(c))));
+            }
+            None => {
+                if status.is_some() {
+                    if !problems.is_empty() {
+                        tracing::warn!("trajectory {index}: no usable checkpoint; recomputing it from its start");
+                    }
+                    writer.truncate(index, 0, 0)?;
+                }
+                plans.push((index, Plan::Fresh));
+            }
+        }
+    }
+    writer.flush()?;
+    tracing::info!("resuming {} of {} trajectories ({} from checkpoints)", plans.len(), meta.trajectories.len(), from_ckpt);
+    let mut report = execute(cfg, dir, k, writer, plans, opts)?;
+    report.part = part;
+    report.resumed_from_checkpoint = from_ckpt;
+    report.resumed_from_previous = from_prev;
+    finish_report(&mut report)?;
+    Ok(report)
+}
+
+fn finish_report(report: &mut RunReport) -> Result<(), RunError> {
+    let reader = PartReader::open(&report.part)?;
+    let (mut finished, mut failed, mut unfinished) = (0, 0, 0);
+    for i in reader.trajectory_indices() {
+        match reader.summary(i)?.status {
+            Status::Finished(_) => finished += 1,
+            Status::Failed { .. } => failed += 1,
+            Status::Running => unfinished += 1,
+        }
+    }
+    let absent = reader.meta().trajectories.len() - reader.trajectory_indices().len();
+    report.finished = finished;
+    report.failed = failed;
+    report.stopped = unfinished;
+    report.pending = absent;
+    Ok(())
+}
+
+fn execute(cfg: &RunConfig, dir: &Path, k: usize, writer: PartWriter, plans: Vec<(usize, Plan)>, opts: &Options) -> Result<RunReport, RunError> {
+    let (tx, rx) = mpsc::channel();
+    let writer_thread = std::thread::spawn(move || writer_loop(writer, rx));
+    let session = Session { cfg, factory: opts.factory, ckpt_dir: checkpoint_dir(dir, k), stop: &opts.stop };
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(opts.threads).build().map_err(|e| RunError::Threads(e.to_string()))?;
+    let progress = Progress::new(plans.len(), opts.progress_bar);
+    let errors: Mutex<Vec<String>> = Mutex::new(Vec::new());
+    pool.install(|| {
+        plans.into_par_iter().for_each(|(index, plan)| match session.run_one(index, plan, tx.clone()) {
+            Ok(Ended::Done) => progress.tick(),
+            Ok(Ended::Stopped | Ended::Skipped) => {}
+            Err(e) => {
+                errors.lock().unwrap_or_else(|p| p.into_inner()).push(e);
+                // Without a working writer nothing more can be saved: stop cleanly.
+                opts.stop.store(true, Ordering::Relaxed);
+            }
+        })
+    });
+    drop(tx);
+    progress.finish();
+    let written = writer_thread.join().map_err(|_| RunError::Writer("the writer thread panicked".into()))?;
+    written.map_err(RunError::Writer)?;
+    if let Some(e) = errors.into_inner().unwrap_or_else(|p| p.into_inner()).into_iter().next() {
+        return Err(RunError::Writer(e));
+    }
+    Ok(RunReport::default())
+}
+
+/// A progress bar on a terminal, periodic log lines otherwise.
+struct Progress {
+    bar: Option<indicatif::ProgressBar>,
+    done: AtomicUsize,
+    total: usize,
+    started: Instant,
+    last: Mutex<Instant>,
+}
+
+impl Progress {
+    fn new(total: usize, bar: bool) -> Self {
+        let bar = (bar && std::io::stderr().is_terminal()).then(|| {
+            let b = indicatif::ProgressBar::new(total as u64);
+            if let Ok(style) = indicatif::ProgressStyle::with_template(
+                "{elapsed_precise} [{bar:40}] {pos}/{len} trajectories, {per_sec}, about {eta} left",
+            ) {
+                b.set_style(style.progress_chars("=> "));
+            }
+            b
+        });
+        Self { bar, done: AtomicUsize::new(0), total, started: Instant::now(), last: Mutex::new(Instant::now()) }
+    }
+
+    fn tick(&self) {
+        let n = self.done.fetch_add(1, Ordering::Relaxed) + 1;
+        if let Some(b) = &self.bar {
+            b.inc(1);
+            return;
+        }
+        let mut last = self.last.lock().unwrap_or_else(|p| p.into_inner());
+        if last.elapsed().as_secs_f64() > 2.0 || n == self.total {
+            *last = Instant::now();
+            let secs = self.started.elapsed().as_secs_f64();
+            let eta = secs / n as f64 * (self.total - n) as f64;
+            tracing::info!("trajectories done: {n}/{} ({secs:.1} s elapsed, about {eta:.0} s left)", self.total);
+        }
+    }
+
+    fn finish(&self) {
+        if let Some(b) = &self.bar {
+            b.finish_and_clear();
+        }
+    }
+}
+
