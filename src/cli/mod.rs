@@ -113,7 +113,7 @@ pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (u
     } else {
         println!("{part}: {} finished, {} failed, {} stopped, {} not started", report.finished, report.failed, report.stopped, report.pending);
         if report.resumed_from_previous > 0 {
-            println!("{} trajectories resumed from their previous checkpoint (the newest was damaged)", report.resumed_from_previous);
+            println!("{} trajectories resumed from their previous checkpoint (the newest was missing or damaged)", report.resumed_from_previous);
         }
     }
     if report.stopped + report.pending > 0 {

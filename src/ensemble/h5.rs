@@ -523,7 +523,30 @@ fn n_rows(ds: &Dataset) -> u64 {
 
 /// Reads a whole dataset, checking its shape is (rows) or (rows, width).
 fn read_rows<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, rows: usize, width: Option<usize>) -> Result<Vec<T>, EnsembleError> {
+    read_rows_from(cx, ds, object, rows, width, false)
+}
+
+/// With `prefix`, a dataset longer than `rows` is accepted and its first
+/// `rows` rows are returned (files of killed writers, see
+/// [`PartReader::read_prefix`]).
+fn read_rows_from<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, rows: usize, width: Option<usize>, prefix: bool) -> Result<Vec<T>, EnsembleError> {
     let shape = ds.shape();
+    if prefix {
+        let w = width.unwrap_or(1);
+        let ok = match width {
+            None => shape.len() == 1 && shape[0] >= rows,
+            Some(w) => shape.len() == 2 && shape[0] >= rows && shape[1] == w,
+        };
+        if !ok {
+            return Err(cx.layout(object, format!("has shape {shape:?}, expected at least {rows} rows of width {w}")));
+        }
+        if !ds.dtype().map_err(cx.h5(object, "reading the type"))?.is::<T>() {
+            return Err(cx.layout(object, format!("has an unexpected element type (expected {})", std::any::type_name::<T>())));
+        }
+        let mut all = ds.read_raw::<T>().map_err(cx.h5(object, "reading"))?;
+        all.truncate(rows * w);
+        return Ok(all);
+    }
     let expected: Vec<usize> = match width {
         None => vec![rows],
         Some(w) => vec![rows, w],
@@ -1147,21 +1170,43 @@ impl PartReader {
         let header = read_header(cx, &g, &object, index, self.meta.n_dof)?;
         let (status, phase) = read_status(cx, &g, &object)?;
         let (rows, hops) = self.counts(&g, &object)?;
-        let rows = read_step_rows(cx, &g, &object, rows, self.meta.n_dof, self.meta.n_states)?;
-        let hops = read_hops(cx, &g, &object, hops)?;
+        let rows = read_step_rows(cx, &g, &object, rows, self.meta.n_dof, self.meta.n_states, false)?;
+        let hops = read_hops(cx, &g, &object, hops, false)?;
+        Ok(TrajectoryData { header, rows, hops, status, phase })
+    }
+
+    /// The status attributes of trajectory `index` only (no datasets read).
+    pub fn status(&self, index: usize) -> Result<(Status, Phase), EnsembleError> {
+        let g = self.group(index)?;
+        read_status(Ctx(&self.path), &g, &group_path(index))
+    }
+
+    /// The first `rows` rows and `hops` hop attempts of trajectory `index`,
+    /// accepting datasets that are longer or whose lengths disagree with
+    /// each other or with `steps_written` — the state a writer killed
+    /// between two flushes can leave behind. Resume uses it to keep exactly
+    /// the rows a checkpoint vouches for.
+    pub fn read_prefix(&self, index: usize, rows: u64, hops: u64) -> Result<TrajectoryData, EnsembleError> {
+        let cx = Ctx(&self.path);
+        let object = group_path(index);
+        let g = self.group(index)?;
+        let header = read_header(cx, &g, &object, index, self.meta.n_dof)?;
+        let (status, phase) = read_status(cx, &g, &object)?;
+        let rows = read_step_rows(cx, &g, &object, rows as usize, self.meta.n_dof, self.meta.n_states, true)?;
+        let hops = read_hops(cx, &g, &object, hops as usize, true)?;
         Ok(TrajectoryData { header, rows, hops, status, phase })
     }
 }
 
-fn read_step_rows(cx: Ctx, g: &Group, object: &str, n: usize, n_dof: usize, n_states: usize) -> Result<Vec<StepRow>, EnsembleError> {
-    let f64s = |spec: &Spec, w: Option<usize>| read_rows::<f64>(cx, &open_ds(cx, g, object, spec.name)?, &format!("{object}/{}", spec.name), n, w);
+fn read_step_rows(cx: Ctx, g: &Group, object: &str, n: usize, n_dof: usize, n_states: usize, prefix: bool) -> Result<Vec<StepRow>, EnsembleError> {
+    let f64s = |spec: &Spec, w: Option<usize>| read_rows_from::<f64>(cx, &open_ds(cx, g, object, spec.name)?, &format!("{object}/{}", spec.name), n, w, prefix);
     let time = f64s(&TIME, None)?;
-    let step = read_rows::<u64>(cx, &open_ds(cx, g, object, STEP.name)?, &format!("{object}/step"), n, None)?;
+    let step = read_rows_from::<u64>(cx, &open_ds(cx, g, object, STEP.name)?, &format!("{object}/step"), n, None, prefix)?;
     let q = f64s(&POSITIONS, Some(n_dof))?;
     let v = f64s(&VELOCITIES, Some(n_dof))?;
     let e = f64s(&ENERGIES, Some(n_states))?;
-    let active = read_rows::<u32>(cx, &open_ds(cx, g, object, ACTIVE.name)?, &format!("{object}/active_state"), n, None)?;
-    let amps = read_rows::<Complex64>(cx, &open_ds(cx, g, object, AMPLITUDES.name)?, &format!("{object}/amplitudes"), n, Some(n_states))?;
+    let active = read_rows_from::<u32>(cx, &open_ds(cx, g, object, ACTIVE.name)?, &format!("{object}/active_state"), n, None, prefix)?;
+    let amps = read_rows_from::<Complex64>(cx, &open_ds(cx, g, object, AMPLITUDES.name)?, &format!("{object}/amplitudes"), n, Some(n_states), prefix)?;
     let kin = f64s(&KINETIC, None)?;
     let pot = f64s(&POTENTIAL, None)?;
     let tot = f64s(&TOTAL, None)?;
@@ -1181,17 +1226,17 @@ fn read_step_rows(cx: Ctx, g: &Group, object: &str, n: usize, n_dof: usize, n_st
         .collect())
 }
 
-fn read_hops(cx: Ctx, g: &Group, object: &str, n: usize) -> Result<Vec<Hop>, EnsembleError> {
+fn read_hops(cx: Ctx, g: &Group, object: &str, n: usize, prefix: bool) -> Result<Vec<Hop>, EnsembleError> {
     let hobject = format!("{object}/hops");
     let hg = g.group("hops").map_err(|_| cx.layout(&hobject, "group is missing"))?;
     let ds = |name: &str| open_ds(cx, &hg, &hobject, name);
     let o = |name: &str| format!("{hobject}/{name}");
-    let f = |name: &str| read_rows::<f64>(cx, &ds(name)?, &o(name), n, None);
-    let step = read_rows::<u64>(cx, &ds("step")?, &o("step"), n, None)?;
+    let f = |name: &str| read_rows_from::<f64>(cx, &ds(name)?, &o(name), n, None, prefix);
+    let step = read_rows_from::<u64>(cx, &ds("step")?, &o("step"), n, None, prefix)?;
     let time = f("time")?;
-    let from = read_rows::<u32>(cx, &ds("from_state")?, &o("from_state"), n, None)?;
-    let to = read_rows::<u32>(cx, &ds("to_state")?, &o("to_state"), n, None)?;
-    let accepted = read_rows::<u8>(cx, &ds("accepted")?, &o("accepted"), n, None)?;
+    let from = read_rows_from::<u32>(cx, &ds("from_state")?, &o("from_state"), n, None, prefix)?;
+    let to = read_rows_from::<u32>(cx, &ds("to_state")?, &o("to_state"), n, None, prefix)?;
+    let accepted = read_rows_from::<u8>(cx, &ds("accepted")?, &o("accepted"), n, None, prefix)?;
     let gap = f("energy_gap")?;
     let before = f("kinetic_before")?;
     let after = f("kinetic_after")?;

@@ -27,7 +27,7 @@ use std::time::{Duration, Instant};
 use rayon::prelude::*;
 
 use super::checkpoint::{self, Checkpoint, Source};
-use super::h5::{now_rfc3339, EnsembleError, PartReader, PartWriter};
+use super::h5::{now_rfc3339, EnsembleError, PartReader, PartWriter, WriterState};
 use super::record::{PartMeta, StepRow, TrajectoryHeader};
 use crate::config::RunConfig;
 use crate::dynamics::{Flow, Hop, Observer, RecordKind, Status, StepRecord, Trajectory, TrajectoryState};
@@ -274,8 +274,11 @@ impl Observer for Recorder<'_> {
                 if let Some(h) = rec.hop {
                     self.hops.push(h.clone());
                 }
+                // Checkpoints and stops add no rows of their own: the rows
+                // follow the `record_every` cadence whatever happens, so a
+                // stopped and resumed trajectory writes exactly the rows of
+                // one that never stopped.
                 if self.stop.load(Ordering::Relaxed) {
-                    self.record(rec);
                     self.checkpoint(rec)?;
                     let (ack, answer) = mpsc::sync_channel(1);
                     self.writer
@@ -288,7 +291,6 @@ impl Observer for Recorder<'_> {
                 let by_steps = self.checkpoint_every > 0 && rec.state.step - self.last_checkpoint_step >= self.checkpoint_every;
                 let by_time = self.last_checkpoint.elapsed() >= self.checkpoint_interval;
                 if by_steps || by_time {
-                    self.record(rec);
                     self.checkpoint(rec)?;
                 }
                 Ok(Flow::Continue)
@@ -460,61 +462,97 @@ fn write_new(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
 }
 
 /// Continue every unfinished trajectory of slice (k, n) in `dir`.
+///
+/// A part file left "open" by a killed writer may hold rows beyond its last
+/// flush, with dataset lengths that disagree. It is never appended to:
+/// resume rebuilds it, copying finished trajectories that read back
+/// completely and, of the others, exactly the rows their checkpoints vouch
+/// for, into a new file that replaces it. A cleanly closed file is
+/// continued in place, truncated to the checkpoints.
 pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
     let (k, n) = slice;
     let part = dir.join(part_name(k, n));
+    let killed_copy = with_suffix(&part, ".killed");
+    if !part.exists() && killed_copy.exists() {
+        // A rebuild was interrupted between its two renames: take the original back.
+        std::fs::rename(&killed_copy, &part).map_err(|e| RunError::Directory { path: part.clone(), message: e.to_string() })?;
+    }
     if !part.exists() {
         return Err(RunError::Directory { path: part, message: "no such part file: nothing to resume".into() });
     }
-    // Statuses first, read-only; then the file is opened for writing.
-    let statuses: std::collections::BTreeMap<usize, Status> = {
-        let reader = PartReader::open(&part)?;
-        let mut m = std::collections::BTreeMap::new();
-        for i in reader.trajectory_indices() {
-            m.insert(i, reader.summary(i)?.status);
-        }
-        m
-    };
-    let (mut writer, meta) = PartWriter::open_existing(&part)?;
+    let reader = PartReader::open(&part)?;
+    let meta = reader.meta().clone();
     if meta.config_toml != cfg.effective_toml {
         return Err(RunError::Directory { path: part, message: "was written with a different configuration than run.toml".into() });
     }
+    let killed = reader.writer_state() == WriterState::Open;
+    if killed {
+        tracing::warn!("{}: its writer was killed; rebuilding it from the data that checkpoints and finished trajectories vouch for", part.display());
+    }
     let ckpt_dir = checkpoint_dir(dir, k);
     std::fs::create_dir_all(&ckpt_dir).map_err(|e| RunError::Directory { path: ckpt_dir.clone(), message: e.to_string() })?;
+    let present = reader.trajectory_indices();
     let mut plans = Vec::new();
-    let mut from_prev = 0;
-    let mut from_ckpt = 0;
+    let mut keep: Vec<(usize, Keep)> = Vec::new();
+    let (mut from_prev, mut from_ckpt) = (0, 0);
     for &index in &meta.trajectories {
-        let status = statuses.get(&index).cloned();
-        if matches!(status, Some(Status::Finished(_)) | Some(Status::Failed { .. })) {
+        let status = if present.binary_search(&index).is_ok() { Some(reader.status(index)?.0) } else { None };
+        let ended = matches!(status, Some(Status::Finished(_) | Status::Failed { .. }));
+        if ended && !killed {
+            keep.push((index, Keep::Whole));
             continue;
         }
         let (best, problems) = checkpoint::read_best(&checkpoint::path_for(&ckpt_dir, index));
         for p in &problems {
             tracing::warn!("{p}");
         }
+        if ended && best.is_none() {
+            // Ended with its checkpoints removed, which happens only after the
+            // flush that wrote its end; still, trust it only if it reads back whole.
+            match reader.read(index) {
+                Ok(_) => {
+                    keep.push((index, Keep::Whole));
+                    continue;
+                }
+                Err(e) => tracing::warn!("trajectory {index}: {e}; recomputing it from its start"),
+            }
+        }
         match best {
             Some((c, source)) => {
-                writer.truncate(index, c.rows_written, c.hops_written)?;
                 if source == Source::Previous {
-                    tracing::warn!("trajectory {index}: resuming from the previous checkpoint (step {})", c.state.step);
+                    tracing::warn!("trajectory {index}: resuming from the previous checkpoint (step {}): the newest was missing or damaged", c.state.step);
                     from_prev += 1;
                 }
                 from_ckpt += 1;
+                keep.push((index, Keep::Prefix(c.rows_written, c.hops_written)));
                 plans.push((index, Plan::FromCheckpoint(Box::new(c))));
             }
             None => {
                 if status.is_some() {
+                    keep.push((index, Keep::Prefix(0, 0)));
                     if !problems.is_empty() {
                         tracing::warn!("trajectory {index}: no usable checkpoint; recomputing it from its start");
                     }
-                    writer.truncate(index, 0, 0)?;
                 }
                 plans.push((index, Plan::Fresh));
             }
         }
     }
-    writer.flush()?;
+    let writer = if killed {
+        rebuild(&reader, &part, &keep)?;
+        drop(reader);
+        PartWriter::open_existing(&part)?.0
+    } else {
+        drop(reader);
+        let (mut w, _) = PartWriter::open_existing(&part)?;
+        for (index, what) in &keep {
+            if let Keep::Prefix(rows, hops) = what {
+                w.truncate(*index, *rows, *hops)?;
+            }
+        }
+        w.flush()?;
+        w
+    };
     tracing::info!("resuming {} of {} trajectories ({} from checkpoints)", plans.len(), meta.trajectories.len(), from_ckpt);
     let mut report = execute(cfg, dir, k, writer, plans, opts)?;
     report.part = part;
@@ -522,6 +560,48 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
     report.resumed_from_previous = from_prev;
     finish_report(&mut report)?;
     Ok(report)
+}
+
+/// What resume keeps of a trajectory already in the part file.
+enum Keep {
+    /// Everything (it ended and reads back completely).
+    Whole,
+    /// The first rows and hops (what its checkpoint covers; (0, 0) to recompute).
+    Prefix(u64, u64),
+}
+
+fn with_suffix(path: &Path, suffix: &str) -> PathBuf {
+    let mut s = path.as_os_str().to_owned();
+    s.push(suffix);
+    PathBuf::from(s)
+}
+
+/// Write the trustworthy content of a killed writer's part file into a new
+/// file and put it in the old one's place (the old one is kept as
+/// `*.killed` until the new one is in place).
+fn rebuild(reader: &PartReader, part: &Path, keep: &[(usize, Keep)]) -> Result<(), RunError> {
+    let tmp = with_suffix(part, ".rebuild");
+    let _ = std::fs::remove_file(&tmp);
+    let mut w = PartWriter::create(&tmp, reader.meta())?;
+    for (index, what) in keep {
+        let data = match what {
+            Keep::Whole => reader.read(*index)?,
+            Keep::Prefix(0, 0) => continue,
+            Keep::Prefix(rows, hops) => reader.read_prefix(*index, *rows, *hops)?,
+        };
+        w.begin(&data.header)?;
+        w.append(*index, &data.rows, &data.hops)?;
+        if let Keep::Whole = what {
+            w.set_status(*index, &data.status)?;
+        }
+    }
+    w.close()?;
+    let io = |e: std::io::Error| RunError::Directory { path: part.to_path_buf(), message: format!("replacing it with its rebuilt copy: {e}") };
+    let killed_copy = with_suffix(part, ".killed");
+    std::fs::rename(part, &killed_copy).map_err(io)?;
+    std::fs::rename(&tmp, part).map_err(io)?;
+    let _ = std::fs::remove_file(&killed_copy);
+    Ok(())
 }
 
 fn finish_report(report: &mut RunReport) -> Result<(), RunError> {
