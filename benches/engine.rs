@@ -110,6 +110,102 @@ fn report(name: &str, cfg: &RunConfig) {
     );
 }
 
+/// Writer throughput: rows of a 20-atom (60 coordinates), 5-state system
+/// appended in batches of 100, flushed after every batch, against the same
+/// rows serialised to memory only (the reference).
+fn writer_throughput(dir: &Path) {
+    use flipswarm::ensemble::h5::PartWriter;
+    use flipswarm::ensemble::record::{PartMeta, StepRow, TrajectoryHeader};
+    use num_complex::Complex64;
+    let (n_dof, n_states, trajectories, rows_each) = (60, 5, 20, 2000);
+    let meta = PartMeta {
+        config_toml: String::new(),
+        program_version: "bench".into(),
+        created: "2026-01-01T00:00:00Z".into(),
+        n_states,
+        n_dof,
+        masses: vec![1.0; n_dof],
+        slice: (0, 1),
+        trajectories: (0..trajectories).collect(),
+        timestep_au: 1.0,
+    };
+    let row = |k: u64| StepRow {
+        step: k,
+        time: k as f64,
+        q: (0..n_dof).map(|i| (i as f64 + k as f64).sin()).collect(),
+        v: vec![0.1; n_dof],
+        energies: vec![-1.0; n_states],
+        active: 1,
+        amplitudes: vec![Complex64::new(0.3, 0.1); n_states],
+        kinetic: 0.1,
+        potential: -1.0,
+        total: -0.9,
+    };
+    let batch: Vec<StepRow> = (0..100).map(row).collect();
+    let path = dir.join("writer-bench.h5");
+    let _ = std::fs::remove_file(&path);
+    let t = Instant::now();
+    let mut w = PartWriter::create(&path, &meta).expect("create bench file");
+    for i in 0..trajectories {
+        w.begin(&TrajectoryHeader { index: i, q0: vec![0.0; n_dof], v0: vec![0.0; n_dof], initial_state: 1, seed: 0 }).expect("begin");
+    }
+    for _ in 0..rows_each / 100 {
+        for i in 0..trajectories {
+            w.append(i, &batch, &[]).expect("append");
+        }
+        w.flush().expect("flush");
+    }
+    w.close().expect("close");
+    let secs = t.elapsed().as_secs_f64();
+    let rows = (trajectories * rows_each) as f64;
+    let t = Instant::now();
+    let mut bytes = 0usize;
+    for _ in 0..rows_each / 100 {
+        for _ in 0..trajectories {
+            bytes += serde_json::to_vec(&batch).expect("serialise").len();
+        }
+    }
+    let rsecs = t.elapsed().as_secs_f64();
+    let size = std::fs::metadata(&path).map(|m| m.len()).unwrap_or(0) as f64 / 1e6;
+    println!(
+        "{:<34} {:>9.0} rows/s ({size:.1} MB file) | reference (JSON to memory, {:.0} MB) {:>9.0} rows/s | ratio {:>5.2}",
+        "writer: 60 coords x 5 states",
+        rows / secs,
+        bytes as f64 / 1e6,
+        rows / rsecs,
+        (rows / secs) / (rows / rsecs)
+    );
+    let _ = std::fs::remove_file(&path);
+}
+
+/// The same ensemble run in memory (reference) and into a run directory with
+/// every row written and a checkpoint every 200 steps.
+fn output_overhead(cfg: &RunConfig, dir: &Path) {
+    use flipswarm::ensemble::runner;
+    use std::sync::atomic::AtomicBool;
+    use std::sync::Arc;
+    let t = Instant::now();
+    swarm::run(cfg, 1).expect("thread pool");
+    let plain = t.elapsed().as_secs_f64();
+    let mut cfg = cfg.clone();
+    cfg.output.record_every = 1;
+    cfg.output.checkpoint_every = 200;
+    let model = cfg.model.clone();
+    let factory = move |_: usize| swarm::make_backend(&model);
+    let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let run_dir = dir.join("overhead-run");
+    let _ = std::fs::remove_dir_all(&run_dir);
+    let t = Instant::now();
+    runner::start(&cfg, &run_dir, (0, 1), &opts).expect("run into directory");
+    let with_output = t.elapsed().as_secs_f64();
+    println!(
+        "{:<34} {with_output:>7.3} s with output | reference (no output) {plain:>7.3} s | overhead {:>6.1} % (goal < 2 %)",
+        "output + checkpoints (LVC)",
+        100.0 * (with_output / plain - 1.0)
+    );
+    let _ = std::fs::remove_dir_all(&run_dir);
+}
+
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
     let scale = if quick { 10 } else { 1 };
@@ -117,7 +213,10 @@ fn main() {
     report("Tully 1, k = 20, decoherence", &tully_config(2000 / scale));
     let dir = std::env::temp_dir().join(format!("flipswarm-bench-{}", std::process::id()));
     std::fs::create_dir_all(&dir).expect("temp dir");
-    report("LVC 3 states x 10 modes", &lvc_config(200 / scale, &dir));
+    let lvc = lvc_config(200 / scale, &dir);
+    report("LVC 3 states x 10 modes", &lvc);
+    writer_throughput(&dir);
+    output_overhead(&lvc, &dir);
     std::fs::remove_dir_all(&dir).ok();
     let t = Instant::now();
     let cfg = tully_config(2000);

@@ -82,7 +82,7 @@ pub fn stop_flag() -> std::sync::Arc<std::sync::atomic::AtomicBool> {
 }
 
 /// Run (or resume) into a directory and report; returns the exit code.
-pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (usize, usize), threads: usize, resume: bool, json: bool) -> i32 {
+pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (usize, usize), threads: usize, resume: bool, json: bool, populations: Option<&std::path::Path>) -> i32 {
     use crate::ensemble::runner;
     let stop = stop_flag();
     let model = cfg.model.clone();
@@ -102,12 +102,29 @@ pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (u
         }
     };
     let part = report.part.display();
+    // The summary is computed from what is on disk: the file is the result.
+    let outcomes = match read_outcomes(&report.part) {
+        Ok(o) => o,
+        Err(e) => {
+            eprintln!("error: {e}");
+            return exit::RUNTIME;
+        }
+    };
+    let summary = crate::swarm::Summary::new(cfg, &outcomes);
+    if let Some(p) = populations {
+        let curves = crate::swarm::PopulationCurves::new(cfg, &outcomes, cfg.output.record_every);
+        if let Err(e) = std::fs::write(p, curves.to_csv()) {
+            eprintln!("error: cannot write {}: {e}", p.display());
+            return exit::RUNTIME;
+        }
+    }
     if json {
         let v = serde_json::json!({
             "part": report.part, "finished": report.finished, "failed": report.failed,
             "stopped": report.stopped, "pending": report.pending,
             "resumed_from_checkpoint": report.resumed_from_checkpoint,
             "resumed_from_previous_checkpoint": report.resumed_from_previous,
+            "summary": summary,
         });
         println!("{v}");
     } else {
@@ -115,6 +132,8 @@ pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (u
         if report.resumed_from_previous > 0 {
             println!("{} trajectories resumed from their previous checkpoint (the newest was missing or damaged)", report.resumed_from_previous);
         }
+        println!();
+        print!("{}", summary.to_text());
     }
     if report.stopped + report.pending > 0 {
         eprintln!("stopped: {} trajectories can be continued with `flipswarm resume {}`", report.stopped + report.pending, dir.display());
@@ -124,4 +143,17 @@ pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (u
         return exit::SOME_FAILED;
     }
     exit::OK
+}
+
+/// Outcomes of the ended trajectories of a part file (for the summary).
+fn read_outcomes(part: &std::path::Path) -> Result<Vec<crate::swarm::Outcome>, crate::ensemble::h5::EnsembleError> {
+    let reader = crate::ensemble::h5::PartReader::open(part)?;
+    let mut out = Vec::new();
+    for i in reader.trajectory_indices() {
+        let data = reader.read(i)?;
+        if !matches!(data.status, crate::dynamics::Status::Running) {
+            out.push(crate::swarm::Outcome::from_data(&data));
+        }
+    }
+    Ok(out)
 }

@@ -47,7 +47,7 @@ pub fn execute(args: &ResumeArgs) -> i32 {
         }
     }
     let slice = args.slice.or_else(|| single_slice(&args.dir)).unwrap_or((0, 1));
-    super::run_into(&cfg, &args.dir, slice, args.threads, true, args.json)
+    super::run_into(&cfg, &args.dir, slice, args.threads, true, args.json, None)
 }
 
 /// The slice of the only part file in `dir`, if there is exactly one.

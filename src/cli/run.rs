@@ -73,7 +73,7 @@ pub fn execute(args: &RunArgs) -> i32 {
         (cfg.settings.max_time / cfg.settings.dt).ceil()
     );
     if let Some(dir) = &args.out {
-        return super::run_into(&cfg, dir, args.slice.unwrap_or((0, 1)), args.threads, false, args.json);
+        return super::run_into(&cfg, dir, args.slice.unwrap_or((0, 1)), args.threads, false, args.json, args.populations.as_deref());
     }
     if args.slice.is_some() {
         eprintln!("error: --slice needs --out (a slice is only useful when its results are saved)");

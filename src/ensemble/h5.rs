@@ -508,12 +508,10 @@ fn append_rows<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, start: usize, wid
         return ds.write_slice(data, start..end).map_err(cx.h5(object, "writing rows"));
     }
     ds.resize((end, width)).map_err(cx.h5(object, "extending"))?;
-    // The bindings write two-dimensional blocks only from ndarray views, which
-    // this crate does not depend on; rows go one at a time through the chunk cache.
-    for (r, row) in data.chunks_exact(width).enumerate() {
-        ds.write_slice(row, (start + r, ..)).map_err(cx.h5(object, "writing rows"))?;
-    }
-    Ok(())
+    // One block write for all rows (the bindings take 2-D blocks as ndarray views).
+    let block = ndarray::ArrayView2::from_shape((n, width), &data[..n * width])
+        .map_err(|e| cx.layout(object, format!("row block of {n}×{width}: {e}")))?;
+    ds.write_slice(&block, (start..end, ..)).map_err(cx.h5(object, "writing rows"))
 }
 
 /// Number of rows of a dataset.
