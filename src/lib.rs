@@ -7,6 +7,7 @@
 //! amplitudes, hops, decoherence) → [`swarm`] (ensembles of trajectories) .
 //! Everything inside is in atomic units; conversions live in [`units`].
 
+pub mod analysis;
 pub mod chem;
 pub mod cli;
 pub mod config;

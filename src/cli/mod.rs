@@ -1,6 +1,7 @@
 //! Command-line interface: argument definitions and one function per
 //! subcommand. No physics here.
 
+pub mod analyze;
 pub mod inspect;
 pub mod merge;
 pub mod resume;
@@ -62,6 +63,9 @@ pub enum Command {
     Inspect(inspect::InspectArgs),
     /// Gather part files into one ensemble file.
     Merge(merge::MergeArgs),
+    /// Analyse ensemble files: populations with confidence bands, lifetimes
+    /// with bootstrap intervals, hop statistics, plots and tables.
+    Analyze(analyze::AnalyzeArgs),
     /// List every configuration key with its unit and default.
     Keys,
 }

@@ -15,6 +15,7 @@
 //! the one that never stopped.
 
 pub mod models;
+pub mod qc;
 
 use nalgebra::DMatrix;
 use serde::{Deserialize, Serialize};

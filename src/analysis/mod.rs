@@ -1,0 +1,1 @@
+//! Analysis of ensemble files. Placeholder: being written.

@@ -1,0 +1,1 @@
+//! The built-in quantum-chemistry back end. Placeholder: being written.
