@@ -43,6 +43,7 @@ fn main() {
         Command::Resume(args) => cli::resume::execute(args),
         Command::Inspect(args) => cli::inspect::execute(args),
         Command::Merge(args) => cli::merge::execute(args),
+        Command::Export(args) => cli::export::execute(args),
         Command::Analyze(args) => cli::analyze::execute(args),
         Command::Keys => {
             for k in flipswarm::config::SCHEMA {

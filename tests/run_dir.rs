@@ -75,3 +75,88 @@ fn existing_run_directory_is_refused() {
     assert_eq!(std::fs::read(out.join("part-0000-of-0001.h5")).unwrap(), before);
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// `export --format csv` writes one row per recorded step with energies in
+/// eV (CODATA 2018 hartree) and populations that sum to 1.
+#[test]
+fn export_csv_has_one_row_per_recorded_step() {
+    let dir = scratch("export-csv");
+    let out = dir.join("run");
+    let o = out.to_str().unwrap();
+    json(&["-q", "run", "ensembles/tully-1.toml", "--json", "-o", o, "--set", "swarm.trajectories=3"]);
+    let csv = dir.join("t.csv");
+    let st = Command::new(BIN).args(["export", o, "-t", "1", "-o", csv.to_str().unwrap()]).output().unwrap();
+    assert_eq!(st.status.code(), Some(0), "{}", String::from_utf8_lossy(&st.stderr));
+    let text = std::fs::read_to_string(&csv).unwrap();
+    let reader = flipswarm::ensemble::h5::PartReader::open(&out.join("part-0000-of-0001.h5")).unwrap();
+    let data = reader.read(1).unwrap();
+    let lines: Vec<&str> = text.lines().collect();
+    assert_eq!(lines.len(), data.rows.len() + 1);
+    let header: Vec<&str> = lines[0].split(',').collect();
+    let pop0 = header.iter().position(|h| *h == "population_0").unwrap();
+    let tot = header.iter().position(|h| *h == "total_ev").unwrap();
+    for (line, row) in lines[1..].iter().zip(&data.rows) {
+        let f: Vec<f64> = line.split(',').map(|x| x.parse().unwrap()).collect();
+        assert!((f[pop0] + f[pop0 + 1] - 1.0).abs() < 1e-9);
+        assert!((f[tot] - row.total * flipswarm::units::HARTREE_IN_EV).abs() < 1e-12);
+    }
+    // An existing output file is refused.
+    let again = Command::new(BIN).args(["export", o, "-t", "1", "-o", csv.to_str().unwrap()]).output().unwrap();
+    assert_eq!(again.status.code(), Some(2));
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// `export --format xyz` writes extended-XYZ frames readable by our own XYZ
+/// reader, with positions converted to Å (CODATA 2018 bohr); a wrong element
+/// count is refused with the numbers in the message.
+#[test]
+fn export_xyz_round_trips_through_the_reader() {
+    use flipswarm::ensemble::h5::PartWriter;
+    use flipswarm::ensemble::record::{PartMeta, StepRow, TrajectoryHeader};
+    use num_complex::Complex64;
+    let dir = scratch("export-xyz");
+    let part = dir.join("p.h5");
+    let meta = PartMeta {
+        config_toml: String::new(),
+        program_version: "test".into(),
+        created: "2026-12-01T00:00:00Z".into(),
+        n_states: 2,
+        n_dof: 6,
+        masses: vec![1837.0; 6],
+        slice: (0, 1),
+        trajectories: vec![0],
+        timestep_au: 10.0,
+    };
+    let mut w = PartWriter::create(&part, &meta).unwrap();
+    w.begin(&TrajectoryHeader { index: 0, q0: vec![0.0; 6], v0: vec![0.0; 6], initial_state: 1, seed: 1 }).unwrap();
+    let rows: Vec<StepRow> = (0..4)
+        .map(|k| StepRow {
+            step: k,
+            time: 10.0 * k as f64,
+            q: vec![0.0, 0.0, 0.0, 0.0, 0.0, 1.4 + 0.1 * k as f64],
+            v: vec![0.0; 6],
+            energies: vec![-1.1, -0.7],
+            active: 1,
+            amplitudes: vec![Complex64::new(0.6, 0.0), Complex64::new(0.0, 0.8)],
+            kinetic: 0.0,
+            potential: -0.7,
+            total: -0.7,
+        })
+        .collect();
+    w.append(0, &rows, &[]).unwrap();
+    w.close().unwrap();
+    let xyz = dir.join("t.xyz");
+    let st = Command::new(BIN).args(["export", part.to_str().unwrap(), "-t", "0", "--format", "xyz", "--elements", "H,H", "-o", xyz.to_str().unwrap()]).output().unwrap();
+    assert_eq!(st.status.code(), Some(0), "{}", String::from_utf8_lossy(&st.stderr));
+    let frames = flipswarm::chem::xyz::read_extxyz_file(&xyz).unwrap();
+    assert_eq!(frames.len(), 4);
+    for (k, (frame, props)) in frames.iter().enumerate() {
+        let d = frame.molecule.distance_bohr(0, 1).unwrap();
+        assert!((d - (1.4 + 0.1 * k as f64)).abs() < 1e-9, "frame {k}: {d}");
+        assert_eq!(props.get_i64("step"), Some(k as i64));
+    }
+    let bad = Command::new(BIN).args(["export", part.to_str().unwrap(), "-t", "0", "--format", "xyz", "--elements", "H,H,O", "-o", dir.join("b.xyz").to_str().unwrap()]).output().unwrap();
+    assert_eq!(bad.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&bad.stderr).contains("3 atoms"), "{}", String::from_utf8_lossy(&bad.stderr));
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -2,6 +2,7 @@
 //! subcommand. No physics here.
 
 pub mod analyze;
+pub mod export;
 pub mod inspect;
 pub mod merge;
 pub mod resume;
@@ -63,6 +64,8 @@ pub enum Command {
     Inspect(inspect::InspectArgs),
     /// Gather part files into one ensemble file.
     Merge(merge::MergeArgs),
+    /// Write chosen trajectories as CSV or extended XYZ (for molecular viewers).
+    Export(export::ExportArgs),
     /// Analyse ensemble files: populations with confidence bands, lifetimes
     /// with bootstrap intervals, hop statistics, plots and tables.
     Analyze(analyze::AnalyzeArgs),
