@@ -160,3 +160,28 @@ fn export_xyz_round_trips_through_the_reader() {
     assert!(String::from_utf8_lossy(&bad.stderr).contains("3 atoms"), "{}", String::from_utf8_lossy(&bad.stderr));
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// A run whose part file could not fit on its file system is refused before
+/// anything is written, with the estimate in the message (the estimate is
+/// an upper bound: rows × bytes per row, checked against a real file here).
+#[test]
+fn runs_that_cannot_fit_on_disk_are_refused_up_front() {
+    let dir = scratch("disk");
+    let out = dir.join("huge");
+    let st = Command::new(BIN)
+        .args(["-q", "run", "ensembles/three-state-cone.toml", "-o", out.to_str().unwrap(), "--set", "swarm.trajectories=10000000", "--set", "dynamics.duration_fs=100000"])
+        .output()
+        .unwrap();
+    assert_eq!(st.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&st.stderr);
+    assert!(err.contains("would need about") && err.contains("free"), "{err}");
+    assert!(!out.exists(), "nothing may be created");
+    // The estimate bounds a real file from above, within a factor of 3.
+    let small = dir.join("small");
+    json(&["-q", "run", "ensembles/three-state-cone.toml", "--json", "-o", small.to_str().unwrap(), "--set", "swarm.trajectories=20"]);
+    let cfg = flipswarm::config::load_file(std::path::Path::new("ensembles/three-state-cone.toml"), &["swarm.trajectories=20".into()]).unwrap();
+    let estimate = flipswarm::ensemble::runner::estimated_bytes(&cfg, (0, 1)) as f64;
+    let actual = std::fs::metadata(small.join("part-0000-of-0001.h5")).unwrap().len() as f64;
+    assert!(estimate >= actual && estimate < 3.0 * actual, "estimate {estimate} vs actual {actual}");
+    let _ = std::fs::remove_dir_all(&dir);
+}

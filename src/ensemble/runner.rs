@@ -408,6 +408,17 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
     if dir.join("run.toml").exists() || dir.join(part_name(k, n)).exists() {
         return Err(derr("already holds a run; use `flipswarm resume` to continue it, or choose another directory".into()));
     }
+    let estimate = estimated_bytes(cfg, slice);
+    if let Some(free) = free_bytes(dir) {
+        tracing::info!("expected size of the part file: {}, free on its file system: {}", human(estimate), human(free));
+        if estimate > free {
+            return Err(derr(format!(
+                "the part file would need about {} but only {} are free; raise output.record_every_steps or free space",
+                human(estimate),
+                human(free)
+            )));
+        }
+    }
     std::fs::create_dir_all(checkpoint_dir(dir, k)).map_err(|e| derr(format!("cannot create: {e}")))?;
     let cfg = &self_contained(cfg, dir)?;
     let toml_path = dir.join("run.toml");
@@ -434,6 +445,41 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
     report.part = part;
     finish_report(&mut report)?;
     Ok(report)
+}
+
+/// Upper estimate of the part file's size for slice (k, n): every
+/// trajectory running to the time limit, one row every `record_every`
+/// steps (coordinates, velocities, energies, amplitudes, four scalars and the
+/// step), plus 25 % for HDF5 structure.
+pub fn estimated_bytes(cfg: &RunConfig, slice: (usize, usize)) -> u64 {
+    let (n_dof, n_states) = (cfg.model.n_dof() as u64, cfg.model.n_states() as u64);
+    let steps = (cfg.settings.max_time / cfg.settings.dt).ceil() as u64;
+    let rows = steps / cfg.output.record_every + 2;
+    let row_bytes = 8 * (2 * n_dof + n_states + 5) + 4 + 16 * n_states;
+    let trajectories = slice_indices(cfg.trajectories, slice.0, slice.1).len() as u64;
+    trajectories * rows * row_bytes * 5 / 4
+}
+
+/// Free space (bytes) on the file system that will hold `dir`.
+fn free_bytes(dir: &Path) -> Option<u64> {
+    use std::os::unix::ffi::OsStrExt;
+    let probe = dir.ancestors().find(|p| p.exists())?;
+    let probe = if probe.as_os_str().is_empty() { Path::new(".") } else { probe };
+    let c = std::ffi::CString::new(probe.as_os_str().as_bytes()).ok()?;
+    let mut st: libc::statvfs = unsafe { std::mem::zeroed() };
+    // SAFETY: `c` is a valid NUL-terminated path and `st` a valid out-pointer.
+    let rc = unsafe { libc::statvfs(c.as_ptr(), &mut st) };
+    (rc == 0).then(|| st.f_bavail as u64 * st.f_frsize as u64)
+}
+
+fn human(bytes: u64) -> String {
+    let b = bytes as f64;
+    match b {
+        b if b >= 1e12 => format!("{:.1} TB", b / 1e12),
+        b if b >= 1e9 => format!("{:.1} GB", b / 1e9),
+        b if b >= 1e6 => format!("{:.1} MB", b / 1e6),
+        _ => format!("{:.0} kB", b / 1e3),
+    }
 }
 
 /// The name under which an LVC model file is copied into the run directory.
