@@ -10,6 +10,7 @@
 pub mod analysis;
 pub mod chem;
 pub mod cli;
+pub mod sampling;
 pub mod config;
 pub mod dynamics;
 pub mod electronic;
