@@ -17,9 +17,8 @@
 //! its state, generator and snapshot, the continued trajectory is bit-for-bit
 //! the one that never stopped.
 
-use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{self, RecvTimeoutError, Sender, SyncSender};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
@@ -32,7 +31,7 @@ use super::record::{PartMeta, StepRow, TrajectoryHeader};
 use crate::config::RunConfig;
 use crate::dynamics::{Flow, Hop, Observer, RecordKind, Status, StepRecord, Trajectory, TrajectoryState};
 use crate::electronic::Backend;
-use crate::swarm;
+use crate::swarm::{self, Progress};
 
 /// Creates the back end of trajectory `index` (tests inject faults here).
 pub type BackendFactory<'a> = dyn Fn(usize) -> Box<dyn Backend> + Sync + 'a;
@@ -696,48 +695,4 @@ fn execute(cfg: &RunConfig, dir: &Path, k: usize, writer: PartWriter, plans: Vec
     Ok(RunReport::default())
 }
 
-/// A progress bar on a terminal, periodic log lines otherwise.
-struct Progress {
-    bar: Option<indicatif::ProgressBar>,
-    done: AtomicUsize,
-    total: usize,
-    started: Instant,
-    last: Mutex<Instant>,
-}
-
-impl Progress {
-    fn new(total: usize, bar: bool) -> Self {
-        let bar = (bar && std::io::stderr().is_terminal()).then(|| {
-            let b = indicatif::ProgressBar::new(total as u64);
-            if let Ok(style) = indicatif::ProgressStyle::with_template(
-                "{elapsed_precise} [{bar:40}] {pos}/{len} trajectories, {per_sec}, about {eta} left",
-            ) {
-                b.set_style(style.progress_chars("=> "));
-            }
-            b
-        });
-        Self { bar, done: AtomicUsize::new(0), total, started: Instant::now(), last: Mutex::new(Instant::now()) }
-    }
-
-    fn tick(&self) {
-        let n = self.done.fetch_add(1, Ordering::Relaxed) + 1;
-        if let Some(b) = &self.bar {
-            b.inc(1);
-            return;
-        }
-        let mut last = self.last.lock().unwrap_or_else(|p| p.into_inner());
-        if last.elapsed().as_secs_f64() > 2.0 || n == self.total {
-            *last = Instant::now();
-            let secs = self.started.elapsed().as_secs_f64();
-            let eta = secs / n as f64 * (self.total - n) as f64;
-            tracing::info!("trajectories done: {n}/{} ({secs:.1} s elapsed, about {eta:.0} s left)", self.total);
-        }
-    }
-
-    fn finish(&self) {
-        if let Some(b) = &self.bar {
-            b.finish_and_clear();
-        }
-    }
-}
 

@@ -8,6 +8,7 @@
 
 mod summary;
 
+use std::io::IsTerminal;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
 use std::time::Instant;
@@ -163,33 +164,71 @@ pub fn run_one(cfg: &RunConfig, index: usize, record_every: u64) -> Outcome {
     }
 }
 
-/// Run trajectories `indices` on `threads` threads (0 = all cores), with
-/// periodic progress lines in the log. Outcomes come back in index order.
+/// Run trajectories `indices` on `threads` threads (0 = all cores), with a
+/// progress bar on a terminal or periodic log lines. Outcomes come back in
+/// index order.
 pub fn run_indices(cfg: &RunConfig, indices: &[usize], threads: usize, record_every: u64) -> Result<Vec<Outcome>, rayon::ThreadPoolBuildError> {
     let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build()?;
-    let done = AtomicUsize::new(0);
-    let started = Instant::now();
-    let last = Mutex::new(Instant::now());
-    let total = indices.len();
+    let progress = Progress::new(indices.len(), true);
     let outcomes = pool.install(|| {
         indices
             .par_iter()
             .map(|&i| {
                 let out = run_one(cfg, i, record_every);
-                let n = done.fetch_add(1, Ordering::Relaxed) + 1;
-                let mut last = last.lock().unwrap_or_else(|p| p.into_inner());
-                if last.elapsed().as_secs_f64() > 2.0 || n == total {
-                    *last = Instant::now();
-                    let secs = started.elapsed().as_secs_f64();
-                    let eta = secs / n as f64 * (total - n) as f64;
-                    tracing::info!("trajectories done: {n}/{total} ({secs:.1} s elapsed, about {eta:.0} s left)");
-                }
+                progress.tick();
                 out
             })
             .collect()
     });
+    progress.finish();
     Ok(outcomes)
 }
+
+/// A progress bar on a terminal, periodic log lines otherwise.
+pub(crate) struct Progress {
+    bar: Option<indicatif::ProgressBar>,
+    done: AtomicUsize,
+    total: usize,
+    started: Instant,
+    last: Mutex<Instant>,
+}
+
+impl Progress {
+    pub(crate) fn new(total: usize, bar: bool) -> Self {
+        let bar = (bar && std::io::stderr().is_terminal()).then(|| {
+            let b = indicatif::ProgressBar::new(total as u64);
+            if let Ok(style) = indicatif::ProgressStyle::with_template(
+                "{elapsed_precise} [{bar:40}] {pos}/{len} trajectories, {per_sec}, about {eta} left",
+            ) {
+                b.set_style(style.progress_chars("=> "));
+            }
+            b
+        });
+        Self { bar, done: AtomicUsize::new(0), total, started: Instant::now(), last: Mutex::new(Instant::now()) }
+    }
+
+    pub(crate) fn tick(&self) {
+        let n = self.done.fetch_add(1, Ordering::Relaxed) + 1;
+        if let Some(b) = &self.bar {
+            b.inc(1);
+            return;
+        }
+        let mut last = self.last.lock().unwrap_or_else(|p| p.into_inner());
+        if last.elapsed().as_secs_f64() > 2.0 || n == self.total {
+            *last = Instant::now();
+            let secs = self.started.elapsed().as_secs_f64();
+            let eta = secs / n as f64 * (self.total - n) as f64;
+            tracing::info!("trajectories done: {n}/{} ({secs:.1} s elapsed, about {eta:.0} s left)", self.total);
+        }
+    }
+
+    pub(crate) fn finish(&self) {
+        if let Some(b) = &self.bar {
+            b.finish_and_clear();
+        }
+    }
+}
+
 
 /// How often (in steps) populations are recorded: about 200 points per curve.
 pub fn record_interval(cfg: &RunConfig) -> u64 {
