@@ -185,3 +185,72 @@ fn runs_that_cannot_fit_on_disk_are_refused_up_front() {
     assert!(estimate >= actual && estimate < 3.0 * actual, "estimate {estimate} vs actual {actual}");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+fn all_rows(part: &std::path::Path) -> Vec<(usize, Vec<u64>)> {
+    let r = flipswarm::ensemble::h5::PartReader::open(part).unwrap();
+    r.trajectory_indices()
+        .into_iter()
+        .map(|i| {
+            let d = r.read(i).unwrap();
+            let bits = d.rows.iter().flat_map(|row| row.q.iter().chain(&row.v).chain(&row.energies).map(|x| x.to_bits()).chain([row.step, row.active as u64])).collect();
+            (i, bits)
+        })
+        .collect()
+}
+
+/// Two slices run into the same directory and merged equal one unsliced run,
+/// bit for bit (each trajectory's streams depend only on seed and index).
+#[test]
+fn slices_merge_into_the_unsliced_run() {
+    let dir = scratch("slices");
+    let one = dir.join("one");
+    let two = dir.join("two");
+    let set = ["--set", "swarm.trajectories=9", "--set", "dynamics.duration_fs=8"];
+    let ens = "ensembles/three-state-cone.toml";
+    let mut a = vec!["-q", "run", ens, "-o", one.to_str().unwrap()];
+    a.extend(set);
+    assert_eq!(Command::new(BIN).args(&a).output().unwrap().status.code(), Some(0));
+    for k in ["0/2", "1/2"] {
+        let mut b = vec!["-q", "run", ens, "-o", two.to_str().unwrap(), "--slice", k];
+        b.extend(set);
+        let out = Command::new(BIN).args(&b).output().unwrap();
+        assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    }
+    let merged = dir.join("merged.h5");
+    let out = Command::new(BIN).args(["merge", two.to_str().unwrap(), "-o", merged.to_str().unwrap()]).output().unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(all_rows(&merged), all_rows(&one.join("part-0000-of-0001.h5")));
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// A run stopped before its part file existed, and a part file that cannot be
+/// read at all, are both resumed by computing the slice again — with the same
+/// result — and the unreadable file is kept aside, not deleted.
+#[test]
+fn resume_copes_with_missing_and_unreadable_part_files() {
+    let dir = scratch("unreadable");
+    let reference = dir.join("ref");
+    let set = ["--set", "swarm.trajectories=4", "--set", "dynamics.duration_fs=5"];
+    let mut a = vec!["-q", "run", "ensembles/three-state-cone.toml", "-o", reference.to_str().unwrap()];
+    a.extend(set);
+    assert_eq!(Command::new(BIN).args(&a).output().unwrap().status.code(), Some(0));
+    let want = all_rows(&reference.join("part-0000-of-0001.h5"));
+    // Only run.toml and the model copy: stopped before anything was written.
+    let early = dir.join("early");
+    std::fs::create_dir_all(&early).unwrap();
+    for f in ["run.toml", "lvc-model.toml"] {
+        std::fs::copy(reference.join(f), early.join(f)).unwrap();
+    }
+    let out = Command::new(BIN).args(["-q", "resume", early.to_str().unwrap()]).output().unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(all_rows(&early.join("part-0000-of-0001.h5")), want);
+    // A part file of garbage.
+    std::fs::write(early.join("part-0000-of-0001.h5"), b"not an HDF5 file at all").unwrap();
+    let out = Command::new(BIN).args(["resume", early.to_str().unwrap()]).output().unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("computing slice 0/1 again"));
+    assert_eq!(all_rows(&early.join("part-0000-of-0001.h5")), want);
+    let kept = std::fs::read_dir(&early).unwrap().flatten().any(|e| e.file_name().to_string_lossy().contains(".unreadable-"));
+    assert!(kept, "the unreadable file must be kept aside");
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -19,7 +19,7 @@
 
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::mpsc::{self, RecvTimeoutError, Sender, SyncSender};
+use std::sync::mpsc::{self, RecvTimeoutError, SyncSender};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
@@ -200,7 +200,7 @@ struct Recorder<'a> {
     hops: Vec<Hop>,
     last_recorded_step: Option<u64>,
     resumed: bool,
-    writer: Sender<ToWriter>,
+    writer: SyncSender<ToWriter>,
     checkpoint_path: PathBuf,
     stop: &'a AtomicBool,
     stopped: bool,
@@ -330,7 +330,7 @@ struct Session<'a> {
 }
 
 impl Session<'_> {
-    fn run_one(&self, index: usize, plan: Plan, writer: Sender<ToWriter>) -> Result<Ended, String> {
+    fn run_one(&self, index: usize, plan: Plan, writer: SyncSender<ToWriter>) -> Result<Ended, String> {
         if self.stop.load(Ordering::Relaxed) {
             return Ok(Ended::Skipped);
         }
@@ -404,8 +404,8 @@ pub struct Options<'a> {
 pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
     let (k, n) = slice;
     let derr = |message: String| RunError::Directory { path: dir.to_path_buf(), message };
-    if dir.join("run.toml").exists() || dir.join(part_name(k, n)).exists() {
-        return Err(derr("already holds a run; use `flipswarm resume` to continue it, or choose another directory".into()));
+    if dir.join(part_name(k, n)).exists() {
+        return Err(derr(format!("already holds a run of slice {k}/{n}; use `flipswarm resume` to continue it, or choose another directory")));
     }
     let estimate = estimated_bytes(cfg, slice);
     if let Some(free) = free_bytes(dir) {
@@ -419,8 +419,21 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
         }
     }
     std::fs::create_dir_all(checkpoint_dir(dir, k)).map_err(|e| derr(format!("cannot create: {e}")))?;
-    let cfg = &self_contained(cfg, dir)?;
+    let mut contained = self_contained(cfg, dir)?;
     let toml_path = dir.join("run.toml");
+    if toml_path.exists() {
+        // Other slices of the same ensemble share the directory and its
+        // run.toml; the stored text stays the reference for every part file.
+        let stored = std::fs::read_to_string(&toml_path).map_err(|e| derr(format!("cannot read run.toml: {e}")))?;
+        let mut theirs = crate::config::load_str(&stored, "run.toml", dir, &[])?;
+        theirs.effective_toml.clear();
+        contained.effective_toml.clear();
+        if theirs != contained {
+            return Err(derr("already holds a run of a different configuration (run.toml differs); choose another directory".into()));
+        }
+        contained.effective_toml = stored;
+    }
+    let cfg = &contained;
     if !toml_path.exists() {
         write_new(&toml_path, cfg.effective_toml.as_bytes()).map_err(|e| derr(format!("cannot write run.toml: {e}")))?;
     }
@@ -523,9 +536,27 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
         std::fs::rename(&killed_copy, &part).map_err(|e| RunError::Directory { path: part.clone(), message: e.to_string() })?;
     }
     if !part.exists() {
-        return Err(RunError::Directory { path: part, message: "no such part file: nothing to resume".into() });
+        if !dir.join("run.toml").exists() {
+            return Err(RunError::Directory { path: dir.to_path_buf(), message: "not a run directory (no run.toml)".into() });
+        }
+        // Stopped before its part file existed: nothing was computed yet.
+        tracing::info!("{}: not written yet (the run stopped before it began); starting slice {k}/{n}", part.display());
+        return start(cfg, dir, slice, opts);
     }
-    let reader = PartReader::open(&part)?;
+    let reader = match PartReader::open(&part) {
+        Ok(r) => r,
+        Err(e) => {
+            // Unreadable (e.g. killed while being created): nothing in it can
+            // be trusted, and the checkpoints' rows were in it. Keep it aside,
+            // say so, and compute the slice again (deterministically the same).
+            let aside = with_suffix(&part, &format!(".unreadable-{}", std::process::id()));
+            tracing::warn!("{e}; moving it to {} and computing slice {k}/{n} again from the start", aside.display());
+            std::fs::rename(&part, &aside).map_err(|e| RunError::Directory { path: part.clone(), message: e.to_string() })?;
+            let ckpt_dir = checkpoint_dir(dir, k);
+            let _ = std::fs::remove_dir_all(&ckpt_dir);
+            return start(cfg, dir, slice, opts);
+        }
+    };
     let meta = reader.meta().clone();
     if meta.config_toml != cfg.effective_toml {
         return Err(RunError::Directory { path: part, message: "was written with a different configuration than run.toml".into() });
@@ -668,7 +699,9 @@ fn finish_report(report: &mut RunReport) -> Result<(), RunError> {
 }
 
 fn execute(cfg: &RunConfig, dir: &Path, k: usize, writer: PartWriter, plans: Vec<(usize, Plan)>, opts: &Options) -> Result<RunReport, RunError> {
-    let (tx, rx) = mpsc::channel();
+    // Bounded: when the writer falls behind, trajectories wait for it instead
+    // of piling rows up in memory.
+    let (tx, rx) = mpsc::sync_channel(256);
     let writer_thread = std::thread::spawn(move || writer_loop(writer, rx));
     let session = Session { cfg, factory: opts.factory, ckpt_dir: checkpoint_dir(dir, k), stop: &opts.stop };
     let pool = rayon::ThreadPoolBuilder::new().num_threads(opts.threads).build().map_err(|e| RunError::Threads(e.to_string()))?;
