@@ -369,3 +369,52 @@ fn a_failing_trajectory_leaves_the_others_complete() {
         }
     }
 }
+
+/// Regression test for a bug found by the SIGKILL test: a trajectory resumed
+/// from a checkpoint taken at its very last step (off the row grid) lost its
+/// final row. Here every checkpoint falls on the last step: 40 steps per
+/// trajectory, a checkpoint every 40 steps, rows every 3 steps.
+#[test]
+fn resume_from_a_checkpoint_at_the_last_step_keeps_the_final_row() {
+    let s = Scratch::new("laststep", 2, 2.0);
+    let text = std::fs::read_to_string(s.ens()).unwrap();
+    let cfg = load_str(&text, "ens.toml", &s.0, &[]).unwrap();
+    assert_eq!((cfg.settings.max_time / cfg.settings.dt).round() as u64, 40);
+    let model = cfg.model.clone();
+    let factory = move |_: usize| swarm::make_backend(&model);
+    // A stop flag raised from the first checkpoint on: the checkpoint at step
+    // 40 is written, then the trajectory stops before its end is recorded.
+    let stop = Arc::new(AtomicBool::new(false));
+    struct Raise(Arc<AtomicBool>, Box<dyn Backend>, usize);
+    impl Backend for Raise {
+        fn info(&self) -> BackendInfo {
+            self.1.info()
+        }
+        fn compute(&mut self, q: &[f64], r: &Request) -> Result<&Results, BackendError> {
+            self.2 += 1;
+            if self.2 >= 40 {
+                self.0.store(true, Ordering::Relaxed);
+            }
+            self.1.compute(q, r)
+        }
+        fn snapshot(&self) -> Snapshot {
+            self.1.snapshot()
+        }
+        fn restore(&mut self, s: &Snapshot) -> Result<(), BackendError> {
+            self.1.restore(s)
+        }
+    }
+    let flag = stop.clone();
+    let m2 = cfg.model.clone();
+    let raising = move |_: usize| -> Box<dyn Backend> { Box::new(Raise(flag.clone(), swarm::make_backend(&m2), 0)) };
+    let dir = s.run_dir("stopped");
+    let opts = runner::Options { threads: 1, stop: stop.clone(), factory: &raising, progress_bar: false };
+    let first = runner::start(&cfg, &dir, (0, 1), &opts).unwrap();
+    assert!(first.stopped + first.pending > 0, "{first:?}");
+    let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let stored = runner::load_run_config(&dir).unwrap();
+    runner::resume(&stored, &dir, (0, 1), &opts).unwrap();
+    let reference = s.run_dir("reference");
+    runner::start(&cfg, &reference, (0, 1), &opts).unwrap();
+    assert_identical(&part(&dir), &part(&reference));
+}

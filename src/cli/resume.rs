@@ -5,7 +5,6 @@ use std::path::PathBuf;
 use clap::Args;
 
 use super::exit;
-use crate::config;
 
 /// Arguments of `flipswarm resume`.
 #[derive(Debug, Args)]
@@ -25,27 +24,13 @@ pub struct ResumeArgs {
 
 /// Execute; returns the exit code.
 pub fn execute(args: &ResumeArgs) -> i32 {
-    let toml = args.dir.join("run.toml");
-    if !toml.exists() {
-        eprintln!("error: {}: not a run directory (no run.toml)", args.dir.display());
-        return exit::INPUT;
-    }
-    let mut cfg = match config::load_file(&toml, &[]) {
+    let cfg = match crate::ensemble::runner::load_run_config(&args.dir) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("error: {e}");
             return exit::INPUT;
         }
     };
-    // The stored text is the effective configuration; keep it verbatim so the
-    // part file's copy matches.
-    match std::fs::read_to_string(&toml) {
-        Ok(text) => cfg.effective_toml = text,
-        Err(e) => {
-            eprintln!("error: {}: {e}", toml.display());
-            return exit::INPUT;
-        }
-    }
     let slice = args.slice.or_else(|| single_slice(&args.dir)).unwrap_or((0, 1));
     super::run_into(&cfg, &args.dir, slice, args.threads, true, args.json, None)
 }

@@ -376,7 +376,11 @@ impl Session<'_> {
                     return Err(format!("trajectory {index}: {e}"));
                 }
                 rec.resumed = true;
-                rec.last_recorded_step = Some(ckpt.state.step);
+                // The checkpoint's own step has a row only if it lies on the
+                // `record_every` grid (rows are recorded before checkpoints);
+                // otherwise the end of the trajectory must still write it.
+                let step = ckpt.state.step;
+                rec.last_recorded_step = (step % rec.every == 0).then_some(step);
                 rec.last_checkpoint_step = ckpt.state.step;
                 let mut state = ckpt.state;
                 state.status = Status::Running;
@@ -457,6 +461,19 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
     report.part = part;
     finish_report(&mut report)?;
     Ok(report)
+}
+
+/// The configuration stored in a run directory (`run.toml`), with its text
+/// kept verbatim so that it matches the copy in the part files.
+pub fn load_run_config(dir: &Path) -> Result<RunConfig, RunError> {
+    let toml = dir.join("run.toml");
+    if !toml.exists() {
+        return Err(RunError::Directory { path: dir.to_path_buf(), message: "not a run directory (no run.toml)".into() });
+    }
+    let text = std::fs::read_to_string(&toml).map_err(|e| RunError::Directory { path: toml.clone(), message: e.to_string() })?;
+    let mut cfg = crate::config::load_str(&text, &toml.display().to_string(), dir, &[])?;
+    cfg.effective_toml = text;
+    Ok(cfg)
 }
 
 /// Upper estimate of the part file's size for slice (k, n): every
