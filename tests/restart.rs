@@ -152,6 +152,7 @@ fn sigkill_at_random_moments_then_resume_is_bit_identical() {
     let ens = s.ens();
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(2026);
     let mut kills = 0;
+    let mut seen_open = 0;
     let mut first = true;
     for _attempt in 0..16 {
         let args: Vec<&str> = if first {
@@ -185,19 +186,19 @@ fn sigkill_at_random_moments_then_resume_is_bit_identical() {
                 child.kill().unwrap(); // SIGKILL
                 let _ = child.wait();
                 kills += 1;
-                // A killed writer leaves its mark: the part file says "open"
-                // (unless the kill came after the run had closed the file).
-                // (Early kills may come before the part file exists or while a
-                // resume has it renamed aside for a rebuild: resume copes.)
-                let Ok(r) = PartReader::open(&part(&dir)) else { continue };
-                if r.writer_state() == WriterState::Closed {
-                    let all_done = r.trajectory_indices().len() == 24
-                        && r.trajectory_indices().iter().all(|&i| r.summary(i).unwrap().phase == Phase::Finished);
-                    assert!(all_done, "a closed part file after SIGKILL must be complete");
+                // A killed writer leaves its mark: the part file says "open".
+                // (A kill may also land before the part file exists, or while
+                // a resume has just put a rebuilt, closed copy in place: resume
+                // copes with both, and the final comparison is the judge.)
+                if let Ok(r) = PartReader::open(&part(&dir)) {
+                    if r.writer_state() == WriterState::Open {
+                        seen_open += 1;
+                    }
                 }
             }
         }
     }
+    assert!(seen_open >= 1, "no kill left a part file marked open");
     let (code, err) = finish(spawn(&["-q", "resume", d]));
     assert_eq!(code, Some(0), "final resume: {err}");
     eprintln!("survived {kills} SIGKILL + resume cycles");
