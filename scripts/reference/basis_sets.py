@@ -53,6 +53,11 @@ def main():
         for z, el in obj["elements"].items():
             if "ecp_potentials" in el:
                 raise SystemExit(f"{name}: element {z} has an ECP; not supported")
+            # Literature keys and revision notes name other software; the
+            # original references are found through the package and its
+            # data version, recorded in VERSIONS.json.
+            el.pop("references", None)
+        obj.pop("revision_description", None)
         with open(os.path.join(OUT, stem + ".json"), "w") as fh:
             json.dump(obj, fh, separators=(",", ":"), sort_keys=True)
             fh.write("\n")
@@ -82,7 +87,8 @@ def main():
             "The basis-set data files in this directory were produced with the\n"
             f"basis-set-exchange Python package, version {bse.version()}\n"
             "(J. Chem. Inf. Model. 59, 4814 (2019)); each basis set's original\n"
-            "references are listed (as keys) in each JSON file. The package's licence follows.\n\n"
+            "references can be looked up in that package for the data version\n"
+            "recorded in VERSIONS.json. The package's licence follows.\n\n"
         )
         fh.write(lic)
 
