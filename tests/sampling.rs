@@ -180,3 +180,39 @@ fn wigner_moments_match_the_thermal_harmonic_oscillator() {
     let (q, p) = wigner::sample(&omegas, 0.0, &[1], &mut rng);
     assert_eq!((q[1], p[1]), (0.0, 0.0));
 }
+
+/// After `remove_net_momenta` the total linear momentum and the angular
+/// momentum about the centre of mass vanish (to 1e-12 of their size before),
+/// for a bent and for a linear geometry (definitions of classical mechanics).
+#[test]
+fn net_linear_and_angular_momenta_are_removed() {
+    use rand::Rng;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(4);
+    let geometries: [(Vec<f64>, Vec<f64>); 2] = [
+        (vec![0.0, 0.0, 0.0, 1.43, 1.11, 0.1, -1.43, 1.11, -0.2, 0.3, -1.5, 0.9], vec![29000.0, 1837.0, 1837.0, 21900.0]),
+        (vec![0.0, 0.0, -2.2, 0.0, 0.0, 0.0, 0.0, 0.0, 2.2], vec![29000.0, 21900.0, 29000.0]),
+    ];
+    for (q, m) in geometries {
+        let mut v: Vec<f64> = (0..q.len()).map(|_| rng.gen_range(-1e-3..1e-3)).collect();
+        let moments = |v: &[f64]| {
+            let n = m.len();
+            let total: f64 = m.iter().sum();
+            let com: Vec<f64> = (0..3).map(|k| (0..n).map(|a| m[a] * q[3 * a + k]).sum::<f64>() / total).collect();
+            let p: Vec<f64> = (0..3).map(|k| (0..n).map(|a| m[a] * v[3 * a + k]).sum()).collect();
+            let mut l = [0.0; 3];
+            for a in 0..n {
+                let d: Vec<f64> = (0..3).map(|k| q[3 * a + k] - com[k]).collect();
+                let u: Vec<f64> = (0..3).map(|k| v[3 * a + k]).collect();
+                l[0] += m[a] * (d[1] * u[2] - d[2] * u[1]);
+                l[1] += m[a] * (d[2] * u[0] - d[0] * u[2]);
+                l[2] += m[a] * (d[0] * u[1] - d[1] * u[0]);
+            }
+            (p.iter().map(|x| x * x).sum::<f64>().sqrt(), l.iter().map(|x| x * x).sum::<f64>().sqrt())
+        };
+        let (p0, l0) = moments(&v);
+        wigner::remove_net_momenta(&q, &mut v, &m);
+        let (p1, l1) = moments(&v);
+        assert!(p1 < 1e-12 * p0.max(1e-300) + 1e-18, "linear momentum {p1} (was {p0})");
+        assert!(l1 < 1e-12 * l0.max(1e-300) + 1e-18, "angular momentum {l1} (was {l0})");
+    }
+}

@@ -46,3 +46,44 @@ pub fn sample<R: Rng>(omegas: &[f64], kt: f64, frozen: &[usize], rng: &mut R) ->
     }
     (q, p)
 }
+
+/// Remove the total linear momentum and the angular momentum about the
+/// centre of mass from Cartesian velocities `v` (3 per atom) at positions `q`
+/// (bohr), with atomic `masses` (common practice for sampled initial
+/// conditions: a Wigner draw is free of them only to first order). The
+/// angular velocity ω = I⁻¹L is taken out as v ← v − ω × (r − R_cm); for a
+/// linear geometry the pseudo-inverse of I is used.
+pub fn remove_net_momenta(q: &[f64], v: &mut [f64], masses: &[f64]) {
+    use nalgebra::{Matrix3, Vector3};
+    let n = masses.len();
+    let total: f64 = masses.iter().sum();
+    if n == 0 || total <= 0.0 {
+        return;
+    }
+    let r = |a: usize| Vector3::new(q[3 * a], q[3 * a + 1], q[3 * a + 2]);
+    let vel = |v: &[f64], a: usize| Vector3::new(v[3 * a], v[3 * a + 1], v[3 * a + 2]);
+    let com = (0..n).map(|a| r(a) * masses[a]).sum::<Vector3<f64>>() / total;
+    let p = (0..n).map(|a| vel(v, a) * masses[a]).sum::<Vector3<f64>>();
+    let vcom = p / total;
+    for a in 0..n {
+        for k in 0..3 {
+            v[3 * a + k] -= vcom[k];
+        }
+    }
+    let mut inertia = Matrix3::zeros();
+    let mut l = Vector3::zeros();
+    for a in 0..n {
+        let d = r(a) - com;
+        inertia += (Matrix3::identity() * d.norm_squared() - d * d.transpose()) * masses[a];
+        l += d.cross(&vel(v, a)) * masses[a];
+    }
+    let Ok(pinv) = inertia.pseudo_inverse(1e-10 * inertia.norm().max(f64::MIN_POSITIVE)) else { return };
+    let omega = pinv * l;
+    for a in 0..n {
+        let d = r(a) - com;
+        let w = omega.cross(&d);
+        for k in 0..3 {
+            v[3 * a + k] -= w[k];
+        }
+    }
+}
