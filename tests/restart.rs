@@ -422,3 +422,72 @@ fn resume_from_a_checkpoint_at_the_last_step_keeps_the_final_row() {
     runner::start(&cfg, &reference, (0, 1), &opts).unwrap();
     assert_identical(&part(&dir), &part(&reference));
 }
+
+/// A back end that starts returning NaN energies at its 30th step.
+struct NanAt {
+    inner: Box<dyn Backend>,
+    steps: usize,
+    results: Results,
+}
+
+impl Backend for NanAt {
+    fn info(&self) -> BackendInfo {
+        self.inner.info()
+    }
+    fn compute(&mut self, q: &[f64], request: &Request) -> Result<&Results, BackendError> {
+        if request.overlaps {
+            self.steps += 1;
+        }
+        self.results = self.inner.compute(q, request)?.clone();
+        if self.steps >= 30 {
+            self.results.energies.iter_mut().for_each(|e| *e = f64::NAN);
+        }
+        Ok(&self.results)
+    }
+    fn snapshot(&self) -> Snapshot {
+        self.inner.snapshot()
+    }
+    fn restore(&mut self, s: &Snapshot) -> Result<(), BackendError> {
+        self.inner.restore(s)
+    }
+}
+
+/// Numerical faults (issue "hostile input"): non-finite energies from the
+/// back end fail that trajectory with the step and a reason, and never reach
+/// the data — every stored number stays finite and the last row is the last
+/// good step.
+#[test]
+fn non_finite_energies_fail_the_trajectory_and_stay_out_of_the_data() {
+    let s = Scratch::new("nan", 3, 10.0);
+    let cfg = load_str(&std::fs::read_to_string(s.ens()).unwrap(), "ens.toml", &s.0, &[]).unwrap();
+    let model = cfg.model.clone();
+    let factory = move |i: usize| -> Box<dyn Backend> {
+        let inner = swarm::make_backend(&model);
+        if i == 1 {
+            Box::new(NanAt { inner, steps: 0, results: Results::default() })
+        } else {
+            inner
+        }
+    };
+    let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let dir = s.run_dir("run");
+    let report = runner::start(&cfg, &dir, (0, 1), &opts).unwrap();
+    assert_eq!((report.finished, report.failed), (2, 1));
+    let r = PartReader::open(&part(&dir)).unwrap();
+    let data = r.read(1).unwrap();
+    match &data.status {
+        flipswarm::dynamics::Status::Failed { step, reason } => {
+            // Recorded at the last completed step; the reason names the next.
+            assert_eq!(*step, 29);
+            assert!(reason.contains("step 30"), "{reason}");
+            assert!(reason.contains("non-finite"), "{reason}");
+        }
+        other => panic!("status {other:?}"),
+    }
+    for row in &data.rows {
+        let all = row.q.iter().chain(&row.v).chain(&row.energies).chain([&row.kinetic, &row.potential, &row.total]);
+        assert!(all.copied().all(f64::is_finite), "non-finite value stored at step {}", row.step);
+        assert!(row.amplitudes.iter().all(|c| c.re.is_finite() && c.im.is_finite()));
+    }
+    assert_eq!(data.rows.last().unwrap().step, 29);
+}

@@ -189,6 +189,8 @@ pub struct Trajectory<'b> {
     /// Reused per-step buffers.
     request: Request,
     new_energies: Vec<f64>,
+    q_new: Vec<f64>,
+    v_new: Vec<f64>,
 }
 
 impl<'b> Trajectory<'b> {
@@ -226,14 +228,14 @@ impl<'b> Trajectory<'b> {
             rng,
             status: Status::Running,
         };
-        Ok(Self { backend, settings, masses: info.masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new() })
+        Ok(Self { backend, settings, masses: info.masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new(), q_new: Vec::new(), v_new: Vec::new() })
     }
 
     /// Continue from a saved state; the back end must already hold the
     /// matching snapshot.
     pub fn resume(backend: &'b mut dyn Backend, settings: Settings, state: TrajectoryState) -> Self {
         let masses = backend.info().masses;
-        Self { backend, settings, masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new() }
+        Self { backend, settings, masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new(), q_new: Vec::new(), v_new: Vec::new() }
     }
 
     /// Masses of the coordinates.
@@ -250,15 +252,27 @@ impl<'b> Trajectory<'b> {
     pub fn step(&mut self) -> Result<Option<Hop>, BackendError> {
         let dt = self.settings.dt;
         let s = &mut self.state;
-        verlet::kick_drift(&mut s.q, &mut s.v, &s.gradient, &self.masses, dt);
+        // The step is computed on copies and committed only when the back
+        // end has answered with finite numbers, so a failing step leaves the
+        // state (and what observers record) at the last good step.
+        self.q_new.clear();
+        self.q_new.extend_from_slice(&s.q);
+        self.v_new.clear();
+        self.v_new.extend_from_slice(&s.v);
+        verlet::kick_drift(&mut self.q_new, &mut self.v_new, &s.gradient, &self.masses, dt);
         let n = s.amplitudes.len();
         self.request.gradients.clear();
         self.request.gradients.push(s.active);
         self.request.overlaps = n > 1;
-        let res = self.backend.compute(&s.q, &self.request)?;
+        let res = self.backend.compute(&self.q_new, &self.request)?;
         let gradient = res.gradient(s.active).expect("requested");
-        verlet::kick(&mut s.v, gradient, &self.masses, dt);
-        s.gradient.copy_from_slice(gradient);
+        if res.energies.iter().chain(gradient).any(|x| !x.is_finite()) {
+            return Err(BackendError::Failed(format!(
+                "the back end returned a non-finite energy or gradient at step {}",
+                s.step + 1
+            )));
+        }
+        verlet::kick(&mut self.v_new, gradient, &self.masses, dt);
         self.new_energies.clear();
         self.new_energies.extend_from_slice(&res.energies);
         let new_energies = &self.new_energies;
@@ -273,6 +287,9 @@ impl<'b> Trajectory<'b> {
             }
             _ => StepCoupling::none(n),
         };
+        std::mem::swap(&mut s.q, &mut self.q_new);
+        std::mem::swap(&mut s.v, &mut self.v_new);
+        s.gradient.copy_from_slice(gradient);
         let g = coupling.propagate(&mut s.amplitudes, &s.energies, new_energies, dt, self.settings.substeps, s.active);
         s.energies.copy_from_slice(new_energies);
         s.step += 1;
