@@ -778,29 +778,8 @@ impl EriStore {
                             continue;
                         }
                         let (kk, l) = pairs_of[kl];
-                        let mut f = v0;
-                        if i == jj {
-                            f *= 0.5;
-                        }
-                        if kk == l {
-                            f *= 0.5;
-                        }
-                        if ij == kl {
-                            f *= 0.5;
-                        }
-                        for m in 0..nd {
-                            scatter(
-                                n,
-                                i,
-                                jj,
-                                kk,
-                                l,
-                                f,
-                                &dens[m],
-                                &mut j[m],
-                                if want_k { Some(&mut k[m]) } else { None },
-                            );
-                        }
+                        let f = v0 * degeneracy(i == jj, kk == l, ij == kl);
+                        scatter_densities(n, [i, jj, kk, l], f, dens, &mut j, &mut k, want_k);
                     }
                 }
                 (j, k)
@@ -833,6 +812,24 @@ fn sum_parts(parts: Vec<JkParts>, n: usize, nd: usize, want_k: bool) -> JkParts 
 
 /// Add the 8 permutations of a canonical integral (scaled by its degeneracy
 /// factor f) to J and K of one density (row-major n×n).
+/// Weight of one unique integral in the 8-fold sum: ½ for each of the
+/// coincidences i = j, k = l and (ij) = (kl), which make mirror images of
+/// the same integral.
+#[inline(always)]
+fn degeneracy(same_ij: bool, same_kl: bool, same_pairs: bool) -> f64 {
+    let half = |b: bool| if b { 0.5 } else { 1.0 };
+    half(same_ij) * half(same_kl) * half(same_pairs)
+}
+
+/// [`scatter`] one weighted integral into J (and K) of every density.
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+fn scatter_densities(n: usize, [i, j, k, l]: [usize; 4], f: f64, dens: &[Vec<f64>], jm: &mut [Vec<f64>], km: &mut [Vec<f64>], want_k: bool) {
+    for m in 0..dens.len() {
+        scatter(n, i, j, k, l, f, &dens[m], &mut jm[m], if want_k { Some(&mut km[m]) } else { None });
+    }
+}
+
 #[inline(always)]
 #[allow(clippy::too_many_arguments)]
 fn scatter(
@@ -1051,29 +1048,7 @@ pub fn coulomb_exchange_direct(
                                     if i == k && j == l && pab < pcd {
                                         continue;
                                     }
-                                    let mut f = v;
-                                    if ga == gb {
-                                        f *= 0.5;
-                                    }
-                                    if gc == gd {
-                                        f *= 0.5;
-                                    }
-                                    if pab == pcd {
-                                        f *= 0.5;
-                                    }
-                                    for m in 0..nd {
-                                        scatter(
-                                            n,
-                                            ga,
-                                            gb,
-                                            gc,
-                                            gd,
-                                            f,
-                                            &dens[m],
-                                            &mut jm[m],
-                                            if want_k { Some(&mut km[m]) } else { None },
-                                        );
-                                    }
+                                    let f = v * degeneracy(ga == gb, gc == gd, pab == pcd);                                    scatter_densities(n, [ga, gb, gc, gd], f, &dens, &mut jm, &mut km, want_k);
                                 }
                             }
                         }
