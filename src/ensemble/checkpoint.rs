@@ -71,7 +71,8 @@ pub fn path_for(dir: &Path, index: usize) -> PathBuf {
     dir.join(format!("traj-{index:06}.ckpt"))
 }
 
-fn with_suffix(path: &Path, suffix: &str) -> PathBuf {
+/// `path` with `suffix` appended to its file name.
+pub(crate) fn with_suffix(path: &Path, suffix: &str) -> PathBuf {
     let mut s = path.as_os_str().to_owned();
     s.push(suffix);
     PathBuf::from(s)

@@ -25,7 +25,7 @@ use std::time::{Duration, Instant};
 
 use rayon::prelude::*;
 
-use super::checkpoint::{self, Checkpoint, Source};
+use super::checkpoint::{self, with_suffix, Checkpoint, Source};
 use super::h5::{now_rfc3339, EnsembleError, PartReader, PartWriter, WriterState};
 use super::record::{PartMeta, StepRow, TrajectoryHeader};
 use crate::config::RunConfig;
@@ -661,12 +661,6 @@ enum Keep {
     Whole,
     /// The first rows and hops (what its checkpoint covers; (0, 0) to recompute).
     Prefix(u64, u64),
-}
-
-fn with_suffix(path: &Path, suffix: &str) -> PathBuf {
-    let mut s = path.as_os_str().to_owned();
-    s.push(suffix);
-    PathBuf::from(s)
 }
 
 /// Write the trustworthy content of a killed writer's part file into a new
