@@ -35,7 +35,7 @@ need_rust() {
 
 # The system libraries the crate links against (HDF5 from Debian).
 need_system_libraries() {
-    need_debian pkg-config gcc libhdf5-dev
+    need_debian pkg-config gcc libhdf5-dev libxc-dev
 }
 
 # need_python_module MODULE PACKAGE...: pip-install PACKAGEs from PyPI when

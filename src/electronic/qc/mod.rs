@@ -47,4 +47,5 @@
 
 pub mod basis;
 pub mod boys;
+pub mod dft;
 pub mod integrals;

@@ -1,0 +1,1 @@
+//! Basis-function values and derivatives on grid points (being written).

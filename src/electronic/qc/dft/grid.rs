@@ -1,0 +1,1 @@
+//! Molecular integration grids (being written).

@@ -1,0 +1,1 @@
+//! Exchange–correlation functionals through libxc (being written).
