@@ -49,3 +49,4 @@ pub mod basis;
 pub mod boys;
 pub mod dft;
 pub mod integrals;
+pub mod scf;

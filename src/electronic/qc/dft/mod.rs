@@ -4,4 +4,5 @@
 
 pub mod ao_values;
 pub mod grid;
+pub mod ks;
 pub mod xc;

@@ -1,1 +1,0 @@
-//! Molecular integration grids (being written).

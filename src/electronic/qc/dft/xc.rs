@@ -1,1 +1,0 @@
-//! Exchange–correlation functionals through libxc (being written).
