@@ -49,4 +49,5 @@ pub mod basis;
 pub mod boys;
 pub mod dft;
 pub mod integrals;
+pub mod response;
 pub mod scf;

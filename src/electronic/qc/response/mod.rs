@@ -1,0 +1,1 @@
+//! Spin-flip response: collinear SF-TDA and MRSF-TDDFT (being written).
