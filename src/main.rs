@@ -45,6 +45,7 @@ fn main() {
         Command::Merge(args) => cli::merge::execute(args),
         Command::Export(args) => cli::export::execute(args),
         Command::Analyze(args) => cli::analyze::execute(args),
+        Command::SinglePoint(args) => cli::single_point::execute(args),
         Command::Keys => {
             for k in flipswarm::config::SCHEMA {
                 println!("{:<38} {}  [default: {}]", k.path, k.meaning, k.default);

@@ -7,6 +7,7 @@ pub mod inspect;
 pub mod merge;
 pub mod resume;
 pub mod run;
+pub mod single_point;
 
 use clap::{Parser, Subcommand};
 
@@ -69,6 +70,10 @@ pub enum Command {
     /// Analyse ensemble files: populations with confidence bands, lifetimes
     /// with bootstrap intervals, hop statistics, plots and tables.
     Analyze(analyze::AnalyzeArgs),
+    /// One SCF calculation (RHF, UHF, ROHF, RKS, UKS, ROKS) at one geometry:
+    /// total energy and its parts, orbital energies with occupations, <S^2>,
+    /// SCF iterations.
+    SinglePoint(single_point::SinglePointArgs),
     /// List every configuration key with its unit and default.
     Keys,
 }

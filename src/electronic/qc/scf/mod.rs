@@ -580,7 +580,7 @@ pub fn run(
             energy,
             delta_energy: if it == 1 { 0.0 } else { delta },
             gradient,
-            diis: if use_diis { diis.len() + 1 } else { 0 },
+            diis: if use_diis { (diis.len() + 1).min(opts.diis_size.max(2)) } else { 0 },
             level_shift: st.level_shift,
             damping,
         };

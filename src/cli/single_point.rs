@@ -1,0 +1,354 @@
+//! `flipswarm single-point`: one SCF (Hartree–Fock or Kohn–Sham) at one
+//! geometry, printed as a table or JSON.
+
+use std::path::PathBuf;
+
+use clap::{Args, ValueEnum};
+
+use super::exit;
+use crate::chem::xyz::read_single_xyz_file;
+use crate::electronic::qc::basis::{BasisSet, BasisSetData, Harmonics};
+use crate::electronic::qc::dft::grid::GridSpec;
+use crate::electronic::qc::dft::ks::{self, KsOptions};
+use crate::electronic::qc::integrals::JkOptions;
+use crate::electronic::qc::scf::{self, Electrons, Guess, Reference, ScfError, ScfOptions};
+use crate::units;
+
+/// The SCF method.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum Method {
+    /// Restricted closed-shell Hartree–Fock.
+    Rhf,
+    /// Unrestricted Hartree–Fock.
+    Uhf,
+    /// Restricted open-shell (high-spin) Hartree–Fock.
+    Rohf,
+    /// Restricted closed-shell Kohn–Sham.
+    Rks,
+    /// Unrestricted Kohn–Sham.
+    Uks,
+    /// Restricted open-shell (high-spin) Kohn–Sham: the spin-flip reference.
+    Roks,
+}
+
+impl Method {
+    fn reference(self) -> Reference {
+        match self {
+            Method::Rhf | Method::Rks => Reference::Restricted,
+            Method::Uhf | Method::Uks => Reference::Unrestricted,
+            Method::Rohf | Method::Roks => Reference::RestrictedOpen,
+        }
+    }
+    fn is_ks(self) -> bool {
+        matches!(self, Method::Rks | Method::Uks | Method::Roks)
+    }
+    fn label(self) -> &'static str {
+        match self {
+            Method::Rhf => "RHF",
+            Method::Uhf => "UHF",
+            Method::Rohf => "ROHF",
+            Method::Rks => "RKS",
+            Method::Uks => "UKS",
+            Method::Roks => "ROKS",
+        }
+    }
+}
+
+/// Starting guess.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum GuessKind {
+    /// Superposition of atomic densities.
+    Atoms,
+    /// Core Hamiltonian.
+    Core,
+}
+
+/// Cartesian or spherical d/f functions.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum HarmonicsArg {
+    /// Cartesian (6d, 10f).
+    Cartesian,
+    /// Spherical (5d, 7f).
+    Spherical,
+}
+
+/// Arguments of `flipswarm single-point`.
+#[derive(Debug, Args)]
+pub struct SinglePointArgs {
+    /// Geometry: an XYZ file (Å), first frame.
+    pub geometry: PathBuf,
+    /// SCF method.
+    #[arg(long, value_enum, default_value = "roks")]
+    pub method: Method,
+    /// Exchange–correlation functional for rks/uks/roks: bhhlyp, b3lyp, pbe0,
+    /// pbe, hf, or libxc names joined by '+' with optional weights
+    /// ("0.5*GGA_X_B88+GGA_C_LYP+0.5*HF").
+    #[arg(long, default_value = "bhhlyp")]
+    pub functional: String,
+    /// Basis set: a built-in name (STO-3G, 3-21G, 6-31G, 6-31G*, 6-31G**,
+    /// 6-31+G*, cc-pVDZ, def2-SVP) or a JSON file in the basis-set-exchange
+    /// schema.
+    #[arg(long, default_value = "6-31G*")]
+    pub basis: String,
+    /// Override the basis family's Cartesian/spherical default.
+    #[arg(long, value_enum)]
+    pub harmonics: Option<HarmonicsArg>,
+    /// Molecular charge.
+    #[arg(long, default_value_t = 0, allow_negative_numbers = true)]
+    pub charge: i64,
+    /// Spin multiplicity 2S+1 (default: 3 for roks/rohf, otherwise 1 or 2 by
+    /// electron parity).
+    #[arg(long)]
+    pub multiplicity: Option<usize>,
+    /// Integration grid level (coarse, medium, fine, ultrafine) for Kohn–Sham.
+    #[arg(long, default_value = "fine")]
+    pub grid: String,
+    /// Starting guess.
+    #[arg(long, value_enum, default_value = "atoms")]
+    pub guess: GuessKind,
+    /// SCF iteration limit.
+    #[arg(long, default_value_t = 128)]
+    pub max_iterations: usize,
+    /// Convergence threshold on the energy change (Eh).
+    #[arg(long, default_value_t = 1e-10)]
+    pub energy_tolerance: f64,
+    /// Convergence threshold on the largest orbital-gradient element.
+    #[arg(long, default_value_t = 1e-7)]
+    pub gradient_tolerance: f64,
+    /// Print every iteration.
+    #[arg(long)]
+    pub iterations: bool,
+    /// Print JSON instead of a table.
+    #[arg(long)]
+    pub json: bool,
+    /// Worker threads (0 = all cores).
+    #[arg(long, default_value_t = 0)]
+    pub threads: usize,
+}
+
+/// Execute; returns the exit code.
+pub fn execute(args: &SinglePointArgs) -> i32 {
+    if args.threads > 0 {
+        // The global pool may already exist (tests); then keep it.
+        let _ = rayon::ThreadPoolBuilder::new().num_threads(args.threads).build_global();
+    }
+    let frame = match read_single_xyz_file(&args.geometry) {
+        Ok(f) => f,
+        Err(e) => {
+            eprintln!("error: {e}");
+            return exit::INPUT;
+        }
+    };
+    let mol = frame.molecule;
+    let data = if std::path::Path::new(&args.basis).is_file() {
+        BasisSetData::from_file(std::path::Path::new(&args.basis), Harmonics::Spherical)
+    } else {
+        BasisSetData::builtin(&args.basis)
+    };
+    let data = match data {
+        Ok(d) => d,
+        Err(e) => {
+            eprintln!("error: --basis: {e}");
+            return exit::INPUT;
+        }
+    };
+    let harmonics = args.harmonics.map(|h| match h {
+        HarmonicsArg::Cartesian => Harmonics::Cartesian,
+        HarmonicsArg::Spherical => Harmonics::Spherical,
+    });
+    let basis = match BasisSet::new(&mol, &data, harmonics) {
+        Ok(b) => b,
+        Err(e) => {
+            eprintln!("error: {}: {e}", args.geometry.display());
+            return exit::INPUT;
+        }
+    };
+    let z = scf::nuclear_charge(&basis);
+    let multiplicity = args.multiplicity.unwrap_or(match args.method {
+        Method::Rohf | Method::Roks => 3,
+        _ => 1 + ((z as i64 - args.charge).rem_euclid(2)) as usize,
+    });
+    let electrons = match Electrons::from_charge_multiplicity(z, args.charge, multiplicity) {
+        Ok(e) => e,
+        Err(e) => {
+            eprintln!("error: --charge {} --multiplicity {multiplicity}: {e}", args.charge);
+            return exit::INPUT;
+        }
+    };
+    let reference = args.method.reference();
+    if reference == Reference::Restricted && electrons.alpha != electrons.beta {
+        eprintln!(
+            "error: --method {} is closed-shell but multiplicity {multiplicity} has unpaired electrons; use {} or {}",
+            args.method.label().to_lowercase(),
+            if args.method.is_ks() { "uks" } else { "uhf" },
+            if args.method.is_ks() { "roks" } else { "rohf" }
+        );
+        return exit::INPUT;
+    }
+    if !(args.energy_tolerance > 0.0 && args.gradient_tolerance > 0.0) {
+        eprintln!("error: --energy-tolerance and --gradient-tolerance must be positive");
+        return exit::INPUT;
+    }
+    let opts = ScfOptions {
+        max_iterations: args.max_iterations,
+        energy_tolerance: args.energy_tolerance,
+        gradient_tolerance: args.gradient_tolerance,
+        ..ScfOptions::default()
+    };
+    let guess = match args.guess {
+        GuessKind::Atoms => Guess::AtomicSuperposition,
+        GuessKind::Core => Guess::Core,
+    };
+    let started = std::time::Instant::now();
+    let (result, grid_info, functional_label) = if args.method.is_ks() {
+        let grid = match GridSpec::level(&args.grid) {
+            Ok(g) => g,
+            Err(e) => {
+                eprintln!("error: --grid: {e}");
+                return exit::INPUT;
+            }
+        };
+        let ks_opts = KsOptions {
+            functional: args.functional.clone(),
+            grid,
+            jk: JkOptions::default(),
+        };
+        let mut builder = match ks::KohnSham::new(&basis, reference, &ks_opts) {
+            Ok(b) => b,
+            Err(e) => {
+                eprintln!("error: --functional {}: {e}", args.functional);
+                return exit::INPUT;
+            }
+        };
+        let label = builder.functional_name().to_string();
+        let info = (builder.grid_points(), args.grid.clone());
+        (scf::run(&basis, electrons, reference, &mut builder, &guess, &opts), Some(info), Some(label))
+    } else {
+        (scf::hartree_fock(&basis, electrons, reference, &guess, &opts, JkOptions::default()), None, None)
+    };
+    let seconds = started.elapsed().as_secs_f64();
+    let r = match result {
+        Ok(r) => r,
+        Err(e @ ScfError::NotConverged { .. }) => {
+            eprintln!("error: {}: {e}", args.geometry.display());
+            eprintln!("hint: try --guess core, a larger --max-iterations, or check the geometry, charge and multiplicity");
+            return exit::RUNTIME;
+        }
+        Err(e) => {
+            eprintln!("error: {}: {e}", args.geometry.display());
+            return exit::RUNTIME;
+        }
+    };
+    let method = match &functional_label {
+        Some(f) => format!("{}/{}", args.method.label(), f),
+        None => args.method.label().to_string(),
+    };
+    let (occ_a, occ_b) = r.occupations();
+    if args.json {
+        let v = serde_json::json!({
+            "geometry": args.geometry,
+            "method": method,
+            "basis": basis.name,
+            "basis_functions": basis.nbf,
+            "harmonics": format!("{:?}", basis.harmonics).to_lowercase(),
+            "charge": args.charge,
+            "multiplicity": multiplicity,
+            "grid": grid_info.as_ref().map(|(n, level)| serde_json::json!({"level": level, "points": n})),
+            "units": "hartree",
+            "energy": r.energy,
+            "components": {
+                "nuclear_repulsion": r.nuclear_repulsion,
+                "one_electron": r.one_electron,
+                "coulomb": r.coulomb,
+                "exact_exchange": r.exchange,
+                "exchange_correlation": r.xc,
+            },
+            "grid_electrons": r.grid_electrons,
+            "s_squared": r.s_squared,
+            "iterations": r.iterations,
+            "history": r.history,
+            "orbital_energies_alpha": r.orbital_energies_alpha,
+            "orbital_energies_beta": r.orbital_energies_beta,
+            "occupations_alpha": occ_a,
+            "occupations_beta": occ_b,
+            "seconds": seconds,
+        });
+        println!("{v}");
+        return exit::OK;
+    }
+    println!(
+        "{}: {method}, {} ({} basis functions, {}), charge {}, multiplicity {multiplicity}",
+        args.geometry.display(),
+        basis.name,
+        basis.nbf,
+        format!("{:?}", basis.harmonics).to_lowercase(),
+        args.charge
+    );
+    if let Some((n, level)) = &grid_info {
+        println!(
+            "grid {level}: {n} points; integrated electrons {:.8} (exact {})",
+            r.grid_electrons.unwrap_or(f64::NAN),
+            electrons.total()
+        );
+    }
+    if args.iterations {
+        for rec in &r.history {
+            println!("  {rec}");
+        }
+    }
+    println!(
+        "SCF converged in {} iterations ({} integrals, {:.2} s)",
+        r.iterations,
+        if r.in_core { "in-core" } else { "direct" },
+        seconds
+    );
+    println!();
+    println!("  total energy          {:>20.10} Eh", r.energy);
+    println!("  nuclear repulsion     {:>20.10} Eh", r.nuclear_repulsion);
+    println!("  one-electron          {:>20.10} Eh", r.one_electron);
+    println!("  Coulomb               {:>20.10} Eh", r.coulomb);
+    println!("  exact exchange        {:>20.10} Eh", r.exchange);
+    if args.method.is_ks() {
+        println!("  exchange-correlation  {:>20.10} Eh", r.xc);
+    }
+    println!("  <S^2>                 {:>20.6}", r.s_squared);
+    println!();
+    let unrestricted = reference == Reference::Unrestricted;
+    if unrestricted {
+        println!("  {:>4}  {:>14} {:>10} {:>4}   {:>14} {:>10} {:>4}", "k", "alpha (Eh)", "(eV)", "occ", "beta (Eh)", "(eV)", "occ");
+    } else {
+        println!("  {:>4}  {:>14} {:>10} {:>4}", "k", "energy (Eh)", "(eV)", "occ");
+    }
+    let nmo = r.orbital_energies_alpha.len();
+    let homo = electrons.alpha.max(1);
+    // Print occupied orbitals and the first ten virtuals.
+    let last = (homo + 10).min(nmo);
+    for k in 0..last {
+        let ea = r.orbital_energies_alpha[k];
+        if unrestricted {
+            let eb = r.orbital_energies_beta[k];
+            println!(
+                "  {:>4}  {:>14.6} {:>10.3} {:>4}   {:>14.6} {:>10.3} {:>4}",
+                k + 1,
+                ea,
+                ea * units::HARTREE_IN_EV,
+                occ_a[k],
+                eb,
+                eb * units::HARTREE_IN_EV,
+                occ_b[k]
+            );
+        } else {
+            println!(
+                "  {:>4}  {:>14.6} {:>10.3} {:>4}",
+                k + 1,
+                ea,
+                ea * units::HARTREE_IN_EV,
+                occ_a[k] + occ_b[k]
+            );
+        }
+    }
+    if last < nmo {
+        println!("  ({} more virtual orbitals)", nmo - last);
+    }
+    exit::OK
+}

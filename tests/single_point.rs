@@ -1,0 +1,133 @@
+//! `flipswarm single-point`: the command-line SCF.
+//!
+//! Sources: `tests/data/qc/scf_energies.json` (PySCF 2.14.0, made by
+//! `scripts/reference/scf_energies.py`); the error cases check our own
+//! messages and exit codes (documented in the README).
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use serde_json::Value;
+
+const BIN: &str = env!("CARGO_BIN_EXE_flipswarm");
+/// Å per bohr (CODATA 2018), to write the fixture's bohr geometries as XYZ.
+const BOHR_IN_ANGSTROM: f64 = 0.529_177_210_903;
+
+fn fixture() -> Value {
+    let path = format!("{}/tests/data/qc/scf_energies.json", env!("CARGO_MANIFEST_DIR"));
+    serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
+}
+
+fn scratch(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("flipswarm-sp-{}-{name}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+fn write_xyz(dir: &Path, case: &Value) -> PathBuf {
+    let symbols = ["", "H", "He", "Li", "Be", "B", "C", "N", "O", "F"];
+    let atoms = case["atoms"].as_array().unwrap();
+    let mut s = format!("{}\n{}\n", atoms.len(), case["molecule"].as_str().unwrap());
+    for a in atoms {
+        let p = a["position_bohr"].as_array().unwrap();
+        s.push_str(&format!(
+            "{} {:.15} {:.15} {:.15}\n",
+            symbols[a["z"].as_u64().unwrap() as usize],
+            p[0].as_f64().unwrap() * BOHR_IN_ANGSTROM,
+            p[1].as_f64().unwrap() * BOHR_IN_ANGSTROM,
+            p[2].as_f64().unwrap() * BOHR_IN_ANGSTROM
+        ));
+    }
+    let path = dir.join(format!("{}.xyz", case["molecule"].as_str().unwrap()));
+    std::fs::write(&path, s).unwrap();
+    path
+}
+
+fn find<'a>(fx: &'a Value, molecule: &str, method: &str, functional: Option<&str>) -> &'a Value {
+    fx["cases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["molecule"] == molecule && c["method"] == method && c["functional"].as_str() == functional)
+        .unwrap()
+}
+
+fn run(args: &[&str]) -> (i32, String, String) {
+    let out = Command::new(BIN).args(args).env("FLIPSWARM_LOG", "warn").output().unwrap();
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+// Source: PySCF 2.14.0 fixture (ROHF triplet methylene, 6-31G*), 1e-8 Eh;
+// <S²> of ROHF is exactly s(s+1) = 2.
+#[test]
+fn rohf_json_matches_the_reference() {
+    let fx = fixture();
+    let case = find(&fx, "ch2", "rohf", None);
+    let dir = scratch("rohf");
+    let xyz = write_xyz(&dir, case);
+    let (code, out, err) = run(&["single-point", xyz.to_str().unwrap(), "--method", "rohf", "--basis", "6-31g*", "--multiplicity", "3", "--json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: Value = serde_json::from_str(&out).unwrap();
+    let e = v["energy"].as_f64().unwrap();
+    assert!((e - case["energy"].as_f64().unwrap()).abs() < 1e-8, "{e}");
+    assert!((v["s_squared"].as_f64().unwrap() - 2.0).abs() < 1e-10);
+    let occ_a = v["occupations_alpha"].as_array().unwrap();
+    let occ_b = v["occupations_beta"].as_array().unwrap();
+    let na: f64 = occ_a.iter().map(|x| x.as_f64().unwrap()).sum();
+    let nb: f64 = occ_b.iter().map(|x| x.as_f64().unwrap()).sum();
+    assert_eq!((na, nb), (5.0, 3.0));
+    assert!(v["iterations"].as_u64().unwrap() >= 2);
+    assert_eq!(v["history"].as_array().unwrap().len() as u64, v["iterations"].as_u64().unwrap());
+}
+
+// Source: PySCF 2.14.0 fixture (ROKS/BH&HLYP triplet methylene), 1e-6 Eh on
+// the fine grid; the table names the method and prints the energy.
+#[test]
+fn roks_table_matches_the_reference() {
+    let fx = fixture();
+    let case = find(&fx, "ch2", "roks", Some("bhhlyp"));
+    let dir = scratch("roks");
+    let xyz = write_xyz(&dir, case);
+    let (code, out, err) = run(&["single-point", xyz.to_str().unwrap()]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("ROKS/bhhlyp, 6-31G*"), "{out}");
+    let line = out.lines().find(|l| l.trim_start().starts_with("total energy")).unwrap();
+    let e: f64 = line.split_whitespace().nth(2).unwrap().parse().unwrap();
+    assert!((e - case["energy"].as_f64().unwrap()).abs() < 1e-6, "{e}");
+    assert!(out.contains("<S^2>"));
+}
+
+#[test]
+fn bad_input_is_named_with_a_non_zero_exit() {
+    let fx = fixture();
+    let dir = scratch("bad");
+    let xyz = write_xyz(&dir, find(&fx, "h2o", "rhf", None));
+    let x = xyz.to_str().unwrap();
+    // (arguments, exit code, text the message must contain)
+    let cases: Vec<(Vec<&str>, i32, &str)> = vec![
+        (vec!["single-point", "/nonexistent/w.xyz"], 2, "/nonexistent/w.xyz"),
+        (vec!["single-point", x, "--basis", "6-31q*"], 2, "6-31q*"),
+        (vec!["single-point", x, "--method", "rhf", "--multiplicity", "3"], 2, "closed-shell"),
+        (vec!["single-point", x, "--method", "rohf", "--multiplicity", "2"], 2, "multiplicity 2"),
+        (vec!["single-point", x, "--method", "rks", "--functional", "b3lpy"], 2, "b3lpy"),
+        (vec!["single-point", x, "--method", "rks", "--grid", "superfine"], 2, "superfine"),
+        (vec!["single-point", x, "--method", "rhf", "--max-iterations", "2"], 4, "not converged in 2 iterations"),
+    ];
+    for (args, code, text) in cases {
+        let (c, _, err) = run(&args);
+        assert_eq!(c, code, "{args:?}: {err}");
+        assert!(err.contains(text), "{args:?}: message lacks {text:?}: {err}");
+        assert!(!err.contains("panicked"), "{err}");
+    }
+    // Two atoms on top of each other.
+    let clash = dir.join("clash.xyz");
+    std::fs::write(&clash, "2\nclash\nH 0 0 0\nH 0 0 0.01\n").unwrap();
+    let (c, _, err) = run(&["single-point", clash.to_str().unwrap(), "--method", "rhf"]);
+    assert_eq!(c, 2, "{err}");
+    assert!(err.contains("line 4") && err.contains("atom 2"), "{err}");
+}
