@@ -40,6 +40,11 @@ pub struct KsOptions {
     pub jk: JkOptions,
 }
 
+/// Basis-function values on the grid are kept between SCF iterations while
+/// they need at most this many bytes (per Kohn–Sham object; several
+/// trajectories may run side by side). Above it they are recomputed.
+pub const AO_CACHE_BYTES: usize = 256 << 20;
+
 /// Set-up errors of a Kohn–Sham calculation.
 #[derive(Debug, thiserror::Error)]
 pub enum KsError {
@@ -66,6 +71,9 @@ pub struct KohnSham {
     /// One functional copy and scratch per chunk of blocks (a libxc
     /// functional is used by one thread at a time).
     workers: Vec<std::sync::Mutex<Worker>>,
+    /// AO values per block, kept while within [`AO_CACHE_BYTES`].
+    ao_cache: Vec<std::sync::OnceLock<AoValues>>,
+    ao_cache_bytes: std::sync::atomic::AtomicUsize,
 }
 
 /// XC energy, electrons on the grid and the two potential matrices.
@@ -89,6 +97,7 @@ impl KohnSham {
         let functional = Functional::preset_or_libxc(&opts.functional, spin)?;
         let grid = MolecularGrid::build(&basis.nuclei, &opts.grid)?;
         let ao = AoBasis::new(basis)?;
+        let t = std::time::Instant::now();
         tracing::debug!(
             "Kohn-Sham: {} (exact exchange {}), grid of {} points in {} blocks",
             functional.name(),
@@ -106,8 +115,13 @@ impl KohnSham {
                 sigma: Vec::new(),
             }));
         }
+        let engine = JkEngine::new(basis, opts.jk.clone());
+        tracing::debug!("Kohn-Sham set-up: integral engine {:.3} s", t.elapsed().as_secs_f64());
+        let ao_cache = (0..grid.blocks.len()).map(|_| std::sync::OnceLock::new()).collect();
         Ok(KohnSham {
-            engine: JkEngine::new(basis, opts.jk.clone()),
+            engine,
+            ao_cache,
+            ao_cache_bytes: std::sync::atomic::AtomicUsize::new(0),
             workers,
             functional,
             grid,
@@ -163,6 +177,7 @@ impl KohnSham {
             .map(|s| s..(s + chunk).min(nblocks))
             .collect();
         let (grid, ao, workers) = (&self.grid, &self.ao, &self.workers);
+        let (cache, cache_bytes) = (&self.ao_cache, &self.ao_cache_bytes);
         let parts: Vec<Result<XcParts, ScfError>> = ranges
             .par_iter()
             .enumerate()
@@ -177,6 +192,18 @@ impl KohnSham {
                 };
                 for blk in range.clone() {
                     let block = &grid.blocks[blk];
+                    let weights = &grid.weights[block.range.clone()];
+                    if let Some(values) = cache[blk].get().filter(|v| v.deriv() >= deriv) {
+                        if values.nao() > 0 {
+                            let b = BlockAo::of(values);
+                            if polarized {
+                                block_polarized(&b, weights, da, db, w, &mut acc)?;
+                            } else {
+                                block_unpolarized(&b, weights, &dtot, w, &mut acc)?;
+                            }
+                        }
+                        continue;
+                    }
                     let mut values = std::mem::take(&mut w.ao);
                     let r = ao.eval_block(grid, block, deriv, &mut values);
                     if let Err(e) = r {
@@ -184,7 +211,6 @@ impl KohnSham {
                         return Err(ScfError::Xc(e.to_string()));
                     }
                     if values.nao() > 0 {
-                        let weights = &grid.weights[block.range.clone()];
                         let b = BlockAo::of(&values);
                         let r = if polarized {
                             block_polarized(&b, weights, da, db, w, &mut acc)
@@ -195,6 +221,13 @@ impl KohnSham {
                             w.ao = values;
                             return Err(e);
                         }
+                    }
+                    let bytes = values.data().len() * 8 + values.aos().len() * 8;
+                    let used = cache_bytes.fetch_add(bytes, std::sync::atomic::Ordering::Relaxed);
+                    if used + bytes <= AO_CACHE_BYTES {
+                        let _ = cache[blk].set(values.clone());
+                    } else {
+                        cache_bytes.fetch_sub(bytes, std::sync::atomic::Ordering::Relaxed);
                     }
                     w.ao = values;
                 }
@@ -418,8 +451,15 @@ impl FockBuilder for KohnSham {
         fresh: bool,
     ) -> Result<TwoElectronTerms, ScfError> {
         let cx = self.functional.exact_exchange();
+        let t0 = std::time::Instant::now();
         let mut terms = coulomb_exchange_terms(&mut self.engine, cx, d_alpha, d_beta, restricted, fresh)?;
+        let t1 = std::time::Instant::now();
         let xc = self.xc(d_alpha, d_beta, restricted)?;
+        tracing::debug!(
+            "Kohn-Sham build: J/K {:.3} s, exchange-correlation {:.3} s",
+            (t1 - t0).as_secs_f64(),
+            t1.elapsed().as_secs_f64()
+        );
         terms.g_alpha += &xc.va;
         terms.g_beta += &xc.vb;
         terms.xc = xc.energy;

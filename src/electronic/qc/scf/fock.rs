@@ -68,12 +68,18 @@ enum Store {
     Direct(ShellPairs),
 }
 
+/// J and K matrices, one per density.
+pub type JkMatrices = (Vec<DMatrix<f64>>, Vec<DMatrix<f64>>);
+
+/// Densities of the last build with their J and K (incremental mode).
+type LastBuild = (Vec<DMatrix<f64>>, Vec<DMatrix<f64>>, Vec<DMatrix<f64>>);
+
 /// Coulomb and exchange builds over one geometry, in-core or direct.
 pub struct JkEngine {
     store: Store,
     opts: JkOptions,
     /// Densities and J/K of the last build (incremental direct mode).
-    last: Option<(Vec<DMatrix<f64>>, Vec<DMatrix<f64>>, Vec<DMatrix<f64>>)>,
+    last: Option<LastBuild>,
     builds_since_fresh: usize,
     /// A fresh build at least this often (direct mode).
     pub rebuild_every: usize,
@@ -109,7 +115,7 @@ impl JkEngine {
         densities: &[DMatrix<f64>],
         exchange: bool,
         fresh: bool,
-    ) -> Result<(Vec<DMatrix<f64>>, Vec<DMatrix<f64>>), TwoElectronError> {
+    ) -> Result<JkMatrices, TwoElectronError> {
         match &self.store {
             Store::InCore(store) => {
                 let r = coulomb_exchange_in_core(store, densities, exchange)?;

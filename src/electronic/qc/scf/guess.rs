@@ -24,7 +24,7 @@ use nalgebra::DMatrix;
 pub fn core_density(h: &DMatrix<f64>, x: &DMatrix<f64>, n_occ: usize) -> DMatrix<f64> {
     let (_, c) = diagonalize_in(h, x);
     let co = c.columns(0, n_occ);
-    &co * co.transpose()
+    co * co.transpose()
 }
 
 /// Fractional aufbau occupations (total `n_elec`, at most 2 per orbital);
@@ -100,7 +100,8 @@ fn density_from_occupations(c: &DMatrix<f64>, occ: &[f64]) -> DMatrix<f64> {
 pub fn atomic_superposition(basis: &BasisSet) -> DMatrix<f64> {
     let n = basis.nbf;
     let mut d = DMatrix::zeros(n, n);
-    let mut cache: Vec<(f64, Vec<(usize, Vec<f64>, Vec<f64>)>, DMatrix<f64>)> = Vec::new();
+    type ShellKey = Vec<(usize, Vec<f64>, Vec<f64>)>;
+    let mut cache: Vec<(f64, ShellKey, DMatrix<f64>)> = Vec::new();
     for (ia, &(z, center)) in basis.nuclei.iter().enumerate() {
         let idx: Vec<usize> = (0..basis.shells.len())
             .filter(|&k| basis.shells[k].atom == ia)

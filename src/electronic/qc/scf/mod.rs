@@ -163,7 +163,7 @@ pub struct ScfOptions {
     pub energy_tolerance: f64,
     /// Largest orbital-gradient element threshold (default 1e−7).
     pub gradient_tolerance: f64,
-    /// DIIS subspace size (default 8).
+    /// DIIS subspace size (default 12).
     pub diis_size: usize,
     /// Iterations a fallback stage may run without progress (default 24).
     pub stage_iterations: usize,
@@ -179,7 +179,7 @@ impl Default for ScfOptions {
             max_iterations: 128,
             energy_tolerance: 1e-10,
             gradient_tolerance: 1e-7,
-            diis_size: 8,
+            diis_size: 12,
             stage_iterations: 24,
             linear_dependence: 1e-7,
             history_length: 12,
@@ -384,7 +384,7 @@ fn symmetrize(m: &mut DMatrix<f64>) {
 /// Density of the first `n` columns of `c`.
 fn occupied_density(c: &DMatrix<f64>, n: usize) -> DMatrix<f64> {
     let co = c.columns(0, n);
-    &co * co.transpose()
+    co * co.transpose()
 }
 
 /// <S²> of a single determinant.
@@ -527,7 +527,7 @@ pub fn run(
     let mut previous_fock: Option<Vec<DMatrix<f64>>> = None;
     let mut last: Option<(f64, fock::TwoElectronTerms, f64)> = None;
     let mut converged = false;
-    let mut orbitals: Option<(Vec<f64>, DMatrix<f64>, Vec<f64>, DMatrix<f64>)> = None;
+    let mut orbitals: Option<Orbitals> = None;
 
     for it in 1..=opts.max_iterations {
         let terms = builder.build(&da, &db, restricted, it == 1)?;
@@ -677,12 +677,12 @@ pub fn run(
     })
 }
 
+/// α energies, α orbitals, β energies, β orbitals.
+type Orbitals = (Vec<f64>, DMatrix<f64>, Vec<f64>, DMatrix<f64>);
+
 /// Diagonalise one (restricted) or two (unrestricted) orthonormal-basis Fock
 /// matrices; returns α and β energies and AO coefficients.
-fn canonical_orbitals(
-    focks: &[DMatrix<f64>],
-    x: &DMatrix<f64>,
-) -> (Vec<f64>, DMatrix<f64>, Vec<f64>, DMatrix<f64>) {
+fn canonical_orbitals(focks: &[DMatrix<f64>], x: &DMatrix<f64>) -> Orbitals {
     let (ea, ca) = sorted_eigen(&focks[0]);
     let ca = x * ca;
     if focks.len() == 2 {
