@@ -388,7 +388,7 @@ fn caching_keeps_results_and_overlaps_refer_to_previous_distinct_geometry() {
     assert!(first.overlaps.is_none() && first.couplings.is_none());
     assert_eq!(first.gradients.len(), 1);
 
-    let more = Request { gradients: vec![0, 1, 2], overlaps: true, couplings: true };
+    let more = Request { gradients: vec![0, 1, 2], overlaps: true, couplings: true, ..Request::default() };
     let second = a.compute(&q2, &more).unwrap().clone();
     assert_eq!(second.energies, first.energies);
     assert_eq!(second.gradient(1), first.gradient(1));
@@ -424,7 +424,7 @@ fn snapshot_restore_continues_bit_for_bit() {
     let model = lvc3();
     let path: Vec<Vec<f64>> =
         [[0.3, -0.5, 0.7, -0.2], [0.31, -0.49, 0.69, -0.19], [0.33, -0.47, 0.68, -0.18]].iter().map(|q| lvc_x(&model, q)).collect();
-    let req = Request { gradients: vec![1], overlaps: true, couplings: true };
+    let req = Request { gradients: vec![1], overlaps: true, couplings: true, ..Request::default() };
     let mut a = DiabaticBackend::new(model.clone());
     a.compute(&path[0], &req).unwrap();
     a.compute(&path[1], &req).unwrap();

@@ -28,11 +28,13 @@ pub fn part_files(path: &Path) -> Result<Vec<PathBuf>, String> {
     let mut parts: Vec<PathBuf> = entries
         .flatten()
         .map(|e| e.path())
-        .filter(|p| p.extension().is_some_and(|x| x == "h5"))
+        // Part files only: a run directory also holds a copy of its
+        // initial-conditions file.
+        .filter(|p| p.extension().is_some_and(|x| x == "h5") && p.file_name().is_some_and(|n| n.to_string_lossy().starts_with("part-")))
         .collect();
     parts.sort();
     if parts.is_empty() {
-        return Err(format!("{}: no part files (*.h5) here", path.display()));
+        return Err(format!("{}: no part files (part-*.h5) here", path.display()));
     }
     Ok(parts)
 }

@@ -5,9 +5,12 @@ pub mod analyze;
 pub mod export;
 pub mod inspect;
 pub mod merge;
+pub mod modes;
 pub mod resume;
 pub mod run;
+pub mod sample;
 pub mod single_point;
+pub mod spectrum;
 
 use clap::{Parser, Subcommand};
 
@@ -74,6 +77,18 @@ pub enum Command {
     /// total energy and its parts, orbital energies with occupations, <S^2>,
     /// SCF iterations.
     SinglePoint(single_point::SinglePointArgs),
+    /// Harmonic normal modes of a model's ground state, or of a molecule
+    /// from a Hessian file, written to a normal-modes file for `sample`.
+    Modes(modes::ModesArgs),
+    /// Wigner-distributed initial conditions from a normal-modes file (T = 0
+    /// or thermal), optionally with excitation energies, oscillator strengths
+    /// and initial-state selection; `run` reads the file with
+    /// start.sampling = "file".
+    Sample(sample::SampleArgs),
+    /// Absorption spectrum of an initial-conditions file (nuclear-ensemble
+    /// approach): CSV with cross section and molar absorption coefficient,
+    /// per-state contributions, SVG and PNG plots.
+    Spectrum(spectrum::SpectrumArgs),
     /// List every configuration key with its unit and default.
     Keys,
 }

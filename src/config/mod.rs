@@ -67,7 +67,8 @@ pub const SCHEMA: &[KeyDoc] = &[
     KeyDoc { path: "model.depth_hartree", meaning: "Morse well depth D", default: "required for morse" },
     KeyDoc { path: "model.range_per_bohr", meaning: "Morse range parameter a", default: "required for morse" },
     KeyDoc { path: "model.equilibrium_bohr", meaning: "equilibrium position (harmonic centre, Morse r_e)", default: "0" },
-    KeyDoc { path: "start.sampling", meaning: "fixed (one phase-space point) or wigner (Gaussian wavepacket in 1D; harmonic ground state per mode for lvc)", default: "fixed" },
+    KeyDoc { path: "start.sampling", meaning: "fixed (one phase-space point), wigner (Gaussian wavepacket in 1D; harmonic ground state per mode for lvc) or file (from start.initial_conditions)", default: "fixed" },
+    KeyDoc { path: "start.initial_conditions", meaning: "initial-conditions file written by `flipswarm sample` (relative to the ensemble file), for sampling = \"file\"", default: "required for sampling = file" },
     KeyDoc { path: "start.position_bohr", meaning: "initial position (1D models)", default: "required for 1D models" },
     KeyDoc { path: "start.momentum_au", meaning: "initial (mean) momentum, ħ/bohr (1D models)", default: "0" },
     KeyDoc { path: "start.width_bohr", meaning: "position standard deviation of the wavepacket |ψ|² (1D, wigner)", default: "required for 1D wigner" },
@@ -115,6 +116,16 @@ impl ModelSpec {
             ModelSpec::Morse(m) => m.n_states(),
         }
     }
+    /// Masses of the coordinates (electron masses).
+    pub fn masses(&self) -> Vec<f64> {
+        use crate::electronic::models::DiabaticModel;
+        match self {
+            ModelSpec::Tully(m) => m.masses(),
+            ModelSpec::Lvc { model, .. } => model.masses(),
+            ModelSpec::Harmonic(m) => m.masses(),
+            ModelSpec::Morse(m) => m.masses(),
+        }
+    }
     /// Number of coordinates.
     pub fn n_dof(&self) -> usize {
         match self {
@@ -139,6 +150,14 @@ pub enum Sampling {
     HarmonicGround,
     /// LVC at the reference geometry, at rest.
     Origin,
+    /// Initial conditions from a file written by `flipswarm sample`: the
+    /// rows used, in order (position, velocity, selected state if any).
+    File {
+        /// The file.
+        path: PathBuf,
+        /// Rows used, one per trajectory index.
+        rows: std::sync::Arc<Vec<(Vec<f64>, Vec<f64>, Option<usize>)>>,
+    },
 }
 
 /// Output and checkpoint cadence.
@@ -201,11 +220,19 @@ pub fn load_str(text: &str, origin: &str, base: &Path, overrides: &[String]) -> 
             format!("state {initial_state} does not exist: the model has {n_states} state(s), numbered 0–{}", n_states - 1),
         ));
     }
-    let sampling = build_sampling(&r, &model)?;
+    let sampling = build_sampling(&r, &model, base)?;
     let settings = build_settings(&r, &model, &sampling)?;
     let trajectories = r.u64("swarm.trajectories")?.ok_or_else(|| r.error("swarm.trajectories", "missing (how many trajectories to run)"))?;
     if trajectories == 0 || trajectories > 10_000_000 {
         return Err(r.error("swarm.trajectories", format!("must be between 1 and 10 000 000, found {trajectories}")));
+    }
+    if let Sampling::File { path, rows } = &sampling {
+        if (trajectories as usize) > rows.len() {
+            return Err(r.error(
+                "swarm.trajectories",
+                format!("{trajectories} trajectories but {} has only {} usable initial conditions (with a selected state, if states were selected)", path.display(), rows.len()),
+            ));
+        }
     }
     let seed = r.u64("swarm.seed")?.ok_or_else(|| r.error("swarm.seed", "missing (the ensemble seed makes runs reproducible)"))?;
     let record_every = r.u64("output.record_every_steps")?.unwrap_or(1);
@@ -320,8 +347,48 @@ fn build_model(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
     })
 }
 
-fn build_sampling(r: &Reader, model: &ModelSpec) -> Result<Sampling, ConfigError> {
-    let kind = r.choice("start.sampling", &["fixed", "wigner"])?.unwrap_or_else(|| "fixed".into());
+fn build_sampling(r: &Reader, model: &ModelSpec, base: &Path) -> Result<Sampling, ConfigError> {
+    let kind = r.choice("start.sampling", &["fixed", "wigner", "file"])?.unwrap_or_else(|| "fixed".into());
+    if kind == "file" {
+        for key in ["start.position_bohr", "start.momentum_au", "start.width_bohr"] {
+            if r.has(key) {
+                return Err(r.error(key, "not used with sampling = \"file\" (the file holds positions and velocities)"));
+            }
+        }
+        let file = r
+            .string("start.initial_conditions")?
+            .ok_or_else(|| r.error("start.initial_conditions", "missing (the file written by `flipswarm sample`)"))?;
+        let path = base.join(&file);
+        let set = crate::sampling::files::InitialConditions::read(&path).map_err(|e| r.error("start.initial_conditions", e.to_string()))?;
+        let dof = model.n_dof();
+        if set.masses.len() != dof {
+            return Err(r.error(
+                "start.initial_conditions",
+                format!("{}: {} coordinates per initial condition but the model has {dof}", path.display(), set.masses.len()),
+            ));
+        }
+        let model_masses = model.masses();
+        if let Some(k) = (0..dof).find(|&k| (set.masses[k] - model_masses[k]).abs() > 1e-9 * model_masses[k].abs().max(1.0)) {
+            return Err(r.error(
+                "start.initial_conditions",
+                format!("{}: coordinate {k} has mass {} in the file but {} in the model", path.display(), set.masses[k], model_masses[k]),
+            ));
+        }
+        let n_states = model.n_states();
+        let rows: Vec<(Vec<f64>, Vec<f64>, Option<usize>)> = match &set.excitation {
+            Some(x) => (0..set.len())
+                .filter_map(|i| x.initial_state[i].map(|st| (set.positions[i].clone(), set.velocities[i].clone(), Some(st))))
+                .collect(),
+            None => (0..set.len()).map(|i| (set.positions[i].clone(), set.velocities[i].clone(), None)).collect(),
+        };
+        if let Some(st) = rows.iter().filter_map(|r| r.2).find(|&s| s >= n_states) {
+            return Err(r.error("start.initial_conditions", format!("{}: initial state {st} but the model has {n_states} states", path.display())));
+        }
+        return Ok(Sampling::File { path, rows: std::sync::Arc::new(rows) });
+    }
+    if r.has("start.initial_conditions") {
+        return Err(r.error("start.initial_conditions", "only used with sampling = \"file\""));
+    }
     if !model.is_one_dimensional() {
         for key in ["start.position_bohr", "start.momentum_au", "start.width_bohr"] {
             if r.has(key) {

@@ -30,6 +30,8 @@ pub struct Request {
     pub overlaps: bool,
     /// Nonadiabatic coupling vectors between every pair of tracked states.
     pub couplings: bool,
+    /// Transition dipoles from the lowest state to every state.
+    pub transition_dipoles: bool,
 }
 
 impl Request {
@@ -105,6 +107,9 @@ pub struct Results {
     pub overlaps: Option<DMatrix<f64>>,
     /// Nonadiabatic coupling vectors, raw phases as for `overlaps`.
     pub couplings: Option<Couplings>,
+    /// ⟨ψ_0|μ|ψ_n⟩ (e·bohr) for every state n (n = 0: the permanent dipole),
+    /// with the back end's raw phases; when requested.
+    pub transition_dipoles: Option<Vec<[f64; 3]>>,
     /// Solver information.
     pub diagnostics: Diagnostics,
 }
@@ -154,6 +159,9 @@ pub enum BackendError {
     /// The snapshot belongs to another back end or is malformed.
     #[error("snapshot cannot be restored: {0}")]
     Snapshot(String),
+    /// The back end cannot compute what was requested.
+    #[error("not available: {0}")]
+    Unsupported(String),
     /// The electronic-structure calculation itself failed (SCF, singular overlap, …).
     #[error("calculation failed: {0}")]
     Failed(String),

@@ -356,11 +356,11 @@ impl Session<'_> {
         let masses = backend.info().masses;
         let mut traj = match plan {
             Plan::Fresh => {
-                let (q, v) = swarm::initial_condition(self.cfg, &masses, index);
-                let header = TrajectoryHeader { index, q0: q.clone(), v0: v.clone(), initial_state: self.cfg.initial_state, seed: self.cfg.seed };
+                let (q, v, state) = swarm::initial_condition(self.cfg, &masses, index);
+                let header = TrajectoryHeader { index, q0: q.clone(), v0: v.clone(), initial_state: state, seed: self.cfg.seed };
                 writer.send(ToWriter::Begin(header)).map_err(|_| "the writer has stopped".to_string())?;
                 let rng = swarm::trajectory_rng(self.cfg.seed, index, 1);
-                match Trajectory::start(backend.as_mut(), self.cfg.settings.clone(), q, v, self.cfg.initial_state, rng) {
+                match Trajectory::start(backend.as_mut(), self.cfg.settings.clone(), q, v, state, rng) {
                     Ok(t) => t,
                     Err(e) => {
                         let status = Status::Failed { step: 0, reason: e.to_string() };
@@ -514,16 +514,32 @@ fn human(bytes: u64) -> String {
 /// The name under which an LVC model file is copied into the run directory.
 pub const MODEL_COPY: &str = "lvc-model.toml";
 
-/// A run directory must not depend on files outside it: an LVC model file is
-/// copied in and `model.file` rewritten to point at the copy.
+/// The name under which an initial-conditions file is copied into the run directory.
+pub const INITIAL_CONDITIONS_COPY: &str = "initial-conditions.h5";
+
+/// A run directory must not depend on files outside it: an LVC model file
+/// and an initial-conditions file are copied in and `model.file` and
+/// `start.initial_conditions` rewritten to point at the copies.
 fn self_contained(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
-    let crate::config::ModelSpec::Lvc { path, .. } = &cfg.model else { return Ok(cfg.clone()) };
-    let copy = dir.join(MODEL_COPY);
-    if !copy.exists() {
-        std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the LVC model {}: {e}", path.display()) })?;
+    let mut sets = Vec::new();
+    if let crate::config::ModelSpec::Lvc { path, .. } = &cfg.model {
+        let copy = dir.join(MODEL_COPY);
+        if !copy.exists() {
+            std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the LVC model {}: {e}", path.display()) })?;
+        }
+        sets.push(format!("model.file=\"{MODEL_COPY}\""));
     }
-    let set = format!("model.file=\"{MODEL_COPY}\"");
-    let effective = crate::config::Reader::parse(&cfg.effective_toml, "run.toml", &[set])?.effective_text();
+    if let crate::config::Sampling::File { path, .. } = &cfg.sampling {
+        let copy = dir.join(INITIAL_CONDITIONS_COPY);
+        if !copy.exists() {
+            std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the initial conditions {}: {e}", path.display()) })?;
+        }
+        sets.push(format!("start.initial_conditions=\"{INITIAL_CONDITIONS_COPY}\""));
+    }
+    if sets.is_empty() {
+        return Ok(cfg.clone());
+    }
+    let effective = crate::config::Reader::parse(&cfg.effective_toml, "run.toml", &sets)?.effective_text();
     let mut out = crate::config::load_str(&effective, "run.toml", dir, &[])?;
     out.effective_toml = effective;
     Ok(out)

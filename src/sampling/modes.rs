@@ -21,6 +21,9 @@ pub enum ModesError {
     /// Shapes do not fit together.
     #[error("the Hessian is {rows}×{cols} but {atoms} atoms need {n}×{n}", n = 3 * atoms)]
     Shape { rows: usize, cols: usize, atoms: usize },
+    /// Shapes do not fit together (model coordinates).
+    #[error("the Hessian is {rows}×{cols} but {n} coordinates need {n}×{n}")]
+    CoordinateShape { rows: usize, cols: usize, n: usize },
     /// A mass is not positive.
     #[error("atom {index} has mass {mass}; masses must be positive")]
     Mass { index: usize, mass: f64 },
@@ -165,4 +168,29 @@ where
         }
     }
     Ok((&hess + hess.transpose()) * 0.5)
+}
+
+/// Normal modes of a Hessian in abstract (model) coordinates with one mass
+/// per coordinate: no translations or rotations to project (LVC models are
+/// already written in normal coordinates). ω² are the eigenvalues of
+/// M^{−1/2} H M^{−1/2}.
+pub fn normal_modes_of_coordinates(hessian: &DMatrix<f64>, masses: &[f64]) -> Result<NormalModes, ModesError> {
+    let n = masses.len();
+    if hessian.nrows() != n || hessian.ncols() != n {
+        return Err(ModesError::CoordinateShape { rows: hessian.nrows(), cols: hessian.ncols(), n });
+    }
+    if let Some((index, &mass)) = masses.iter().enumerate().find(|(_, m)| !(**m > 0.0 && m.is_finite())) {
+        return Err(ModesError::Mass { index, mass });
+    }
+    if hessian.iter().any(|x| !x.is_finite()) {
+        return Err(ModesError::NonFinite);
+    }
+    let sym = (hessian + hessian.transpose()) * 0.5;
+    let hm = DMatrix::from_fn(n, n, |i, j| sym[(i, j)] / (masses[i] * masses[j]).sqrt());
+    let e = SymmetricEigen::new(hm);
+    let mut order: Vec<usize> = (0..n).collect();
+    order.sort_by(|&i, &j| e.eigenvalues[i].total_cmp(&e.eigenvalues[j]));
+    let omegas = order.iter().map(|&i| e.eigenvalues[i].signum() * e.eigenvalues[i].abs().sqrt()).collect();
+    let vectors = DMatrix::from_fn(n, n, |r, c| e.eigenvectors[(r, order[c])]);
+    Ok(NormalModes { omegas, vectors, masses: masses.to_vec(), linear: false })
 }

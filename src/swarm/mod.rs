@@ -43,8 +43,19 @@ pub fn trajectory_rng(seed: u64, index: usize, stream: u64) -> ChaCha20Rng {
     rng
 }
 
-/// Positions and velocities of trajectory `index` (atomic units).
-pub fn initial_condition(cfg: &RunConfig, masses: &[f64], index: usize) -> (Vec<f64>, Vec<f64>) {
+/// Positions, velocities (atomic units) and initial state of trajectory
+/// `index`: the state is `start.state` unless the initial-conditions file
+/// selected one for this trajectory.
+pub fn initial_condition(cfg: &RunConfig, masses: &[f64], index: usize) -> (Vec<f64>, Vec<f64>, usize) {
+    if let Sampling::File { rows, .. } = &cfg.sampling {
+        let (q, v, state) = &rows[index];
+        return (q.clone(), v.clone(), state.unwrap_or(cfg.initial_state));
+    }
+    let (q, v) = sampled(cfg, masses, index);
+    (q, v, cfg.initial_state)
+}
+
+fn sampled(cfg: &RunConfig, masses: &[f64], index: usize) -> (Vec<f64>, Vec<f64>) {
     let mut rng = trajectory_rng(cfg.seed, index, 0);
     match (&cfg.sampling, &cfg.model) {
         (Sampling::Fixed { position, momentum }, _) => (vec![*position], vec![momentum / masses[0]]),
@@ -132,20 +143,20 @@ impl Observer for Recorder {
 pub fn run_one(cfg: &RunConfig, index: usize, record_every: u64) -> Outcome {
     let mut backend = make_backend(&cfg.model);
     let masses = backend.info().masses;
-    let (q, v) = initial_condition(cfg, &masses, index);
+    let (q, v, state) = initial_condition(cfg, &masses, index);
     let rng = trajectory_rng(cfg.seed, index, 1);
     let mut rec = Recorder { every: record_every.max(1), max_drift: 0.0, series: Vec::new() };
     let fail = |reason: String| Outcome {
         index,
         status: Status::Failed { step: 0, reason },
-        active: cfg.initial_state,
+        active: state,
         populations: vec![],
         steps: 0,
         max_drift: 0.0,
         hops: vec![],
         series: vec![],
     };
-    let mut traj = match Trajectory::start(backend.as_mut(), cfg.settings.clone(), q, v, cfg.initial_state, rng) {
+    let mut traj = match Trajectory::start(backend.as_mut(), cfg.settings.clone(), q, v, state, rng) {
         Ok(t) => t,
         Err(e) => return fail(e.to_string()),
     };

@@ -17,6 +17,10 @@ pub trait DiabaticModel: Send + Sync {
     fn masses(&self) -> Vec<f64>;
     /// Fill `w` (n×n, hartree) and `dw[k]` = ∂W/∂q_k (hartree/bohr) at `q`.
     fn diabatic(&self, q: &[f64], w: &mut DMatrix<f64>, dw: &mut [DMatrix<f64>]);
+    /// Diabatic dipole matrices (x, y, z; e·bohr) at `q`, if the model has them.
+    fn diabatic_dipoles(&self, _q: &[f64]) -> Option<[DMatrix<f64>; 3]> {
+        None
+    }
 }
 
 /// Eigen-decomposition of a real symmetric matrix with eigenvalues ascending.
@@ -154,6 +158,7 @@ impl<M: DiabaticModel> DiabaticBackend<M> {
         results.gradients.clear();
         results.overlaps = None;
         results.couplings = None;
+        results.transition_dipoles = None;
         results.diagnostics = Default::default();
         self.results = results;
         self.current = Some(Point { q: q.to_vec(), vectors, dw });
@@ -207,6 +212,17 @@ impl<M: DiabaticModel> Backend for DiabaticBackend<M> {
             if let Some(prev) = &self.previous_vectors {
                 self.results.overlaps = Some(prev.tr_mul(&point.vectors));
             }
+        }
+        if request.transition_dipoles && self.results.transition_dipoles.is_none() {
+            let Some(mu) = self.model.diabatic_dipoles(q) else {
+                return Err(BackendError::Unsupported(format!(
+                    "the {} model has no dipoles (add [[dipole]] entries to the model file)",
+                    self.model.name()
+                )));
+            };
+            let u = &point.vectors;
+            let ad: Vec<DMatrix<f64>> = mu.iter().map(|m| u.transpose() * m * u).collect();
+            self.results.transition_dipoles = Some((0..self.n).map(|j| [ad[0][(0, j)], ad[1][(0, j)], ad[2][(0, j)]]).collect());
         }
         if request.couplings && self.results.couplings.is_none() {
             let mut c = Couplings::zeros(self.n, self.n_dof);

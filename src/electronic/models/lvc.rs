@@ -27,7 +27,13 @@
 //! states = [1, 2]
 //! mode = 1
 //! value_ev = 0.05
+//! [[dipole]]                          # optional: diabatic (transition) dipoles,
+//! states = [0, 1]                     # constant in Q (Condon approximation),
+//! value_au = [0.0, 0.0, 0.8]          # e·bohr; [n, n] is a permanent dipole
 //! ```
+//!
+//! Adiabatic transition dipoles follow from the diabatic ones by the same
+//! rotation as the states: μ^ad_ij = Σ_ab U_ai μ_ab U_bj.
 
 use std::path::Path;
 
@@ -50,6 +56,8 @@ pub struct Lvc {
     pub gradients: Vec<(usize, usize, f64)>,
     /// Interstate linear terms (state n, state m, mode, λ in hartree).
     pub couplings: Vec<(usize, usize, usize, f64)>,
+    /// Diabatic dipole matrix elements (state n ≤ state m, e·bohr).
+    pub dipoles: Vec<(usize, usize, [f64; 3])>,
 }
 
 /// A problem in an LVC model file.
@@ -73,6 +81,15 @@ struct RawLvc {
     gradient: Vec<RawGradient>,
     #[serde(default)]
     coupling: Vec<RawCoupling>,
+    #[serde(default)]
+    dipole: Vec<RawDipole>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawDipole {
+    states: [usize; 2],
+    value_au: [f64; 3],
 }
 
 #[derive(Deserialize)]
@@ -150,7 +167,20 @@ impl Lvc {
             }
             couplings.push((n.min(m), n.max(m), c.mode, units::ev_to_hartree(c.value_ev)));
         }
+        let mut dipoles = Vec::new();
+        for (k, d) in raw.dipole.iter().enumerate() {
+            let at = format!("[[dipole]] entry {k}");
+            let [n, m] = d.states;
+            if n >= n_states || m >= n_states {
+                return Err(err(format!("{at}: key `states` = [{n}, {m}] but the model has {n_states} states")));
+            }
+            if d.value_au.iter().any(|v| !v.is_finite()) {
+                return Err(err(format!("{at}: key `value_au` is not finite")));
+            }
+            dipoles.push((n.min(m), n.max(m), d.value_au));
+        }
         Ok(Self {
+            dipoles,
             description: raw.description,
             omegas: raw.frequencies_ev.iter().map(|&w| units::ev_to_hartree(w)).collect(),
             vertical: raw.vertical_ev.iter().map(|&e| units::ev_to_hartree(e)).collect(),
@@ -174,6 +204,20 @@ impl DiabaticModel for Lvc {
     }
     fn masses(&self) -> Vec<f64> {
         vec![1.0; self.omegas.len()]
+    }
+    fn diabatic_dipoles(&self, _q: &[f64]) -> Option<[DMatrix<f64>; 3]> {
+        if self.dipoles.is_empty() {
+            return None;
+        }
+        let n = self.vertical.len();
+        let mut out = [DMatrix::zeros(n, n), DMatrix::zeros(n, n), DMatrix::zeros(n, n)];
+        for &(a, b, v) in &self.dipoles {
+            for k in 0..3 {
+                out[k][(a, b)] = v[k];
+                out[k][(b, a)] = v[k];
+            }
+        }
+        Some(out)
     }
     fn diabatic(&self, x: &[f64], w: &mut DMatrix<f64>, dw: &mut [DMatrix<f64>]) {
         let harmonic: f64 = x.iter().zip(&self.omegas).map(|(x, w)| 0.5 * w * w * x * x).sum();
