@@ -229,3 +229,60 @@ fn bad_inputs_are_named() {
     let (c, _, err) = run_in(&d, &["sample", "modes.toml", "-n", "5", "--seed", "1", "--excite", "dark-ens.toml", "--state", "1", "-o", "y.h5"]);
     assert!(c == 2 && err.contains("no dipoles"), "{err}");
 }
+
+// Molecules: a user Hessian (three atoms joined by springs, whose Hessian at
+// the equilibrium geometry is Σ_bonds k u uᵀ per pair, a textbook result)
+// gives 3 vibrations and 6 projected external modes; sampled velocities
+// carry no total linear or angular momentum (stated in the README).
+#[test]
+fn cartesian_modes_and_zero_net_momenta() {
+    let d = scratch("cart");
+    // Å in the file; bohr in the Hessian.
+    let a = 1.0 / 0.529_177_210_903;
+    let pos = [[0.0, 0.0, 0.117 * a], [0.0, 0.757 * a, -0.469 * a], [0.0, -0.757 * a, -0.469 * a]];
+    std::fs::write(d.join("m.xyz"), "3\nspring model\nO 0 0 0.117\nH 0 0.757 -0.469\nH 0 -0.757 -0.469\n").unwrap();
+    let mut h = vec![vec![0.0; 9]; 9];
+    for (i, j, k) in [(0usize, 1usize, 0.5), (0, 2, 0.5), (1, 2, 0.05)] {
+        let d: Vec<f64> = (0..3).map(|c| pos[j][c] - pos[i][c]).collect();
+        let r = d.iter().map(|x| x * x).sum::<f64>().sqrt();
+        let u: Vec<f64> = d.iter().map(|x| x / r).collect();
+        for p in 0..3 {
+            for q in 0..3 {
+                let v = k * u[p] * u[q];
+                h[3 * i + p][3 * i + q] += v;
+                h[3 * j + p][3 * j + q] += v;
+                h[3 * i + p][3 * j + q] -= v;
+                h[3 * j + p][3 * i + q] -= v;
+            }
+        }
+    }
+    let text: String = h.iter().map(|r| r.iter().map(|x| format!("{x:.17e}")).collect::<Vec<_>>().join(" ") + "\n").collect();
+    std::fs::write(d.join("h.txt"), text).unwrap();
+    let (c, out, err) = run_in(&d, &["modes", "m.xyz", "--hessian", "h.txt", "-o", "modes.toml"]);
+    assert_eq!(c, 0, "{err}");
+    assert!(out.contains("3 modes"), "{out}");
+    let m = ModesFile::read(&d.join("modes.toml")).unwrap();
+    assert!(m.mode.iter().all(|x| x.omega_hartree > 0.0));
+    let (c, _, err) = run_in(&d, &["sample", "modes.toml", "-n", "50", "--seed", "9", "--temperature-k", "300", "-o", "ic.h5"]);
+    assert_eq!(c, 0, "{err}");
+    let ic = InitialConditions::read(&d.join("ic.h5")).unwrap();
+    let masses: Vec<f64> = ic.masses.iter().step_by(3).copied().collect();
+    for (q, v) in ic.positions.iter().zip(&ic.velocities) {
+        let total: f64 = masses.iter().sum();
+        let com: Vec<f64> = (0..3).map(|c| (0..3).map(|a| masses[a] * q[3 * a + c]).sum::<f64>() / total).collect();
+        let mut p = [0.0; 3];
+        let mut l = [0.0; 3];
+        for a in 0..3 {
+            let r: Vec<f64> = (0..3).map(|c| q[3 * a + c] - com[c]).collect();
+            let mv: Vec<f64> = (0..3).map(|c| masses[a] * v[3 * a + c]).collect();
+            for c in 0..3 {
+                p[c] += mv[c];
+            }
+            l[0] += r[1] * mv[2] - r[2] * mv[1];
+            l[1] += r[2] * mv[0] - r[0] * mv[2];
+            l[2] += r[0] * mv[1] - r[1] * mv[0];
+        }
+        let scale = masses.iter().zip(v.chunks(3)).map(|(m, vv)| m * vv.iter().map(|x| x.abs()).sum::<f64>()).sum::<f64>();
+        assert!(p.iter().chain(&l).all(|x| x.abs() < 1e-10 * scale.max(1.0)), "P = {p:?}, L = {l:?}");
+    }
+}
