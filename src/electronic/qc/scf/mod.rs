@@ -353,18 +353,12 @@ pub fn orthogonalizer(s: &DMatrix<f64>, threshold: f64) -> DMatrix<f64> {
     }
 }
 
-/// Eigenvalues (ascending) and eigenvectors of a symmetric matrix.
+/// Eigenvalues (ascending) and eigenvectors of a symmetric matrix, with each
+/// pair checked by its residual (nalgebra's solver was seen to mis-pair
+/// eigenvalues and eigenvectors; see
+/// [`crate::electronic::qc::response::davidson::symmetric_eigen`]).
 pub fn sorted_eigen(m: &DMatrix<f64>) -> (Vec<f64>, DMatrix<f64>) {
-    let e = m.clone().symmetric_eigen();
-    let mut idx: Vec<usize> = (0..e.eigenvalues.len()).collect();
-    idx.sort_by(|&a, &b| e.eigenvalues[a].total_cmp(&e.eigenvalues[b]));
-    let vals = idx.iter().map(|&k| e.eigenvalues[k]).collect();
-    let n = m.nrows();
-    let mut vecs = DMatrix::zeros(n, idx.len());
-    for (c, &k) in idx.iter().enumerate() {
-        vecs.set_column(c, &e.eigenvectors.column(k));
-    }
-    (vals, vecs)
+    crate::electronic::qc::response::davidson::symmetric_eigen(m)
 }
 
 /// Orbital energies and AO coefficients of an AO Fock matrix in the
