@@ -49,6 +49,8 @@ fn main() {
         Command::Modes(args) => cli::modes::execute(args),
         Command::Sample(args) => cli::sample::execute(args),
         Command::Spectrum(args) => cli::spectrum::execute(args),
+        Command::Submit(args) => cli::submit::execute(args),
+        Command::Status(args) => cli::status::execute(args),
         Command::Keys => {
             for k in flipswarm::config::SCHEMA {
                 println!("{:<38} {}  [default: {}]", k.path, k.meaning, k.default);

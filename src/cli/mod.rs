@@ -11,6 +11,8 @@ pub mod run;
 pub mod sample;
 pub mod single_point;
 pub mod spectrum;
+pub mod status;
+pub mod submit;
 
 use clap::{Parser, Subcommand};
 
@@ -89,6 +91,11 @@ pub enum Command {
     /// approach): CSV with cross section and molar absorption coefficient,
     /// per-state contributions, SVG and PNG plots.
     Spectrum(spectrum::SpectrumArgs),
+    /// Run an ensemble on a Slurm cluster: a job array with one slice per
+    /// task, pre-timeout checkpointing and requeue, and a merge job.
+    Submit(submit::SubmitArgs),
+    /// Progress of a run directory slice by slice, with its Slurm jobs.
+    Status(status::StatusArgs),
     /// List every configuration key with its unit and default.
     Keys,
 }

@@ -423,24 +423,8 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
         }
     }
     std::fs::create_dir_all(checkpoint_dir(dir, k)).map_err(|e| derr(format!("cannot create: {e}")))?;
-    let mut contained = self_contained(cfg, dir)?;
-    let toml_path = dir.join("run.toml");
-    if toml_path.exists() {
-        // Other slices of the same ensemble share the directory and its
-        // run.toml; the stored text stays the reference for every part file.
-        let stored = std::fs::read_to_string(&toml_path).map_err(|e| derr(format!("cannot read run.toml: {e}")))?;
-        let mut theirs = crate::config::load_str(&stored, "run.toml", dir, &[])?;
-        theirs.effective_toml.clear();
-        contained.effective_toml.clear();
-        if theirs != contained {
-            return Err(derr("already holds a run of a different configuration (run.toml differs); choose another directory".into()));
-        }
-        contained.effective_toml = stored;
-    }
+    let contained = prepare(cfg, dir)?;
     let cfg = &contained;
-    if !toml_path.exists() {
-        write_new(&toml_path, cfg.effective_toml.as_bytes()).map_err(|e| derr(format!("cannot write run.toml: {e}")))?;
-    }
     let indices = slice_indices(cfg.trajectories, k, n);
     let masses = swarm::make_backend(&cfg.model).info().masses;
     let meta = PartMeta {
@@ -461,6 +445,51 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
     report.part = part;
     finish_report(&mut report)?;
     Ok(report)
+}
+
+/// Create (or check) the run directory shared by every slice of `cfg`: the
+/// directory, `run.toml` and copies of the files the run reads. An existing
+/// `run.toml` must describe the same run. Returns the configuration as the
+/// run directory holds it.
+pub fn prepare(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
+    let derr = |message: String| RunError::Directory { path: dir.to_path_buf(), message };
+    std::fs::create_dir_all(dir).map_err(|e| derr(format!("cannot create: {e}")))?;
+    let mut contained = self_contained(cfg, dir)?;
+    let toml_path = dir.join("run.toml");
+    if toml_path.exists() {
+        // Other slices of the same ensemble share the directory and its
+        // run.toml; the stored text stays the reference for every part file.
+        let stored = std::fs::read_to_string(&toml_path).map_err(|e| derr(format!("cannot read run.toml: {e}")))?;
+        let mut theirs = crate::config::load_str(&stored, "run.toml", dir, &[])?;
+        theirs.effective_toml.clear();
+        contained.effective_toml.clear();
+        if theirs != contained {
+            return Err(derr("already holds a run of a different configuration (run.toml differs); choose another directory".into()));
+        }
+        contained.effective_toml = stored;
+    } else {
+        write_new(&toml_path, contained.effective_toml.as_bytes()).map_err(|e| derr(format!("cannot write run.toml: {e}")))?;
+    }
+    Ok(contained)
+}
+
+/// Progress of slice (k, n) in `dir`: (trajectories ended, trajectories in
+/// the slice), or `None` if its part file does not exist yet.
+pub fn slice_progress(dir: &Path, k: usize, n: usize) -> Result<Option<(usize, usize)>, RunError> {
+    let part = dir.join(part_name(k, n));
+    if !part.exists() {
+        return Ok(None);
+    }
+    let reader = PartReader::open(&part)?;
+    let total = reader.meta().trajectories.len();
+    let mut ended = 0;
+    for i in reader.trajectory_indices() {
+        let (_, phase) = reader.status(i)?;
+        if matches!(phase, crate::ensemble::h5::Phase::Finished | crate::ensemble::h5::Phase::Failed) {
+            ended += 1;
+        }
+    }
+    Ok(Some((ended, total)))
 }
 
 /// The configuration stored in a run directory (`run.toml`), with its text
