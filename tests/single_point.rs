@@ -131,3 +131,35 @@ fn bad_input_is_named_with_a_non_zero_exit() {
     assert_eq!(c, 2, "{err}");
     assert!(err.contains("line 4") && err.contains("atom 2"), "{err}");
 }
+
+// `--excited`: the table and JSON carry S0 as the lowest singlet at 0 eV,
+// exact triplet <S²> = 2 (MRSF triplet block, J. Chem. Phys. 149, 104101
+// (2018), from memory), and the same energies as the library call
+// (`tests/mrsf.rs` checks those against a determinant CI).
+#[test]
+fn excited_states_from_the_command_line() {
+    let fx = fixture();
+    let case = find(&fx, "ch2", "rohf", None);
+    let dir = scratch("excited");
+    let xyz = write_xyz(&dir, case);
+    let x = xyz.to_str().unwrap();
+    let (code, out, err) = run(&["single-point", x, "--method", "rohf", "--basis", "6-31g*", "--excited", "mrsf", "--singlets", "2", "--triplets", "1", "--json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: Value = serde_json::from_str(&out).unwrap();
+    let states = v["excited_states"]["states"].as_array().unwrap();
+    assert_eq!(states.len(), 3);
+    let s0 = states.iter().find(|s| s["label"] == "S0").unwrap();
+    assert_eq!(s0["excitation_ev"].as_f64().unwrap(), 0.0);
+    let t = states.iter().find(|s| s["spin"] == "triplet").unwrap();
+    assert!((t["s_squared"].as_f64().unwrap() - 2.0).abs() < 1e-8);
+    // energies ascending
+    let e: Vec<f64> = states.iter().map(|s| s["energy"].as_f64().unwrap()).collect();
+    assert!(e.windows(2).all(|w| w[0] <= w[1]), "{e:?}");
+    // a singlet reference cannot be spin-flipped
+    let (code, _, err) = run(&["single-point", x, "--method", "rhf", "--excited", "mrsf"]);
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("triplet reference"), "{err}");
+    let (code, out, err) = run(&["single-point", x, "--method", "rohf", "--basis", "sto-3g", "--excited", "sf", "--singlets", "3"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("SF-TDA") && out.contains("<S^2>"), "{out}");
+}

@@ -72,6 +72,15 @@ pub enum HarmonicsArg {
     Spherical,
 }
 
+/// Spin-flip excited states after the SCF.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum Excited {
+    /// MRSF-TDDFT: spin-adapted singlets and triplets from both references.
+    Mrsf,
+    /// Collinear SF-TDA from the Ms = +1 reference (comparison; spin-contaminated).
+    Sf,
+}
+
 /// Arguments of `flipswarm single-point`.
 #[derive(Debug, Args)]
 pub struct SinglePointArgs {
@@ -115,6 +124,16 @@ pub struct SinglePointArgs {
     /// Convergence threshold on the largest orbital-gradient element.
     #[arg(long, default_value_t = 1e-7)]
     pub gradient_tolerance: f64,
+    /// Spin-flip excited states from the triplet reference (needs --method
+    /// roks or rohf and multiplicity 3).
+    #[arg(long, value_enum)]
+    pub excited: Option<Excited>,
+    /// Number of singlet states (MRSF; with sf: states = singlets + triplets).
+    #[arg(long, default_value_t = 3)]
+    pub singlets: usize,
+    /// Number of triplet states (MRSF).
+    #[arg(long, default_value_t = 0)]
+    pub triplets: usize,
     /// Print every iteration.
     #[arg(long)]
     pub iterations: bool,
@@ -185,6 +204,16 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
         );
         return exit::INPUT;
     }
+    if args.excited.is_some() {
+        if reference != Reference::RestrictedOpen || multiplicity != 3 {
+            eprintln!("error: --excited needs the high-spin triplet reference: --method roks (or rohf) with --multiplicity 3");
+            return exit::INPUT;
+        }
+        if args.singlets + args.triplets == 0 {
+            eprintln!("error: --excited: ask for at least one state (--singlets N, --triplets N)");
+            return exit::INPUT;
+        }
+    }
     if !(args.energy_tolerance > 0.0 && args.gradient_tolerance > 0.0) {
         eprintln!("error: --energy-tolerance and --gradient-tolerance must be positive");
         return exit::INPUT;
@@ -200,6 +229,8 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
         GuessKind::Core => Guess::Core,
     };
     let started = std::time::Instant::now();
+    let mut engine_keep: Option<crate::electronic::qc::scf::fock::JkEngine> = None;
+    let mut exact_exchange = 1.0;
     let (result, grid_info, functional_label) = if args.method.is_ks() {
         let grid = match GridSpec::level(&args.grid) {
             Ok(g) => g,
@@ -221,10 +252,21 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
             }
         };
         let label = builder.functional_name().to_string();
+        exact_exchange = builder.functional().exact_exchange();
         let info = (builder.grid_points(), args.grid.clone());
-        (scf::run(&basis, electrons, reference, &mut builder, &guess, &opts), Some(info), Some(label))
+        let r = scf::run(&basis, electrons, reference, &mut builder, &guess, &opts);
+        if args.excited.is_some() {
+            engine_keep = Some(builder.into_engine());
+        }
+        (r, Some(info), Some(label))
     } else {
-        (scf::hartree_fock(&basis, electrons, reference, &guess, &opts, JkOptions::default()), None, None)
+        let mut builder = crate::electronic::qc::scf::fock::HartreeFock {
+            engine: crate::electronic::qc::scf::fock::JkEngine::new(&basis, JkOptions::default()),
+            exchange_fraction: 1.0,
+        };
+        let r = scf::run(&basis, electrons, reference, &mut builder, &guess, &opts);
+        engine_keep = Some(builder.engine);
+        (r, None, None)
     };
     let seconds = started.elapsed().as_secs_f64();
     let r = match result {
@@ -238,6 +280,25 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
             eprintln!("error: {}: {e}", args.geometry.display());
             return exit::RUNTIME;
         }
+    };
+    let excited = match (args.excited, engine_keep.as_mut()) {
+        (Some(kind), Some(engine)) => {
+            use crate::electronic::qc::response::{self, davidson::DavidsonOptions, Method as RMethod, StateRequest};
+            let request = StateRequest {
+                method: if kind == Excited::Mrsf { RMethod::Mrsf } else { RMethod::SpinFlip },
+                singlets: args.singlets,
+                triplets: args.triplets,
+            };
+            let t = std::time::Instant::now();
+            match response::excited_states(&basis, &r, exact_exchange, engine, request, &DavidsonOptions::default()) {
+                Ok(x) => Some((x, t.elapsed().as_secs_f64())),
+                Err(e) => {
+                    eprintln!("error: --excited: {e}");
+                    return exit::INPUT;
+                }
+            }
+        }
+        _ => None,
     };
     let method = match &functional_label {
         Some(f) => format!("{}/{}", args.method.label(), f),
@@ -272,6 +333,7 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
             "occupations_alpha": occ_a,
             "occupations_beta": occ_b,
             "seconds": seconds,
+            "excited_states": excited.as_ref().map(|(x, secs)| excited_json(x, *secs)),
         });
         println!("{v}");
         return exit::OK;
@@ -350,5 +412,41 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
     if last < nmo {
         println!("  ({} more virtual orbitals)", nmo - last);
     }
+    if let Some((x, secs)) = &excited {
+        println!();
+        println!(
+            "{} states ({:.2} s); energies relative to S0, the lowest singlet{}",
+            if x.method == crate::electronic::qc::response::Method::Mrsf { "MRSF-TDDFT" } else { "SF-TDA (spin-unadapted)" },
+            secs,
+            if x.ground.is_none() { " (none computed: relative to the lowest state)" } else { "" }
+        );
+        println!("  {:<6} {:<9} {:>18} {:>9} {:>8} {:>8}  dominant configurations", "state", "spin", "energy (Eh)", "dE (eV)", "<S^2>", "f");
+        for i in 0..x.states.len() {
+            let s = &x.states[i];
+            let label = x.label(i).unwrap_or_default();
+            let de = s.excitation.map_or("-".to_string(), |e| format!("{:.4}", e * units::HARTREE_IN_EV));
+            let f = x.oscillator_from_ground(i).ok().flatten().map_or("-".to_string(), |f| format!("{f:.4}"));
+            println!("  {:<6} {:<9} {:>18.10} {:>9} {:>8.4} {:>8}  {}", label, s.spin.to_string(), s.energy, de, s.s_squared, f, s.dominant_text());
+        }
+    }
     exit::OK
+}
+
+fn excited_json(x: &crate::electronic::qc::response::ExcitedStates, seconds: f64) -> serde_json::Value {
+    let states: Vec<serde_json::Value> = (0..x.states.len())
+        .map(|i| {
+            let s = &x.states[i];
+            serde_json::json!({
+                "label": x.label(i).ok(),
+                "spin": s.spin.to_string(),
+                "energy": s.energy,
+                "omega": s.omega,
+                "excitation_ev": s.excitation.map(|e| e * units::HARTREE_IN_EV),
+                "s_squared": s.s_squared,
+                "oscillator_strength": x.oscillator_from_ground(i).ok().flatten(),
+                "dominant": s.dominant_text(),
+            })
+        })
+        .collect();
+    serde_json::json!({"method": format!("{:?}", x.method), "ground": x.ground, "seconds": seconds, "states": states})
 }

@@ -145,6 +145,17 @@ impl KohnSham {
         self.grid.len()
     }
 
+    /// The Coulomb/exchange engine (its integral store can be reused by the
+    /// response after the SCF).
+    pub fn engine_mut(&mut self) -> &mut JkEngine {
+        &mut self.engine
+    }
+
+    /// Give up the grid and keep the engine (for the response).
+    pub fn into_engine(self) -> JkEngine {
+        self.engine
+    }
+
     /// The grid.
     pub fn grid(&self) -> &MolecularGrid {
         &self.grid
