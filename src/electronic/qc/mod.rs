@@ -48,6 +48,8 @@
 pub mod basis;
 pub mod boys;
 pub mod dft;
+pub mod gradient;
 pub mod integrals;
+pub mod optimize;
 pub mod response;
 pub mod scf;

@@ -1,0 +1,1 @@
+//! Analytic and numerical nuclear gradients (being written).

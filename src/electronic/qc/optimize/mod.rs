@@ -1,0 +1,1 @@
+//! Geometry optimisation (being written).
