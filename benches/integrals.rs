@@ -1,12 +1,18 @@
 //! Integral and J/K throughput, printed, never asserted (`cargo bench --bench integrals`).
 //!
 //! Workloads: all unique ERIs (packed 8-fold store), an in-core J+K build from
-//! it, and an integral-direct J+K build, for benzene in 6-31G* (102 Cartesian
-//! functions) and cc-pVDZ (114 spherical functions). When Python with PySCF is
-//! importable (interpreter from `FLIPSWARM_PYTHON`, else /tmp/qcvenv/bin/python,
-//! else python3), the same basis data and geometry are timed with PySCF in the
-//! same invocation (`int2e` with 8-fold symmetry and `scf.hf.get_jk`) and the
-//! ratio is printed. Then a scaling table of the direct J+K build for linear
+//! it, and an integral-direct J+K build, for water, benzene (102 Cartesian
+//! functions in 6-31G*, 114 spherical in cc-pVDZ) and n-octane in 6-31G* (156,
+//! direct only: its store exceeds the default in-core limit). When Python with
+//! PySCF is importable (interpreter from `FLIPSWARM_PYTHON`, else
+//! /tmp/qcvenv/bin/python, else python3), the same basis data and geometry are
+//! timed with PySCF in the same invocation, with `OMP_NUM_THREADS` equal to the
+//! rayon thread count: `int2e` with 8-fold symmetry, the in-core J+K
+//! (`scf.hf.dot_eri_dm`), `scf.hf.get_jk` without screening, and `get_jk` with
+//! PySCF's direct-SCF screening at our Schwarz threshold (`direct_scf_tol`); the
+//! ratios are printed. `FLIPSWARM_BENCH_ONLY=benzene,water 6-31G*` selects
+//! cases (substring match, comma separated; skips the scaling table),
+//! `FLIPSWARM_BENCH_NO_PYSCF=1` skips the reference runs. Then a scaling table of the direct J+K build for linear
 //! alkanes in 6-31G from about 50 to about 400 basis functions
 //! (`FLIPSWARM_BENCH_MAX_NBF` caps it).
 
@@ -104,6 +110,27 @@ fn secs<T>(f: impl FnOnce() -> T) -> (T, f64) {
     (r, t.elapsed().as_secs_f64())
 }
 
+/// Repetitions per timed workload (`FLIPSWARM_BENCH_REPEAT`, default 3); the
+/// minimum is reported, for flipswarm and PySCF alike (shared machines are noisy).
+fn repeats() -> usize {
+    std::env::var("FLIPSWARM_BENCH_REPEAT")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .filter(|&r| r > 0)
+        .unwrap_or(3)
+}
+
+/// Minimum wall time of `repeats()` runs, and the last result.
+fn best<T>(mut f: impl FnMut() -> T) -> (T, f64) {
+    let (mut r, mut t) = secs(&mut f);
+    for _ in 1..repeats() {
+        let (r2, t2) = secs(&mut f);
+        r = r2;
+        t = t.min(t2);
+    }
+    (r, t)
+}
+
 fn python() -> Option<String> {
     let mut cands = Vec::new();
     if let Ok(p) = std::env::var("FLIPSWARM_PYTHON") {
@@ -127,21 +154,44 @@ from qc_integrals import pyscf_basis, SYMBOL
 import numpy as np
 from pyscf import gto, scf
 atoms = json.loads(sys.argv[2]); stem = sys.argv[3]; cart = sys.argv[4] == "1"
+tol = float(sys.argv[5]); in_core = sys.argv[6] == "1"; reps = int(sys.argv[7])
 mol = gto.Mole(); mol.atom = [(SYMBOL[z], p) for z, p in atoms]; mol.unit = "Bohr"
 mol.basis = pyscf_basis(stem, [z for z, _ in atoms]); mol.cart = cart; mol.build()
 dm = scf.hf.init_guess_by_1e(mol)
-t = time.perf_counter(); mol.intor("int2e", aosym="s8"); t_eri = time.perf_counter() - t
-t = time.perf_counter(); scf.hf.get_jk(mol, dm); t_jk = time.perf_counter() - t
-import pyscf; print(json.dumps({"nao": mol.nao, "eri": t_eri, "jk": t_jk, "version": pyscf.__version__}))
+out = {"nao": mol.nao}
+def best(f):
+    ts = []
+    for _ in range(reps):
+        t = time.perf_counter(); f(); ts.append(time.perf_counter() - t)
+    return min(ts)
+if in_core:
+    eri = mol.intor("int2e", aosym="s8")
+    out["eri"] = best(lambda: mol.intor("int2e", aosym="s8"))
+    out["jk_in_core"] = best(lambda: scf.hf.dot_eri_dm(eri, dm, hermi=1))
+    del eri
+out["jk"] = best(lambda: scf.hf.get_jk(mol, dm))
+mf = scf.RHF(mol); mf.direct_scf_tol = tol
+out["jk_screened"] = best(lambda: scf.hf.get_jk(mol, dm, vhfopt=mf.init_direct_scf(mol)))
+import pyscf; out["version"] = pyscf.__version__; print(json.dumps(out))
 "#;
 
-fn pyscf_times(py: &str, mol: &Molecule, stem: &str, cart: bool) -> Option<serde_json::Value> {
+/// PySCF timings (seconds) of the same workload, with `OMP_NUM_THREADS` set
+/// to our rayon thread count.
+fn pyscf_times(
+    py: &str,
+    mol: &Molecule,
+    stem: &str,
+    cart: bool,
+    tol: f64,
+    in_core: bool,
+) -> Option<serde_json::Value> {
     let atoms: Vec<(u8, [f64; 3])> = mol
         .atoms
         .iter()
         .map(|a| (a.element.atomic_number(), a.position_bohr))
         .collect();
     let out = Command::new(py)
+        .env("OMP_NUM_THREADS", rayon::current_num_threads().to_string())
         .args([
             "-c",
             PYSCF_SCRIPT,
@@ -149,6 +199,9 @@ fn pyscf_times(py: &str, mol: &Molecule, stem: &str, cart: bool) -> Option<serde
             &serde_json::to_string(&atoms).unwrap(),
             stem,
             if cart { "1" } else { "0" },
+            &format!("{tol:e}"),
+            if in_core { "1" } else { "0" },
+            &repeats().to_string(),
         ])
         .output()
         .ok()?;
@@ -159,45 +212,172 @@ fn pyscf_times(py: &str, mol: &Molecule, stem: &str, cart: bool) -> Option<serde
     serde_json::from_slice(out.stdout.split(|&c| c == b'\n').rfind(|l| !l.is_empty())?).ok()
 }
 
+fn water() -> Molecule {
+    let o = Element::from_symbol("O").unwrap();
+    let h = Element::from_symbol("H").unwrap();
+    let pos = [[0.0, 0.0, 0.22], [0.0, 1.43, -0.89], [0.0, -1.43, -0.89]];
+    Molecule::from_elements_positions_bohr(&[o, h, h], &pos).unwrap()
+}
+
+/// One timed case: flipswarm and (if importable) PySCF side by side.
+fn run_case(
+    label: &str,
+    mol: &Molecule,
+    name: &str,
+    stem: &str,
+    cart: bool,
+    nocc: usize,
+    py: Option<&str>,
+) {
+    let opts = JkOptions::default();
+    let b = BasisSet::builtin(mol, name).unwrap();
+    let d = guess_density(&b, nocc);
+    let (sp, t_pairs) = best(|| ShellPairs::new(&b));
+    let in_core = EriStore::bytes_needed(b.nbf) <= opts.max_in_core_bytes;
+    let mut t_eri = f64::NAN;
+    let mut t_jk_in = f64::NAN;
+    if in_core {
+        let (store, t) = best(|| EriStore::new(&sp, opts.threshold));
+        t_eri = t;
+        let (_, t) =
+            best(|| coulomb_exchange_in_core(&store, std::slice::from_ref(&d), true).unwrap());
+        t_jk_in = t;
+    }
+    let (r, t_jk_dir) =
+        best(|| coulomb_exchange_direct(&sp, std::slice::from_ref(&d), &opts).unwrap());
+    println!(
+        "{label:8} {name:8} nbf {:4}: shell pairs {:.3} s, all unique ERIs {:.3} s, J+K in-core {:.3} s, J+K direct {:.3} s ({} quartets, {} screened)",
+        b.nbf, t_pairs, t_eri, t_jk_in, t_jk_dir, r.quartets.0, r.quartets.1
+    );
+    let Some(p) = py else { return };
+    let Some(v) = pyscf_times(p, mol, stem, cart, opts.threshold, in_core) else {
+        return;
+    };
+    let g = |k: &str| v[k].as_f64().unwrap_or(f64::NAN);
+    println!(
+        "         PySCF {} nao {}: int2e s8 {:.3} s, in-core J+K {:.3} s, get_jk unscreened {:.3} s, get_jk screened {:.3} s",
+        v["version"].as_str().unwrap_or("?"),
+        v["nao"],
+        g("eri"),
+        g("jk_in_core"),
+        g("jk"),
+        g("jk_screened")
+    );
+    println!(
+        "         ratio flipswarm/PySCF: ERIs {:.2}, in-core J+K {:.2}, direct J+K vs unscreened {:.2}, vs screened at {:.0e} {:.2}",
+        (t_pairs + t_eri) / g("eri"),
+        t_jk_in / g("jk_in_core"),
+        (t_pairs + t_jk_dir) / g("jk"),
+        opts.threshold,
+        (t_pairs + t_jk_dir) / g("jk_screened")
+    );
+}
+
+/// Time per shell-quartet class (l and number of contractions of each group)
+/// over all canonical quartets of benzene in `name` (profiling aid, one thread).
+fn class_profile(spec: &str) {
+    use std::collections::BTreeMap;
+    let (mol, name) = match spec.split_once(':') {
+        Some(("water", n)) => (water(), n),
+        Some(("ethane", n)) => (alkane(2), n),
+        Some((_, n)) => (benzene(), n),
+        None => (benzene(), spec),
+    };
+    let b = BasisSet::builtin(&mol, name).unwrap();
+    let sp = ShellPairs::new(&b);
+    let ng = sp.ngroups();
+    let mut w = integrals::EriWork::new();
+    let mut acc: BTreeMap<String, (usize, usize, f64)> = BTreeMap::new();
+    let pidx = |i: usize, j: usize| i * (i + 1) / 2 + j;
+    for i in 0..ng {
+        for j in 0..=i {
+            for k in 0..=i {
+                for l in 0..=k {
+                    if pidx(k, l) > pidx(i, j) {
+                        break;
+                    }
+                    if sp.schwarz[pidx(i, j)] * sp.schwarz[pidx(k, l)] < 1e-12 {
+                        continue;
+                    }
+                    let g = |x: usize| sp.group_info[x];
+                    let key = format!(
+                        "({}{}|{}{}) ctr {}{}{}{}",
+                        g(i).0,
+                        g(j).0,
+                        g(k).0,
+                        g(l).0,
+                        g(i).2,
+                        g(j).2,
+                        g(k).2,
+                        g(l).2
+                    );
+                    let np = sp.pairs[pidx(i, j)].prims.len() * sp.pairs[pidx(k, l)].prims.len();
+                    let t = Instant::now();
+                    sp.quartet(i, j, k, l, &mut w);
+                    let dt = t.elapsed().as_secs_f64();
+                    let e = acc.entry(key).or_insert((0, 0, 0.0));
+                    e.0 += 1;
+                    e.1 += np;
+                    e.2 += dt;
+                }
+            }
+        }
+    }
+    let total: f64 = acc.values().map(|v| v.2).sum();
+    let mut v: Vec<_> = acc.into_iter().collect();
+    v.sort_by(|a, b| b.1 .2.total_cmp(&a.1 .2));
+    println!("class profile {spec}: total {total:.3} s");
+    for (k, (n, np, t)) in v.iter().take(25) {
+        println!(
+            "  {k:24} {n:7} quartets {np:10} prim quartets {t:7.3} s ({:4.1}%) {:6.1} ns/prim quartet",
+            100.0 * t / total,
+            1e9 * t / *np as f64
+        );
+    }
+}
+
 fn main() {
+    if let Ok(name) = std::env::var("FLIPSWARM_BENCH_CLASSES") {
+        class_profile(&name);
+        return;
+    }
     let threads = rayon::current_num_threads();
-    println!("flipswarm integrals benchmark ({threads} rayon threads)");
+    println!(
+        "flipswarm integrals benchmark ({threads} rayon threads = OMP_NUM_THREADS for PySCF; best of {} runs each)",
+        repeats()
+    );
     let py = python();
     match &py {
         Some(p) => println!("reference: PySCF via {p}"),
         None => println!("reference: PySCF not importable, flipswarm numbers only"),
     }
-    let mol = benzene();
-    let opts = JkOptions::default();
-    for (name, stem, cart) in [("6-31G*", "6-31g_st", true), ("cc-pVDZ", "cc-pvdz", false)] {
-        let b = BasisSet::builtin(&mol, name).unwrap();
-        let d = guess_density(&b, 21);
-        let (sp, t_pairs) = secs(|| ShellPairs::new(&b));
-        let (store, t_eri) = secs(|| EriStore::new(&sp, opts.threshold));
-        let (_, t_jk_in) =
-            secs(|| coulomb_exchange_in_core(&store, std::slice::from_ref(&d), true).unwrap());
-        let (r, t_jk_dir) =
-            secs(|| coulomb_exchange_direct(&sp, std::slice::from_ref(&d), &opts).unwrap());
-        println!(
-            "benzene {name:8} nbf {:4}: shell pairs {:.3} s, all unique ERIs {:.3} s ({} quartets, {} screened), J+K in-core {:.3} s, J+K direct {:.3} s",
-            b.nbf, t_pairs, t_eri, store.quartets.0, store.quartets.1, t_jk_in, t_jk_dir
-        );
-        let _ = r;
-        if let Some(p) = &py {
-            if let Some(v) = pyscf_times(p, &mol, stem, cart) {
-                let (pe, pj) = (v["eri"].as_f64().unwrap(), v["jk"].as_f64().unwrap());
-                println!(
-                    "        PySCF {} nao {}: int2e s8 {:.3} s, get_jk {:.3} s  -> ratio flipswarm/PySCF: ERIs {:.2}, J+K direct {:.2}",
-                    v["version"].as_str().unwrap_or("?"),
-                    v["nao"],
-                    pe,
-                    pj,
-                    (t_pairs + t_eri) / pe,
-                    (t_pairs + t_jk_dir) / pj
-                );
+    let only = std::env::var("FLIPSWARM_BENCH_ONLY").unwrap_or_default();
+    let py = if std::env::var_os("FLIPSWARM_BENCH_NO_PYSCF").is_some() {
+        None
+    } else {
+        py
+    };
+    let cases: Vec<(&str, Molecule, usize)> = vec![
+        ("water", water(), 5),
+        ("benzene", benzene(), 21),
+        ("C8H18", alkane(8), 33),
+    ];
+    for (label, mol, nocc) in &cases {
+        for (name, stem, cart) in [("6-31G*", "6-31g_st", true), ("cc-pVDZ", "cc-pvdz", false)] {
+            let tag = format!("{label} {name}");
+            if *label == "C8H18" && name == "cc-pVDZ" {
+                continue;
             }
+            if !only.is_empty() && !only.split(',').any(|o| tag.contains(o.trim())) {
+                continue;
+            }
+            run_case(label, mol, name, stem, cart, *nocc, py.as_deref());
         }
     }
+    if !only.is_empty() {
+        return;
+    }
+    let opts = JkOptions::default();
     let max_nbf: usize = std::env::var("FLIPSWARM_BENCH_MAX_NBF")
         .ok()
         .and_then(|v| v.parse().ok())

@@ -28,8 +28,10 @@ use std::sync::OnceLock;
 /// Highest order supported by [`boys`] (enough for (gg|gg) integrals and their
 /// first derivatives).
 pub const MAX_ORDER: usize = 32;
-/// Number of Taylor terms used between grid points.
+/// Number of Taylor terms used between grid points (the evaluation in
+/// [`boys`] is written out for exactly this many).
 pub const TAYLOR_TERMS: usize = 10;
+const _: () = assert!(TAYLOR_TERMS == 10);
 /// Grid spacing of the table (exactly representable).
 const STEP: f64 = 0.125;
 /// The table covers 0 ≤ x ≤ X_TABLE_MAX; beyond it the asymptotic route is used.
@@ -51,6 +53,18 @@ const INV_FACT: [f64; TAYLOR_TERMS] = [
     1.0 / 362880.0,
 ];
 
+/// 1/(2n−1) for n = 1 ..= MAX_ORDER (index n; entry 0 unused).
+fn inv_odd() -> &'static [f64; MAX_ORDER + 1] {
+    static T: OnceLock<[f64; MAX_ORDER + 1]> = OnceLock::new();
+    T.get_or_init(|| {
+        let mut t = [0.0; MAX_ORDER + 1];
+        for (n, v) in t.iter_mut().enumerate().skip(1) {
+            *v = 1.0 / (2 * n - 1) as f64;
+        }
+        t
+    })
+}
+
 fn table() -> &'static [f64] {
     static TABLE: OnceLock<Vec<f64>> = OnceLock::new();
     TABLE.get_or_init(build_table)
@@ -68,21 +82,29 @@ pub fn boys(n_max: usize, x: f64, out: &mut [f64]) {
     let x = if x > 0.0 { x } else { 0.0 };
     if x <= X_TABLE_MAX {
         let t = table();
-        let k = (x / STEP + 0.5) as usize;
+        // 0 ≤ x/STEP + 0.5 ≤ 400.5: the truncating cast cannot overflow
+        let k = (x / STEP + 0.5) as u32 as usize;
         let delta = x - k as f64 * STEP;
         let row = &t[k * N_ORDERS..(k + 1) * N_ORDERS];
-        // Taylor expansion of the top order (Horner form in −Δ).
-        let md = -delta;
-        let mut f = 0.0;
-        for j in (0..TAYLOR_TERMS).rev() {
-            f = f * md + row[n_max + j] * INV_FACT[j];
-        }
+        let terms = &row[n_max..n_max + TAYLOR_TERMS];
+        // Taylor expansion of the top order in m = −Δ, evaluated by Estrin's
+        // scheme (short dependency chains; TAYLOR_TERMS = 10).
+        let m = -delta;
+        let c = |j: usize| terms[j] * INV_FACT[j];
+        let (m2, m4) = (m * m, m * m * m * m);
+        let p01 = c(0) + c(1) * m;
+        let p23 = c(2) + c(3) * m;
+        let p45 = c(4) + c(5) * m;
+        let p67 = c(6) + c(7) * m;
+        let p89 = c(8) + c(9) * m;
+        let f = (p01 + p23 * m2) + (p45 + p67 * m2) * m4 + p89 * (m4 * m4);
         out[n_max] = f;
         if n_max > 0 {
             let e = (-x).exp();
             let two_x = 2.0 * x;
+            let inv = inv_odd();
             for n in (1..=n_max).rev() {
-                out[n - 1] = (two_x * out[n] + e) / (2 * n - 1) as f64;
+                out[n - 1] = (two_x * out[n] + e) * inv[n];
             }
         }
     } else {

@@ -9,6 +9,23 @@
 //! bra coefficients are applied (contraction-aware; all buffers live in a
 //! caller-owned [`EriWork`], so the inner loops do not allocate).
 //!
+//! Speed (see `benches/integrals.rs`):
+//! * only the structurally non-zero E coefficients are stored and used
+//!   ([`EPattern`]); R is evaluated at Q − P so the ket parity sign moves to
+//!   the bra side, and by a precomputed in-place recursion program
+//!   (`hermite.rs`), written out for total order ≤ 2;
+//! * primitive pairs carry a Schwarz-type bound and are sorted by it, so the
+//!   primitive loops stop at the first quartet below [`PRIM_THRESHOLD`];
+//! * each quartet is evaluated with the pair that makes the cheaper inner
+//!   loops as the bra ([`raw_quartet_any`]);
+//! * the direct J/K build visits shell pairs in order of their Schwarz factor
+//!   and stops the ket loop at the first pair below the threshold (with the
+//!   largest density element); the bra pairs are split into a fixed number of
+//!   chunks of similar estimated cost (the summation order does not depend on
+//!   the number of threads); each shell-quartet block is added to J and K by
+//!   dense block loops into half-matrices (`scatter_block`);
+//! * the in-core J is a packed symmetric matrix–vector product.
+//!
 //! Coulomb and exchange matrices for densities D (any, not necessarily
 //! symmetric): J_pq = Σ_rs (pq|rs) D_rs and K_pr = Σ_qs (pq|rs) D_qs.
 
@@ -122,6 +139,69 @@ pub struct ShellPairData {
     pub e: Vec<f64>,
     /// Per primitive pair the coefficient products `[ctr_a][ctr_b]`.
     pub k: Vec<f64>,
+    /// Per primitive pair the structurally non-zero E coefficients in the
+    /// order of [`EPattern`] (component pair major).
+    pub es: Vec<f64>,
+    /// Per primitive pair a Schwarz-type bound √max|(ab|ab)| of its
+    /// contribution (coefficients included); primitive pairs are sorted by it,
+    /// largest first, so the quartet loops can stop early.
+    pub qprim: Vec<f64>,
+}
+
+/// Primitive quartets whose Schwarz bound (product of the two pairs'
+/// `qprim`) is below this are skipped. It is far below the shell-quartet
+/// threshold of the J/K builds (default 1e−12); a skipped primitive quartet
+/// changes an integral by at most this much (common practice: primitive
+/// screening well below the shell-level threshold).
+pub const PRIM_THRESHOLD: f64 = 1e-15;
+
+/// Structural non-zero pattern of E^{ab}_{tuv} for a pair class (la, lb):
+/// for each component pair ab (row major `[ca][cb]`) the Hermite indices
+/// (into [`hermite_table`] of la+lb) with t ≤ a_x+b_x, u ≤ a_y+b_y,
+/// v ≤ a_z+b_z; all other E vanish identically.
+pub struct EPattern {
+    /// `start[ab]..start[ab+1]` is the range of component pair ab.
+    pub start: Vec<usize>,
+    /// Hermite index of each entry.
+    pub herm: Vec<usize>,
+    /// Component pair ab of each entry.
+    pub comp: Vec<usize>,
+}
+
+/// [`EPattern`] of (la, lb), la, lb ≤ MAX_L + 1.
+pub fn e_pattern(la: usize, lb: usize) -> &'static EPattern {
+    const N: usize = crate::electronic::qc::basis::MAX_L + 2;
+    static T: OnceLock<Vec<EPattern>> = OnceLock::new();
+    &T.get_or_init(|| {
+        (0..N * N)
+            .map(|x| {
+                let (la, lb) = (x / N, x % N);
+                let herm = hermite_table(la + lb);
+                let mut start = vec![0];
+                let mut hs = Vec::new();
+                let mut comp = Vec::new();
+                for ca in components_table(la) {
+                    for cb in components_table(lb) {
+                        for (h, tuv) in herm.iter().enumerate() {
+                            if tuv[0] <= ca[0] + cb[0]
+                                && tuv[1] <= ca[1] + cb[1]
+                                && tuv[2] <= ca[2] + cb[2]
+                            {
+                                hs.push(h);
+                                comp.push(start.len() - 1);
+                            }
+                        }
+                        start.push(hs.len());
+                    }
+                }
+                EPattern {
+                    start,
+                    herm: hs,
+                    comp,
+                }
+            })
+            .collect()
+    })[la * N + lb]
 }
 
 impl ShellPairData {
@@ -187,16 +267,84 @@ impl ShellPairData {
                 prims.push(PrimPair { p, center: pc });
             }
         }
-        ShellPairData {
+        let pat = e_pattern(a.l, b.l);
+        let nnz = pat.herm.len();
+        let mut es = Vec::with_capacity(prims.len() * nnz);
+        for ip in 0..prims.len() {
+            let blk = &e[ip * nherm * nab..(ip + 1) * nherm * nab];
+            for ab in 0..nab {
+                for &h in &pat.herm[pat.start[ab]..pat.start[ab + 1]] {
+                    es.push(blk[h * nab + ab]);
+                }
+            }
+        }
+        let mut pd = ShellPairData {
             la: a.l,
             lb: b.l,
             nctr: (ga, gb),
             nab,
             nherm,
+            qprim: vec![f64::INFINITY; prims.len()],
             prims,
             e,
             k: kv,
+            es,
+        };
+        pd.sort_primitives();
+        pd
+    }
+
+    /// Fill `qprim` (√max|(ab|ab)| of each primitive pair with its largest
+    /// coefficient product) and sort the primitive pairs by it, largest first.
+    fn sort_primitives(&mut self) {
+        thread_local! {
+            static WORK: std::cell::RefCell<EriWork> = std::cell::RefCell::new(EriWork::new());
         }
+        let np = self.prims.len();
+        let (nh, nab) = (self.nherm, self.nab);
+        let ng = self.nctr.0 * self.nctr.1;
+        let nnz = e_pattern(self.la, self.lb).herm.len();
+        let q: Vec<f64> = WORK.with(|w| {
+            let mut w = w.borrow_mut();
+            (0..np)
+                .map(|ip| {
+                    let kmax = self.k[ip * ng..(ip + 1) * ng]
+                        .iter()
+                        .fold(0.0f64, |m, v| m.max(v.abs()));
+                    let one = ShellPairData {
+                        la: self.la,
+                        lb: self.lb,
+                        nctr: (1, 1),
+                        nab,
+                        nherm: nh,
+                        prims: vec![self.prims[ip]],
+                        e: self.e[ip * nh * nab..(ip + 1) * nh * nab].to_vec(),
+                        k: vec![kmax],
+                        es: self.es[ip * nnz..(ip + 1) * nnz].to_vec(),
+                        qprim: vec![f64::INFINITY],
+                    };
+                    raw_quartet(&one, &one, &mut w);
+                    let mut m: f64 = 0.0;
+                    for ab in 0..nab {
+                        m = m.max(w.raw[ab * nab + ab].abs());
+                    }
+                    m.sqrt()
+                })
+                .collect()
+        });
+        let mut order: Vec<usize> = (0..np).collect();
+        order.sort_by(|&x, &y| q[y].total_cmp(&q[x]).then(x.cmp(&y)));
+        let perm = |v: &[f64], blk: usize| -> Vec<f64> {
+            order
+                .iter()
+                .flat_map(|&i| v[i * blk..(i + 1) * blk].iter().copied())
+                .collect()
+        };
+        self.e = perm(&self.e, nh * nab);
+        self.k = perm(&self.k, ng);
+        self.es = perm(&self.es, nnz);
+        self.qprim = order.iter().map(|&i| q[i]).collect();
+        self.prims = order.iter().map(|&i| self.prims[i]).collect();
     }
 
     /// Rows of the raw block: contractions × Cartesian components of a and b.
@@ -213,7 +361,7 @@ pub struct EriWork {
     raw: Vec<f64>,
     offs_ab: Vec<usize>,
     offs_cd: Vec<usize>,
-    sign_cd: Vec<f64>,
+    sign_ab: Vec<f64>,
     t1: Vec<f64>,
     t2: Vec<f64>,
     scale: [Vec<f64>; 4],
@@ -231,7 +379,7 @@ impl EriWork {
             raw: Vec::new(),
             offs_ab: Vec::new(),
             offs_cd: Vec::new(),
-            sign_cd: Vec::new(),
+            sign_ab: Vec::new(),
             t1: Vec::new(),
             t2: Vec::new(),
             scale: [Vec::new(), Vec::new(), Vec::new(), Vec::new()],
@@ -248,24 +396,36 @@ impl Default for EriWork {
 
 /// Raw Cartesian quartet into `w.raw`, layout `[A][B][C][D]` with each index
 /// running over (contraction, Cartesian component) of its shell.
+///
+/// Per bra primitive pair, the ket primitive pairs are contracted with R
+/// into `W[tuv][cd]` (only the structurally non-zero E^{cd}, [`EPattern`]),
+/// then the bra E coefficients are applied. R is evaluated at Q − P, which
+/// moves the ket parity sign (−1)^{τ+ν+φ} onto the bra Hermite index
+/// (R_tuv(−X) = (−1)^{t+u+v} R_tuv(X)). Primitive quartets below
+/// [`PRIM_THRESHOLD`] are skipped; both primitive lists are sorted by their
+/// bound, so the loops stop at the first one that falls below it.
 pub fn raw_quartet(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
     let lt = bra.la + bra.lb + ket.la + ket.lb;
     let d = lt + 1;
     let hab = hermite_table(bra.la + bra.lb);
     let hcd = hermite_table(ket.la + ket.lb);
+    let pat_b = e_pattern(bra.la, bra.lb);
+    let pat_k = e_pattern(ket.la, ket.lb);
     w.offs_ab.clear();
     w.offs_ab
         .extend(hab.iter().map(|t| (t[0] * d + t[1]) * d + t[2]));
-    w.offs_cd.clear();
-    w.offs_cd
-        .extend(hcd.iter().map(|t| (t[0] * d + t[1]) * d + t[2]));
-    w.sign_cd.clear();
-    w.sign_cd.extend(hcd.iter().map(|t| {
+    w.sign_ab.clear();
+    w.sign_ab.extend(hab.iter().map(|t| {
         if (t[0] + t[1] + t[2]) % 2 == 0 {
             1.0
         } else {
             -1.0
         }
+    }));
+    w.offs_cd.clear();
+    w.offs_cd.extend(pat_k.herm.iter().map(|&h| {
+        let t = hcd[h];
+        (t[0] * d + t[1]) * d + t[2]
     }));
     let (nca, ncb) = (
         components_table(bra.la).len(),
@@ -277,74 +437,106 @@ pub fn raw_quartet(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
     );
     let (ga, gb) = bra.nctr;
     let (gc, gd) = ket.nctr;
-    let (nab, ncdc) = (bra.nab, ket.nab);
+    let ncdc = ket.nab;
     let nrow_b = gb * ncb; // extent of index B
     let ncol = gc * ncc * gd * ncd; // extent of the combined ket index
-    let (nhab, nhcd) = (bra.nherm, ket.nherm);
-    let ket_single = gc * gd == 1;
+    let nhab = bra.nherm;
+    let (nnz_b, nnz_k) = (pat_b.herm.len(), pat_k.herm.len());
+    let gcd = gc * gd;
+    let ket_single = gcd == 1;
+    // Internal layout while accumulating: W[tuv][g][cd] and raw[row][g][cd]
+    // with g = (c1, d1) the ket contraction pair; permuted to
+    // [row][c1 cc][d1 dd] at the end.
     w.raw.clear();
     w.raw.resize(ga * nca * nrow_b * ncol, 0.0);
     w.w.resize(nhab * ncol, 0.0);
-    if !ket_single {
-        w.v.resize(nhab * ncdc, 0.0);
-    }
     let two_pi_52 = 2.0 * PI.powf(2.5);
+    let qk_max = ket.qprim.first().copied().unwrap_or(0.0);
+    let comp_k = &pat_k.comp;
+    debug_assert!(
+        w.offs_ab.iter().max().unwrap_or(&0) + w.offs_cd.iter().max().unwrap_or(&0) < d * d * d
+    );
+    if !ket_single {
+        w.v.resize(ncdc * nhab, 0.0);
+    }
     for (ip, pp) in bra.prims.iter().enumerate() {
+        let qb = bra.qprim[ip];
+        if qb * qk_max < PRIM_THRESHOLD {
+            break;
+        }
         w.w.fill(0.0);
         for (iq, qq) in ket.prims.iter().enumerate() {
+            if qb * ket.qprim[iq] < PRIM_THRESHOLD {
+                break;
+            }
             let (p, q) = (pp.p, qq.p);
-            let alpha = p * q / (p + q);
-            let pq = [
-                pp.center[0] - qq.center[0],
-                pp.center[1] - qq.center[1],
-                pp.center[2] - qq.center[2],
+            let pq = p * q;
+            // 1/√(p+q) once: α = pq/(p+q), prefactor 2π^{5/2}/(pq√(p+q))
+            let rs = 1.0 / (p + q).sqrt();
+            let alpha = pq * rs * rs;
+            let qp = [
+                qq.center[0] - pp.center[0],
+                qq.center[1] - pp.center[1],
+                qq.center[2] - pp.center[2],
             ];
-            let mut pref = two_pi_52 / (p * q * (p + q).sqrt());
+            let mut pref = two_pi_52 * rs / pq;
             if ket_single {
                 pref *= ket.k[iq];
             }
-            w.r.compute(lt, alpha, pq, pref);
-            let r = &w.r.r;
-            let ecd = &ket.e[iq * nhcd * ncdc..(iq + 1) * nhcd * ncdc];
-            // V[tuv][cd] = Σ_τνφ (−1)^{τ+ν+φ} R_{t+τ,u+ν,v+φ} E^{cd}_τνφ
-            let target: &mut [f64] = if ket_single { &mut w.w } else { &mut w.v };
-            if !ket_single {
-                target.fill(0.0);
-            }
-            for h1 in 0..nhab {
-                let o1 = w.offs_ab[h1];
-                let row = &mut target[h1 * ncdc..(h1 + 1) * ncdc];
-                for h2 in 0..nhcd {
-                    let rv = r[o1 + w.offs_cd[h2]] * w.sign_cd[h2];
-                    let erow = &ecd[h2 * ncdc..(h2 + 1) * ncdc];
-                    for (x, &e) in row.iter_mut().zip(erow) {
-                        *x += rv * e;
+            w.r.compute(lt, alpha, qp, pref);
+            let r = &w.r.r[..d * d * d];
+            let esk = &ket.es[iq * nnz_k..(iq + 1) * nnz_k];
+            let offs_cd = &w.offs_cd[..nnz_k];
+            let offs_ab = &w.offs_ab[..nhab];
+            // Σ_τνφ R_{t+τ,u+ν,v+φ}(Q−P) E^{cd}_τνφ (the bra parity sign is
+            // applied with the bra coefficients), entry by entry of the ket
+            // pattern, running over the bra Hermite index inside.
+            // SAFETY (both branches): every o1 + o2 is the cube index of
+            // (t+τ, u+ν, v+φ) with t+u+v ≤ la+lb, τ+ν+φ ≤ lc+ld, so it is below
+            // d³ = r.len() (checked in debug builds above); cd < ncdc ≤ ncol and
+            // h1 < nhab, so h1·ncol + cd < nhab·ncol ≤ w.w.len() and
+            // cd·nhab + h1 < ncdc·nhab = vt.len().
+            let rp = r.as_ptr();
+            if ket_single {
+                let wv = &mut w.w[..nhab * ncol];
+                let wp = wv.as_mut_ptr();
+                for kk in 0..nnz_k {
+                    let (o2, e, cd) = (offs_cd[kk], esk[kk], comp_k[kk]);
+                    debug_assert!(cd < ncol);
+                    for (h1, &o1) in offs_ab.iter().enumerate() {
+                        unsafe {
+                            *wp.add(h1 * ncol + cd) += e * *rp.add(o1 + o2);
+                        }
                     }
                 }
-            }
-            if !ket_single {
-                let kq = &ket.k[iq * gc * gd..(iq + 1) * gc * gd];
-                for h1 in 0..nhab {
-                    let vrow = &w.v[h1 * ncdc..(h1 + 1) * ncdc];
-                    let wrow = &mut w.w[h1 * ncol..(h1 + 1) * ncol];
-                    for c1 in 0..gc {
-                        for d1 in 0..gd {
-                            let k = kq[c1 * gd + d1];
-                            if k == 0.0 {
-                                continue;
-                            }
-                            for cc in 0..ncc {
-                                let base = (c1 * ncc + cc) * (gd * ncd) + d1 * ncd;
-                                for dd in 0..ncd {
-                                    wrow[base + dd] += k * vrow[cc * ncd + dd];
-                                }
-                            }
+            } else {
+                let vt = &mut w.v[..ncdc * nhab];
+                vt.fill(0.0);
+                let vp = vt.as_mut_ptr();
+                for kk in 0..nnz_k {
+                    let (o2, e, cd) = (offs_cd[kk], esk[kk], comp_k[kk]);
+                    debug_assert!(cd < ncdc);
+                    for (h1, &o1) in offs_ab.iter().enumerate() {
+                        unsafe {
+                            *vp.add(cd * nhab + h1) += e * *rp.add(o1 + o2);
+                        }
+                    }
+                }
+                let wv = &mut w.w[..nhab * ncol];
+                let kq = &ket.k[iq * gcd..(iq + 1) * gcd];
+                // W[h1][g][cd] += k_g V[cd][h1]  (ncol = gcd·ncdc)
+                for (g, &k) in kq.iter().enumerate() {
+                    let g = g * ncdc;
+                    for cd in 0..ncdc {
+                        let vrow = &vt[cd * nhab..(cd + 1) * nhab];
+                        for (h1, &x) in vrow.iter().enumerate() {
+                            wv[h1 * ncol + g + cd] += k * x;
                         }
                     }
                 }
             }
         }
-        let eab = &bra.e[ip * nhab * nab..(ip + 1) * nhab * nab];
+        let esb = &bra.es[ip * nnz_b..(ip + 1) * nnz_b];
         let kp = &bra.k[ip * ga * gb..(ip + 1) * ga * gb];
         for a1 in 0..ga {
             for b1 in 0..gb {
@@ -352,17 +544,15 @@ pub fn raw_quartet(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
                 if k == 0.0 {
                     continue;
                 }
-                for h1 in 0..nhab {
-                    let wrow = &w.w[h1 * ncol..(h1 + 1) * ncol];
-                    for ca in 0..nca {
-                        for cb in 0..ncb {
-                            let e = eab[h1 * nab + ca * ncb + cb];
-                            if e == 0.0 {
-                                continue;
-                            }
-                            let e = e * k;
-                            let row = (a1 * nca + ca) * nrow_b + b1 * ncb + cb;
-                            let orow = &mut w.raw[row * ncol..(row + 1) * ncol];
+                for ca in 0..nca {
+                    for cb in 0..ncb {
+                        let ab = ca * ncb + cb;
+                        let row = (a1 * nca + ca) * nrow_b + b1 * ncb + cb;
+                        let orow = &mut w.raw[row * ncol..(row + 1) * ncol];
+                        for kk in pat_b.start[ab]..pat_b.start[ab + 1] {
+                            let h1 = pat_b.herm[kk];
+                            let e = esb[kk] * k * w.sign_ab[h1];
+                            let wrow = &w.w[h1 * ncol..(h1 + 1) * ncol];
                             for (o, &x) in orow.iter_mut().zip(wrow) {
                                 *o += e * x;
                             }
@@ -371,6 +561,68 @@ pub fn raw_quartet(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
                 }
             }
         }
+    }
+    if !ket_single {
+        // [row][c1 d1][cc dd] → [row][c1 cc][d1 dd]
+        let nrow = ga * nca * nrow_b;
+        w.t1.clear();
+        w.t1.resize(w.raw.len(), 0.0);
+        for row in 0..nrow {
+            let src = &w.raw[row * ncol..(row + 1) * ncol];
+            let dst = &mut w.t1[row * ncol..(row + 1) * ncol];
+            for c1 in 0..gc {
+                for d1 in 0..gd {
+                    let g = (c1 * gd + d1) * ncdc;
+                    for cc in 0..ncc {
+                        for dd in 0..ncd {
+                            dst[(c1 * ncc + cc) * (gd * ncd) + d1 * ncd + dd] =
+                                src[g + cc * ncd + dd];
+                        }
+                    }
+                }
+            }
+        }
+        std::mem::swap(&mut w.raw, &mut w.t1);
+    }
+}
+
+/// Estimated work of [`raw_quartet`] with `x` as the bra and `y` as the ket
+/// (multiply–adds of the ket and bra contraction steps).
+fn quartet_cost(x: &ShellPairData, y: &ShellPairData) -> usize {
+    let (nx, ny) = (x.prims.len(), y.prims.len());
+    let gy = y.nctr.0 * y.nctr.1;
+    let gx = x.nctr.0 * x.nctr.1;
+    let nnz_x = e_pattern(x.la, x.lb).herm.len();
+    let nnz_y = e_pattern(y.la, y.lb).herm.len();
+    // per primitive quartet: the ket pattern × bra Hermite loop (+ loop
+    // overhead), the contraction-pair distribution, R and the Boys function
+    let ket = nnz_y * (x.nherm + 3)
+        + if gy > 1 {
+            gy * y.nab * (x.nherm + 3)
+        } else {
+            0
+        };
+    // per bra primitive: bra pattern × ket columns
+    let bra = gx * nnz_x * (gy * y.nab + 3) + x.nherm * gy * y.nab;
+    nx * ny * ket + nx * bra
+}
+
+/// [`raw_quartet`] in whichever orientation is cheaper; the result is always
+/// laid out `[bra rows][ket rows]`.
+pub fn raw_quartet_any(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
+    if quartet_cost(ket, bra) < quartet_cost(bra, ket) {
+        raw_quartet(ket, bra, w);
+        let (nk, nb) = (ket.nrows(), bra.nrows());
+        w.t1.clear();
+        w.t1.resize(nk * nb, 0.0);
+        for r in 0..nk {
+            for c in 0..nb {
+                w.t1[c * nk + r] = w.raw[r * nb + c];
+            }
+        }
+        std::mem::swap(&mut w.raw, &mut w.t1);
+    } else {
+        raw_quartet(bra, ket, w);
     }
 }
 
@@ -418,6 +670,12 @@ pub type QuartetShells = [(usize, bool, usize); 4];
 /// index over (contraction, function)).
 pub fn transform_quartet(shells: QuartetShells, w: &mut EriWork) {
     let dims = shells.map(|(l, _, g)| components_table(l).len() * g);
+    if shells.iter().all(|&(l, _, _)| l < 2) {
+        // s and p: the transformation is the identity
+        w.out.clear();
+        w.out.extend_from_slice(&w.raw);
+        return;
+    }
     if shells.iter().all(|&(l, p, _)| is_diagonal(l, p)) {
         // Diagonal scalings only: factor per (contraction, component).
         let f = &mut w.scale;
@@ -538,7 +796,7 @@ impl ShellPairs {
     /// The transformed block of group quartet (i j|k l), i ≥ j, k ≥ l, into
     /// `w.out` with layout `[a][b][c][d]` over the groups' functions.
     pub fn quartet(&self, i: usize, j: usize, k: usize, l: usize, w: &mut EriWork) {
-        raw_quartet(
+        raw_quartet_any(
             &self.pairs[pair_index(i, j)],
             &self.pairs[pair_index(k, l)],
             w,
@@ -762,56 +1020,139 @@ impl EriStore {
         }
         let pairs_of: Vec<(usize, usize)> =
             (0..n).flat_map(|i| (0..=i).map(move |j| (i, j))).collect();
+        // J as a packed symmetric matrix–vector product: with the weighted
+        // packed density Dw_kl = ½^{[k=l]} (D_kl + D_lk), J_ij += (ij|kl) Dw_kl
+        // and J_kl += (ij|kl) Dw_ij for kl < ij, J_ij += (ij|ij) Dw_ij.
+        // K from half-matrices as in the direct build (`scatter_block`):
+        // K = K' + K''ᵀ, K' built with D and K'' with Dᵀ (K'' = K' if D = Dᵀ).
+        let views: Vec<DensityViews> = dens.iter().map(|d| DensityViews::new(n, d)).collect();
+        let dw: Vec<Vec<f64>> = views
+            .iter()
+            .map(|v| {
+                pairs_of
+                    .iter()
+                    .map(|&(k, l)| if k == l { 0.5 } else { 1.0 } * v.ds[k * n + l])
+                    .collect()
+            })
+            .collect();
+        let all_sym = views.iter().all(|v| v.symmetric);
+        let nk = if want_k {
+            if all_sym {
+                nd
+            } else {
+                2 * nd
+            }
+        } else {
+            0
+        };
         let parts: Vec<JkParts> = bounds
             .windows(2)
             .collect::<Vec<_>>()
             .par_iter()
             .map(|w| {
-                let mut j = vec![vec![0.0; n * n]; nd];
-                let mut k = vec![vec![0.0; n * n]; if want_k { nd } else { 0 }];
+                let mut jp = vec![vec![0.0; npair]; nd];
+                let mut k = vec![vec![0.0; n * n]; nk];
                 for ij in w[0]..w[1] {
                     let (i, jj) = pairs_of[ij];
                     let base = ij * (ij + 1) / 2;
-                    for kl in 0..=ij {
-                        let v0 = self.values[base + kl];
-                        if v0 == 0.0 {
-                            continue;
+                    let row = &self.values[base..base + ij + 1];
+                    for m in 0..nd {
+                        let d = &dw[m];
+                        let jpm = &mut jp[m];
+                        let dij = d[ij];
+                        let mut acc = 0.0;
+                        for ((&v, &dk), jk) in row[..ij].iter().zip(&d[..ij]).zip(&mut jpm[..ij]) {
+                            acc += v * dk;
+                            *jk += v * dij;
                         }
-                        let (kk, l) = pairs_of[kl];
-                        let f = v0 * degeneracy(i == jj, kk == l, ij == kl);
-                        scatter_densities(n, [i, jj, kk, l], f, dens, &mut j, &mut k, want_k);
+                        jpm[ij] += acc + row[ij] * dij;
+                    }
+                    if !want_k {
+                        continue;
+                    }
+                    let fij = if i == jj { 0.5 } else { 1.0 };
+                    for (m, v) in views.iter().enumerate() {
+                        let (lo, hi) = k.split_at_mut(nd);
+                        let kt = if v.symmetric { None } else { Some(&mut hi[m]) };
+                        let km = &mut lo[m];
+                        let half = |km: &mut Vec<f64>, d: &[f64]| {
+                            for (kl, &v0) in row.iter().enumerate() {
+                                if v0 == 0.0 {
+                                    continue;
+                                }
+                                let (kk, l) = pairs_of[kl];
+                                let f = v0
+                                    * fij
+                                    * if kk == l { 0.5 } else { 1.0 }
+                                    * if kl == ij { 0.5 } else { 1.0 };
+                                km[i * n + kk] += f * d[jj * n + l];
+                                km[jj * n + kk] += f * d[i * n + l];
+                                km[i * n + l] += f * d[jj * n + kk];
+                                km[jj * n + l] += f * d[i * n + kk];
+                            }
+                        };
+                        half(km, &v.d);
+                        if let Some(kt) = kt {
+                            half(kt, &v.dt);
+                        }
                     }
                 }
-                (j, k)
+                (jp, k)
             })
             .collect();
-        sum_parts(parts, n, nd, want_k)
+        let mut jp = vec![vec![0.0; npair]; nd];
+        let mut kh = vec![vec![0.0; n * n]; nk];
+        for (pj, pk) in parts {
+            for (x, y) in jp.iter_mut().zip(&pj) {
+                for (a, b) in x.iter_mut().zip(y) {
+                    *a += b;
+                }
+            }
+            for (x, y) in kh.iter_mut().zip(&pk) {
+                for (a, b) in x.iter_mut().zip(y) {
+                    *a += b;
+                }
+            }
+        }
+        let j: Vec<Vec<f64>> = jp
+            .iter()
+            .map(|p| {
+                let mut full = vec![0.0; n * n];
+                for (ij, &(a, b)) in pairs_of.iter().enumerate() {
+                    full[a * n + b] = p[ij];
+                    full[b * n + a] = p[ij];
+                }
+                full
+            })
+            .collect();
+        let k: Vec<Vec<f64>> = if want_k {
+            (0..nd)
+                .map(|m| {
+                    let a = &kh[m];
+                    let b = if views[m].symmetric {
+                        &kh[m]
+                    } else {
+                        &kh[nd + m]
+                    };
+                    let mut full = vec![0.0; n * n];
+                    for r in 0..n {
+                        for c in 0..n {
+                            full[r * n + c] = a[r * n + c] + b[c * n + r];
+                        }
+                    }
+                    full
+                })
+                .collect()
+        } else {
+            Vec::new()
+        };
+        (j, k)
     }
 }
 
 /// Per-density J and K matrices (row-major flat), one partial sum.
 type JkParts = (Vec<Vec<f64>>, Vec<Vec<f64>>);
 
-fn sum_parts(parts: Vec<JkParts>, n: usize, nd: usize, want_k: bool) -> JkParts {
-    let mut j = vec![vec![0.0; n * n]; nd];
-    let mut k = vec![vec![0.0; n * n]; if want_k { nd } else { 0 }];
-    for (pj, pk) in parts {
-        for m in 0..nd {
-            for (x, y) in j[m].iter_mut().zip(&pj[m]) {
-                *x += y;
-            }
-            if want_k {
-                for (x, y) in k[m].iter_mut().zip(&pk[m]) {
-                    *x += y;
-                }
-            }
-        }
-    }
-    (j, k)
-}
-
-/// Add the 8 permutations of a canonical integral (scaled by its degeneracy
-/// factor f) to J and K of one density (row-major n×n).
 /// Weight of one unique integral in the 8-fold sum: ½ for each of the
 /// coincidences i = j, k = l and (ij) = (kl), which make mirror images of
 /// the same integral.
@@ -819,48 +1160,6 @@ fn sum_parts(parts: Vec<JkParts>, n: usize, nd: usize, want_k: bool) -> JkParts 
 fn degeneracy(same_ij: bool, same_kl: bool, same_pairs: bool) -> f64 {
     let half = |b: bool| if b { 0.5 } else { 1.0 };
     half(same_ij) * half(same_kl) * half(same_pairs)
-}
-
-/// [`scatter`] one weighted integral into J (and K) of every density.
-#[inline(always)]
-#[allow(clippy::too_many_arguments)]
-fn scatter_densities(n: usize, [i, j, k, l]: [usize; 4], f: f64, dens: &[Vec<f64>], jm: &mut [Vec<f64>], km: &mut [Vec<f64>], want_k: bool) {
-    for m in 0..dens.len() {
-        scatter(n, i, j, k, l, f, &dens[m], &mut jm[m], if want_k { Some(&mut km[m]) } else { None });
-    }
-}
-
-#[inline(always)]
-#[allow(clippy::too_many_arguments)]
-fn scatter(
-    n: usize,
-    i: usize,
-    j: usize,
-    k: usize,
-    l: usize,
-    f: f64,
-    d: &[f64],
-    jm: &mut [f64],
-    km: Option<&mut [f64]>,
-) {
-    // (ij|kl) (ji|kl) (ij|lk) (ji|lk) (kl|ij) (lk|ij) (kl|ji) (lk|ji)
-    let dkl = d[k * n + l] + d[l * n + k];
-    let dij = d[i * n + j] + d[j * n + i];
-    jm[i * n + j] += f * dkl;
-    jm[j * n + i] += f * dkl;
-    jm[k * n + l] += f * dij;
-    jm[l * n + k] += f * dij;
-    if let Some(km) = km {
-        // K_pr += (pq|rs) D_qs for each permutation (p q r s).
-        km[i * n + k] += f * d[j * n + l];
-        km[j * n + k] += f * d[i * n + l];
-        km[i * n + l] += f * d[j * n + k];
-        km[j * n + l] += f * d[i * n + k];
-        km[k * n + i] += f * d[l * n + j];
-        km[l * n + i] += f * d[k * n + j];
-        km[k * n + j] += f * d[l * n + i];
-        km[l * n + j] += f * d[k * n + i];
-    }
 }
 
 /// Options of the J/K builds.
@@ -998,22 +1297,82 @@ pub fn coulomb_exchange_direct(
             dmax[a * ns + b] = m;
         }
     }
+    // Per density: D, Dᵀ and D + Dᵀ (row major); K is accumulated as
+    // K' (with D) and K'' (with Dᵀ) and assembled as K' + K''ᵀ, J as
+    // J' + J'ᵀ (see `scatter_block`). For a symmetric D, K'' = K'.
+    let views: Vec<DensityViews> = dens.iter().map(|d| DensityViews::new(n, d)).collect();
+    let nk = if want_k_any(opts) {
+        if views.iter().all(|v| v.symmetric) {
+            nd
+        } else {
+            2 * nd
+        }
+    } else {
+        0
+    };
     let bras = bra_pairs(ns);
-    let nchunks = 32.min(bras.len().max(1));
-    let chunk = bras.len().div_ceil(nchunks);
+    let npairs = bras.len();
+    // Pairs sorted by Schwarz factor, ascending; a shell quartet is visited
+    // once, from its pair of higher rank (the bra), with the kets taken in
+    // decreasing Q so the loop stops at the first ket with
+    // Q_ij Q_kl max|D| below the threshold.
+    let mut order: Vec<usize> = (0..npairs).collect();
+    order.sort_by(|&x, &y| sp.schwarz[x].total_cmp(&sp.schwarz[y]).then(x.cmp(&y)));
+    let q_sorted: Vec<f64> = order.iter().map(|&x| sp.schwarz[x]).collect();
+    let dglob = dmax.iter().fold(0.0f64, |m, &v| m.max(v));
+    // Estimated cost per bra rank (primitive pairs × raw block size of both
+    // pairs, over the kets that pass the global bound) for a fixed partition
+    // of similar work; the summation order does not depend on the threads.
+    let cost_pair: Vec<f64> = order
+        .iter()
+        .map(|&x| {
+            let pd = &sp.pairs[x];
+            (pd.prims.len() * pd.nrows() * pd.nherm) as f64 + 1.0
+        })
+        .collect();
+    let mut prefix = vec![0.0; npairs + 1];
+    for r in 0..npairs {
+        prefix[r + 1] = prefix[r] + cost_pair[r];
+    }
+    let first_ket = |r: usize| -> usize {
+        let qb = q_sorted[r] * dglob;
+        // first rank whose Q passes: q_sorted is ascending
+        q_sorted[..=r].partition_point(|&q| qb * q < opts.threshold)
+    };
+    let cost: Vec<f64> = (0..npairs)
+        .map(|r| cost_pair[r] * (prefix[r + 1] - prefix[first_ket(r)]))
+        .collect();
+    let total: f64 = cost.iter().sum();
+    let nchunks = 32.min(npairs.max(1));
+    let mut bounds = vec![0usize];
+    let mut acc = 0.0;
+    for (r, c) in cost.iter().enumerate() {
+        acc += c;
+        if acc * nchunks as f64 >= total * bounds.len() as f64 && bounds.len() < nchunks {
+            bounds.push(r + 1);
+        }
+    }
+    if *bounds.last().unwrap_or(&0) != npairs {
+        bounds.push(npairs);
+    }
     let want_k = opts.exchange;
-    let parts: Vec<(JkParts, (usize, usize))> = bras
-        .chunks(chunk.max(1))
+    let parts: Vec<(JkParts, (usize, usize))> = bounds
+        .windows(2)
         .collect::<Vec<_>>()
         .par_iter()
-        .map(|list| {
+        .map(|win| {
             let mut w = EriWork::new();
             let mut jm = vec![vec![0.0; n * n]; nd];
-            let mut km = vec![vec![0.0; n * n]; if want_k { nd } else { 0 }];
+            let mut km = vec![vec![0.0; n * n]; nk];
             let mut counts = (0, 0);
-            for &(i, j) in list.iter() {
-                let c = for_each_quartet(sp, i, j, 0.0, |k, l| {
-                    let q = sp.schwarz[pair_index(i, j)] * sp.schwarz[pair_index(k, l)];
+            for rb in win[0]..win[1] {
+                let (i, j) = bras[order[rb]];
+                let qij = q_sorted[rb];
+                let lo = first_ket(rb);
+                counts.1 += lo;
+                for rk in (lo..=rb).rev() {
+                    let (k, l) = bras[order[rk]];
+                    let q = qij * q_sorted[rk];
                     let mut dm = dmax[i * ns + j].max(dmax[k * ns + l]);
                     if want_k {
                         dm = dm
@@ -1023,40 +1382,31 @@ pub fn coulomb_exchange_direct(
                             .max(dmax[j * ns + l]);
                     }
                     if q * dm < opts.threshold {
-                        return false;
+                        counts.1 += 1;
+                        continue;
                     }
+                    counts.0 += 1;
                     sp.quartet(i, j, k, l, &mut w);
-                    let (oi, ni) = sp.group_ao[i];
-                    let (oj, nj) = sp.group_ao[j];
-                    let (ok, nk) = sp.group_ao[k];
-                    let (ol, nl) = sp.group_ao[l];
-                    let mut x = 0;
-                    for a in 0..ni {
-                        for b in 0..nj {
-                            for c in 0..nk {
-                                for d in 0..nl {
-                                    let (ga, gb, gc, gd) = (oi + a, oj + b, ok + c, ol + d);
-                                    let v = w.out[x];
-                                    x += 1;
-                                    if ga < gb || gc < gd {
-                                        continue;
-                                    }
-                                    // Within one shell quartet each unordered function
-                                    // quartet appears once, except for the mirror images
-                                    // that i = j, k = l or (ij) = (kl) produce.
-                                    let (pab, pcd) = (pair_index(ga, gb), pair_index(gc, gd));
-                                    if i == k && j == l && pab < pcd {
-                                        continue;
-                                    }
-                                    let f = v * degeneracy(ga == gb, gc == gd, pab == pcd);                                    scatter_densities(n, [ga, gb, gc, gd], f, &dens, &mut jm, &mut km, want_k);
-                                }
-                            }
-                        }
+                    let blocks = [
+                        sp.group_ao[i],
+                        sp.group_ao[j],
+                        sp.group_ao[k],
+                        sp.group_ao[l],
+                    ];
+                    let f = degeneracy(i == j, k == l, i == k && j == l);
+                    for (m, v) in views.iter().enumerate() {
+                        let (kp, kt) = if want_k {
+                            let (lo, hi) = km.split_at_mut(nd);
+                            (
+                                Some(&mut lo[m]),
+                                if v.symmetric { None } else { Some(&mut hi[m]) },
+                            )
+                        } else {
+                            (None, None)
+                        };
+                        scatter_block(n, blocks, f, &w.out, v, &mut jm[m], kp, kt);
                     }
-                    true
-                });
-                counts.0 += c.0;
-                counts.1 += c.1;
+                }
             }
             ((jm, km), counts)
         })
@@ -1068,13 +1418,154 @@ pub fn coulomb_exchange_direct(
         quartets.1 += c.1;
         jk_parts.push(p);
     }
-    let (j, k) = sum_parts(jk_parts, n, nd, want_k);
+    let mut jh = vec![vec![0.0; n * n]; nd];
+    let mut kh = vec![vec![0.0; n * n]; nk];
+    for (pj, pk) in jk_parts {
+        for (x, y) in jh.iter_mut().zip(&pj) {
+            for (a, b) in x.iter_mut().zip(y) {
+                *a += b;
+            }
+        }
+        for (x, y) in kh.iter_mut().zip(&pk) {
+            for (a, b) in x.iter_mut().zip(y) {
+                *a += b;
+            }
+        }
+    }
+    let plus_transpose =
+        |a: &[f64], b: &[f64]| DMatrix::from_fn(n, n, |r, c| a[r * n + c] + b[c * n + r]);
+    let j = jh.iter().map(|x| plus_transpose(x, x)).collect();
+    let k = if want_k {
+        (0..nd)
+            .map(|m| {
+                if views[m].symmetric {
+                    plus_transpose(&kh[m], &kh[m])
+                } else {
+                    plus_transpose(&kh[m], &kh[nd + m])
+                }
+            })
+            .collect()
+    } else {
+        Vec::new()
+    };
     Ok(JkResult {
-        j: j.iter().map(|v| DMatrix::from_row_slice(n, n, v)).collect(),
-        k: k.iter().map(|v| DMatrix::from_row_slice(n, n, v)).collect(),
+        j,
+        k,
         in_core: false,
         quartets,
     })
+}
+
+/// A density in the forms the block scatter reads.
+struct DensityViews {
+    d: Vec<f64>,
+    dt: Vec<f64>,
+    ds: Vec<f64>,
+    symmetric: bool,
+}
+
+impl DensityViews {
+    fn new(n: usize, d: &[f64]) -> DensityViews {
+        let mut dt = vec![0.0; n * n];
+        let mut ds = vec![0.0; n * n];
+        let mut symmetric = true;
+        for r in 0..n {
+            for c in 0..n {
+                dt[r * n + c] = d[c * n + r];
+                ds[r * n + c] = d[r * n + c] + d[c * n + r];
+                symmetric &= d[r * n + c] == d[c * n + r];
+            }
+        }
+        DensityViews {
+            d: d.to_vec(),
+            dt,
+            ds,
+            symmetric,
+        }
+    }
+}
+
+fn want_k_any(opts: &JkOptions) -> bool {
+    opts.exchange
+}
+
+/// Add one canonical shell-quartet block (ab|cd) (layout `[a][b][c][d]`,
+/// each index over its group's functions) with weight `f` (the degeneracy
+/// of coinciding shells, [`degeneracy`]) to the half-matrices of one density:
+/// with v = f (ab|cd) and the 8 index permutations,
+///   J'_ab += v (D+Dᵀ)_cd,  J'_cd += v (D+Dᵀ)_ab            (J = J' + J'ᵀ),
+///   K'_ac += v D_bd, K'_bc += v D_ad, K'_ad += v D_bc, K'_bd += v D_ac,
+///   K''   the same with Dᵀ                                   (K = K' + K''ᵀ).
+/// Every function quartet of the block is used, also the mirror images in
+/// blocks with coinciding shells; the weight f accounts for them.
+#[allow(clippy::too_many_arguments)]
+fn scatter_block(
+    n: usize,
+    blocks: [(usize, usize); 4],
+    f: f64,
+    blk: &[f64],
+    dv: &DensityViews,
+    jm: &mut [f64],
+    km: Option<&mut Vec<f64>>,
+    kt: Option<&mut Vec<f64>>,
+) {
+    let [(oa, na), (ob, nb), (oc, nc), (od, nd)] = blocks;
+    let ds = &dv.ds;
+    // J
+    for a in 0..na {
+        for b in 0..nb {
+            let (ga, gb) = (oa + a, ob + b);
+            let dsab = f * ds[ga * n + gb];
+            let mut jab = 0.0;
+            for c in 0..nc {
+                let gc = oc + c;
+                let row = &blk[((a * nb + b) * nc + c) * nd..][..nd];
+                let dsr = &ds[gc * n + od..][..nd];
+                let jcd = &mut jm[gc * n + od..][..nd];
+                for x in 0..nd {
+                    jab += row[x] * dsr[x];
+                    jcd[x] += row[x] * dsab;
+                }
+            }
+            jm[ga * n + gb] += f * jab;
+        }
+    }
+    let k_one = |km: &mut [f64], d: &[f64]| {
+        for a in 0..na {
+            for b in 0..nb {
+                let (ga, gb) = (oa + a, ob + b);
+                for c in 0..nc {
+                    let gc = oc + c;
+                    let row = &blk[((a * nb + b) * nc + c) * nd..][..nd];
+                    let dbd = &d[gb * n + od..][..nd];
+                    let dad = &d[ga * n + od..][..nd];
+                    let (mut kac, mut kbc) = (0.0, 0.0);
+                    for x in 0..nd {
+                        kac += row[x] * dbd[x];
+                        kbc += row[x] * dad[x];
+                    }
+                    km[ga * n + gc] += f * kac;
+                    km[gb * n + gc] += f * kbc;
+                    let dbc = f * d[gb * n + gc];
+                    let kad = &mut km[ga * n + od..][..nd];
+                    for x in 0..nd {
+                        kad[x] += row[x] * dbc;
+                    }
+                    let dac = f * d[ga * n + gc];
+                    let kbd = &mut km[gb * n + od..][..nd];
+                    for x in 0..nd {
+                        kbd[x] += row[x] * dac;
+                    }
+                }
+            }
+        }
+    };
+    if let Some(km) = km {
+        k_one(km, &dv.d);
+    }
+    if let Some(kt) = kt {
+        k_one(kt, &dv.dt);
+    }
 }
 
 /// All n⁴ ERIs, row-major `[i][j][k][l]` (small bases only: tests, debugging).
@@ -1129,11 +1620,11 @@ fn raw_bra_derivative_quartet(
     out: &mut [Vec<f64>; 3],
 ) {
     use super::cart::component_index;
-    raw_quartet(up, ket, w);
+    raw_quartet_any(up, ket, w);
     std::mem::swap(buf_up, &mut w.raw);
     let has_down = down.is_some();
     if let Some(dn) = down {
-        raw_quartet(dn, ket, w);
+        raw_quartet_any(dn, ket, w);
     }
     let ca = components_table(la);
     let ncb = components_table(lb).len();
