@@ -79,7 +79,7 @@ pub fn execute(args: &SpectrumArgs) -> i32 {
     }
     let lo = args.from_ev.unwrap_or_else(|| transitions.iter().map(|t| t.1).fold(f64::INFINITY, f64::min) - 1.0).max(1e-3);
     let hi = args.to_ev.unwrap_or_else(|| transitions.iter().map(|t| t.1).fold(f64::NEG_INFINITY, f64::max) + 1.0);
-    if !(lo < hi) {
+    if lo.partial_cmp(&hi) != Some(std::cmp::Ordering::Less) {
         eprintln!("error: --from-ev {lo} must be below --to-ev {hi}");
         return exit::INPUT;
     }

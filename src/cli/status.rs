@@ -53,7 +53,7 @@ pub fn execute(args: &StatusArgs) -> i32 {
         return exit::INPUT;
     }
     let jobs_text = std::fs::read_to_string(args.dir.join("slurm/jobs.jsonl")).unwrap_or_default();
-    let last_job: Option<serde_json::Value> = jobs_text.lines().filter_map(|l| serde_json::from_str(l).ok()).last();
+    let last_job: Option<serde_json::Value> = jobs_text.lines().rev().find_map(|l| serde_json::from_str(l).ok());
     let n = last_job.as_ref().and_then(|j| j["tasks"].as_u64()).map(|t| t as usize).or_else(|| slices(&args.dir)).unwrap_or(1);
     let array = last_job.as_ref().and_then(|j| j["array"].as_str().map(str::to_string));
     let queue = array.as_deref().and_then(squeue).unwrap_or_default();
