@@ -9,6 +9,9 @@
 //! identities: ROKS of a closed shell = RKS; "hf" through the Kohn–Sham path
 //! = Hartree–Fock.
 
+mod common;
+use common::qc::*;
+
 use flipswarm::chem::{Element, Molecule};
 use flipswarm::electronic::qc::basis::BasisSet;
 use flipswarm::electronic::qc::dft::grid::GridSpec;
@@ -17,22 +20,7 @@ use flipswarm::electronic::qc::integrals::JkOptions;
 use flipswarm::electronic::qc::scf::{self, hartree_fock, Electrons, Guess, Reference, ScfOptions};
 use serde_json::Value;
 
-fn fixture(name: &str) -> Value {
-    let path = format!("{}/tests/data/qc/{name}", env!("CARGO_MANIFEST_DIR"));
-    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path}: {e}"));
-    serde_json::from_str(&text).unwrap()
-}
 
-fn molecule_from(atoms: &Value) -> Molecule {
-    let mut els = Vec::new();
-    let mut pos = Vec::new();
-    for a in atoms.as_array().unwrap() {
-        els.push(Element::from_atomic_number(a["z"].as_u64().unwrap()).unwrap());
-        let p = a["position_bohr"].as_array().unwrap();
-        pos.push([p[0].as_f64().unwrap(), p[1].as_f64().unwrap(), p[2].as_f64().unwrap()]);
-    }
-    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
-}
 
 fn reference_of(method: &str) -> Reference {
     match method {

@@ -10,6 +10,9 @@
 //!   R = 1.4 bohr, E = −1.1167 Eh (printed to four decimals).
 //! * Exact identities (UHF = RHF for a closed shell, <S²> = s(s+1) for ROHF).
 
+mod common;
+use common::qc::*;
+
 use flipswarm::chem::{Element, Molecule};
 use flipswarm::electronic::qc::basis::BasisSet;
 use flipswarm::electronic::qc::integrals::JkOptions;
@@ -18,31 +21,8 @@ use flipswarm::electronic::qc::scf::{
 };
 use serde_json::Value;
 
-fn fixture(name: &str) -> Value {
-    let path = format!("{}/tests/data/qc/{name}", env!("CARGO_MANIFEST_DIR"));
-    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path}: {e}"));
-    serde_json::from_str(&text).unwrap()
-}
 
-fn basis_name(stem: &str) -> &'static str {
-    match stem {
-        "sto-3g" => "STO-3G",
-        "6-31g_st" => "6-31G*",
-        "cc-pvdz" => "cc-pVDZ",
-        other => panic!("unknown stem {other}"),
-    }
-}
 
-fn molecule_from(atoms: &Value) -> Molecule {
-    let mut els = Vec::new();
-    let mut pos = Vec::new();
-    for a in atoms.as_array().unwrap() {
-        els.push(Element::from_atomic_number(a["z"].as_u64().unwrap()).unwrap());
-        let p = a["position_bohr"].as_array().unwrap();
-        pos.push([p[0].as_f64().unwrap(), p[1].as_f64().unwrap(), p[2].as_f64().unwrap()]);
-    }
-    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
-}
 
 fn reference_of(method: &str) -> Reference {
     match method {
