@@ -46,6 +46,7 @@ fn main() {
         Command::Export(args) => cli::export::execute(args),
         Command::Analyze(args) => cli::analyze::execute(args),
         Command::SinglePoint(args) => cli::single_point::execute(args),
+        Command::Optimize(args) => cli::optimize::execute(args),
         Command::Modes(args) => cli::modes::execute(args),
         Command::Sample(args) => cli::sample::execute(args),
         Command::Spectrum(args) => cli::spectrum::execute(args),

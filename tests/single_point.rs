@@ -163,3 +163,29 @@ fn excited_states_from_the_command_line() {
     assert_eq!(code, 0, "{err}");
     assert!(out.contains("SF-TDA") && out.contains("<S^2>"), "{out}");
 }
+
+// `flipswarm optimize`: the reported largest gradient component of the
+// RHF/STO-3G water minimum is below the documented threshold 4.5e-4 Eh/bohr
+// (common practice; tests/gradients.rs compares optimised geometries with
+// PySCF 2.14.0 fixtures), and a step limit that is too small exits with
+// code 4 and keeps the last accepted geometry.
+#[test]
+fn optimize_from_the_command_line() {
+    let fx = fixture();
+    let dir = scratch("opt");
+    let xyz = write_xyz(&dir, find(&fx, "h2o", "rhf", None));
+    let x = xyz.to_str().unwrap();
+    let out_xyz = dir.join("opt.xyz");
+    let (code, out, err) = run(&["optimize", x, "-o", out_xyz.to_str().unwrap(), "--method", "rhf", "--basis", "sto-3g"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("converged in"), "{out}");
+    let g: f64 = out.split("max |gradient| = ").nth(1).unwrap().split_whitespace().next().unwrap().parse().unwrap();
+    assert!(g < 4.5e-4, "{out}");
+    let text = std::fs::read_to_string(&out_xyz).unwrap();
+    assert_eq!(text.lines().next().unwrap().trim(), "3");
+    let stuck = dir.join("stuck.xyz");
+    let (code, _, err) = run(&["optimize", x, "-o", stuck.to_str().unwrap(), "--method", "rhf", "--basis", "sto-3g", "--max-steps", "1"]);
+    assert_eq!(code, 4, "{err}");
+    assert!(err.contains("not converged after 1 steps") && err.contains("last accepted geometry"), "{err}");
+    assert!(std::fs::read_to_string(&stuck).unwrap().contains("not converged"));
+}

@@ -5,6 +5,7 @@ pub mod analyze;
 pub mod export;
 pub mod inspect;
 pub mod merge;
+pub mod optimize;
 pub mod modes;
 pub mod resume;
 pub mod run;
@@ -79,6 +80,9 @@ pub enum Command {
     /// total energy and its parts, orbital energies with occupations, <S^2>,
     /// SCF iterations.
     SinglePoint(single_point::SinglePointArgs),
+    /// Geometry optimisation (quasi-Newton, Cartesian) of the SCF ground
+    /// state or of an MRSF-TDDFT state; writes the optimised XYZ.
+    Optimize(optimize::OptimizeArgs),
     /// Harmonic normal modes of a model's ground state, or of a molecule
     /// from a Hessian file, written to a normal-modes file for `sample`.
     Modes(modes::ModesArgs),

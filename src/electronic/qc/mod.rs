@@ -1,5 +1,5 @@
-//! The built-in quantum chemistry (being written): Gaussian basis sets and
-//! integrals so far; ROKS and spin-flip response will build on them.
+//! The built-in quantum chemistry: Gaussian basis sets and integrals, SCF and
+//! DFT, the spin-flip response, gradients and geometry optimisation.
 //!
 //! * [`basis`]: basis-set data (built-in files from the basis-set-exchange
 //!   package, or a user file in the same JSON schema), shells on a molecule,
@@ -8,6 +8,11 @@
 //! * [`integrals`]: overlap, kinetic, nuclear attraction, multipoles, mixed
 //!   overlaps between geometries, ERIs (Schwarz screening, 8-fold packed
 //!   store), J/K builds (in-core or direct, rayon), first nuclear derivatives.
+//!
+//! * [`scf`], [`dft`]: RHF/UHF/ROHF and RKS/UKS/ROKS (libxc functionals,
+//!   molecular grids); [`response`]: SF-TDA and MRSF-TDDFT excited states;
+//!   [`gradient`]: analytic SCF gradients and numerical state gradients;
+//!   [`optimize`]: BFGS geometry optimisation.
 //!
 //! Everything is in atomic units (bohr, hartree).
 //!

@@ -1,0 +1,266 @@
+//! `flipswarm optimize`: minimise the energy of the SCF ground state (analytic
+//! gradients) or of an MRSF-TDDFT state (numerical gradients) in Cartesian
+//! coordinates, and write the optimised geometry as XYZ (Å).
+//!
+//! Convergence criteria (common practice, see
+//! [`crate::electronic::qc::optimize`]): max/RMS gradient 4.5e−4/3.0e−4
+//! Eh/bohr and max/RMS step 1.8e−3/1.2e−3 bohr, all multiplied by
+//! `--criteria-scale`. When the step limit is reached, the last geometry is
+//! still written (comment line "not converged") and the exit code is the
+//! runtime-failure code. Progress: one line per step on stderr (tracing, info
+//! level).
+
+use std::path::PathBuf;
+
+use clap::Args;
+
+use super::exit;
+use super::single_point::{HarmonicsArg, Method};
+use crate::chem::xyz::{read_single_xyz_file, xyz_string};
+use crate::chem::Molecule;
+use crate::electronic::qc::basis::{BasisSet, BasisSetData, Harmonics};
+use crate::electronic::qc::dft::grid::GridSpec;
+use crate::electronic::qc::gradient::numerical::{ScfEnergy, Target, DEFAULT_STEP};
+use crate::electronic::qc::gradient::scf::Potential;
+use crate::electronic::qc::integrals::JkOptions;
+use crate::electronic::qc::optimize::{minimize_energy, GradientKind, OptimizeError, OptimizeOptions};
+use crate::electronic::qc::response::davidson::DavidsonOptions;
+use crate::electronic::qc::scf::{self, Electrons, Reference, ScfOptions};
+
+/// Arguments of `flipswarm optimize`.
+#[derive(Debug, Args)]
+pub struct OptimizeArgs {
+    /// Start geometry: an XYZ file (Å), first frame.
+    pub geometry: PathBuf,
+    /// Where to write the optimised geometry (XYZ, Å).
+    #[arg(short = 'o', long = "output")]
+    pub output: PathBuf,
+    /// SCF method.
+    #[arg(long, value_enum, default_value = "roks")]
+    pub method: Method,
+    /// Exchange–correlation functional for rks/uks/roks (as single-point).
+    #[arg(long, default_value = "bhhlyp")]
+    pub functional: String,
+    /// Basis set: built-in name or basis-set-exchange JSON file.
+    #[arg(long, default_value = "6-31G*")]
+    pub basis: String,
+    /// Override the basis family's Cartesian/spherical default.
+    #[arg(long, value_enum)]
+    pub harmonics: Option<HarmonicsArg>,
+    /// Molecular charge.
+    #[arg(long, default_value_t = 0, allow_negative_numbers = true)]
+    pub charge: i64,
+    /// Spin multiplicity 2S+1 (default: 3 for roks/rohf, otherwise 1 or 2).
+    #[arg(long)]
+    pub multiplicity: Option<usize>,
+    /// Integration grid level for Kohn–Sham.
+    #[arg(long, default_value = "fine")]
+    pub grid: String,
+    /// Optimise this MRSF-TDDFT state (S0, S1, …, T1, …) of the triplet
+    /// ROKS/ROHF reference instead of the SCF energy (numerical gradients).
+    #[arg(long)]
+    pub state: Option<String>,
+    /// MRSF singlet roots to solve for with --state.
+    #[arg(long, default_value_t = 3)]
+    pub singlets: usize,
+    /// MRSF triplet roots to solve for with --state.
+    #[arg(long, default_value_t = 1)]
+    pub triplets: usize,
+    /// Use central-difference gradients also for the SCF ground state.
+    #[arg(long)]
+    pub numerical: bool,
+    /// Central-difference step (bohr).
+    #[arg(long, default_value_t = DEFAULT_STEP)]
+    pub step: f64,
+    /// Energy-and-gradient evaluations allowed.
+    #[arg(long, default_value_t = 100)]
+    pub max_steps: usize,
+    /// Multiply all four convergence thresholds by this factor.
+    #[arg(long, default_value_t = 1.0)]
+    pub criteria_scale: f64,
+    /// Worker threads (0 = all cores).
+    #[arg(long, default_value_t = 0)]
+    pub threads: usize,
+}
+
+fn reference_of(m: Method) -> (Reference, bool, &'static str) {
+    match m {
+        Method::Rhf => (Reference::Restricted, false, "RHF"),
+        Method::Uhf => (Reference::Unrestricted, false, "UHF"),
+        Method::Rohf => (Reference::RestrictedOpen, false, "ROHF"),
+        Method::Rks => (Reference::Restricted, true, "RKS"),
+        Method::Uks => (Reference::Unrestricted, true, "UKS"),
+        Method::Roks => (Reference::RestrictedOpen, true, "ROKS"),
+    }
+}
+
+fn write_geometry(path: &std::path::Path, mol: &Molecule, positions: &[[f64; 3]], comment: &str) -> Result<(), String> {
+    let mut m = mol.clone();
+    for (a, p) in m.atoms.iter_mut().zip(positions) {
+        a.position_bohr = *p;
+    }
+    let text = xyz_string(&m, comment).map_err(|e| e.to_string())?;
+    std::fs::write(path, text).map_err(|e| format!("{}: {e}", path.display()))
+}
+
+/// Execute; returns the exit code.
+pub fn execute(args: &OptimizeArgs) -> i32 {
+    if args.threads > 0 {
+        let _ = rayon::ThreadPoolBuilder::new().num_threads(args.threads).build_global();
+    }
+    let frame = match read_single_xyz_file(&args.geometry) {
+        Ok(f) => f,
+        Err(e) => {
+            eprintln!("error: {e}");
+            return exit::INPUT;
+        }
+    };
+    let mol = frame.molecule;
+    let data = if std::path::Path::new(&args.basis).is_file() {
+        BasisSetData::from_file(std::path::Path::new(&args.basis), Harmonics::Spherical)
+    } else {
+        BasisSetData::builtin(&args.basis)
+    };
+    let data = match data {
+        Ok(d) => d,
+        Err(e) => {
+            eprintln!("error: --basis: {e}");
+            return exit::INPUT;
+        }
+    };
+    let harmonics = args.harmonics.map(|h| match h {
+        HarmonicsArg::Cartesian => Harmonics::Cartesian,
+        HarmonicsArg::Spherical => Harmonics::Spherical,
+    });
+    let basis = match BasisSet::new(&mol, &data, harmonics) {
+        Ok(b) => b,
+        Err(e) => {
+            eprintln!("error: {}: {e}", args.geometry.display());
+            return exit::INPUT;
+        }
+    };
+    let (reference, is_ks, label) = reference_of(args.method);
+    let z = scf::nuclear_charge(&basis);
+    let multiplicity = args.multiplicity.unwrap_or(match reference {
+        Reference::RestrictedOpen => 3,
+        _ => 1 + ((z as i64 - args.charge).rem_euclid(2)) as usize,
+    });
+    let electrons = match Electrons::from_charge_multiplicity(z, args.charge, multiplicity) {
+        Ok(e) => e,
+        Err(e) => {
+            eprintln!("error: --charge {} --multiplicity {multiplicity}: {e}", args.charge);
+            return exit::INPUT;
+        }
+    };
+    if reference == Reference::Restricted && electrons.alpha != electrons.beta {
+        eprintln!("error: --method {} is closed-shell but multiplicity {multiplicity} has unpaired electrons", label.to_lowercase());
+        return exit::INPUT;
+    }
+    let target = match &args.state {
+        None => Target::Ground,
+        Some(s) => {
+            if reference != Reference::RestrictedOpen || multiplicity != 3 {
+                eprintln!("error: --state needs the high-spin triplet reference: --method roks (or rohf) with --multiplicity 3");
+                return exit::INPUT;
+            }
+            Target::Mrsf {
+                label: s.clone(),
+                singlets: args.singlets,
+                triplets: args.triplets,
+            }
+        }
+    };
+    let potential = if is_ks {
+        match GridSpec::level(&args.grid) {
+            Ok(grid) => Potential::KohnSham {
+                functional: args.functional.clone(),
+                grid,
+            },
+            Err(e) => {
+                eprintln!("error: --grid: {e}");
+                return exit::INPUT;
+            }
+        }
+    } else {
+        Potential::HartreeFock
+    };
+    if !(args.step.is_finite() && args.step > 0.0 && args.criteria_scale.is_finite() && args.criteria_scale > 0.0) {
+        eprintln!("error: --step and --criteria-scale must be positive");
+        return exit::INPUT;
+    }
+    let gradient = if args.numerical || target != Target::Ground {
+        GradientKind::Numerical(args.step)
+    } else {
+        GradientKind::Analytic
+    };
+    let calc = ScfEnergy {
+        molecule: mol.clone(),
+        basis: data,
+        harmonics,
+        electrons,
+        reference,
+        potential,
+        scf: ScfOptions::default(),
+        jk: JkOptions::default(),
+        davidson: DavidsonOptions::default(),
+    };
+    let mut calc = calc;
+    if target != Target::Ground {
+        // Response energies are not variational in the orbitals: converge the
+        // reference and the roots further (see gradient::numerical).
+        calc.scf.gradient_tolerance = 1e-10;
+        calc.scf.energy_tolerance = 1e-12;
+        calc.davidson.residual_tolerance = 1e-8;
+        calc.davidson.energy_tolerance = 1e-12;
+    }
+    let opts = OptimizeOptions {
+        max_steps: args.max_steps,
+        ..OptimizeOptions::default()
+    }
+    .scaled(args.criteria_scale);
+    let start: Vec<[f64; 3]> = mol.atoms.iter().map(|a| a.position_bohr).collect();
+    let what = match &args.state {
+        Some(s) => format!("MRSF {s} of {label}"),
+        None => label.to_string(),
+    };
+    println!(
+        "{}: optimising {what} ({} basis, {} gradients)",
+        args.geometry.display(),
+        basis.name,
+        if gradient == GradientKind::Analytic { "analytic" } else { "numerical" }
+    );
+    let t = std::time::Instant::now();
+    match minimize_energy(&calc, &start, &target, gradient, &opts) {
+        Ok(r) => {
+            let comment = format!("{what} minimum, E = {:.10} Eh", r.energy);
+            if let Err(e) = write_geometry(&args.output, &mol, &r.positions, &comment) {
+                eprintln!("error: {e}");
+                return exit::RUNTIME;
+            }
+            println!(
+                "converged in {} steps ({:.1} s): E = {:.10} Eh, max |gradient| = {:.2e} Eh/bohr; written to {}",
+                r.history.len(),
+                t.elapsed().as_secs_f64(),
+                r.energy,
+                crate::electronic::qc::gradient::max_component(&r.gradient),
+                args.output.display()
+            );
+            exit::OK
+        }
+        Err(e) => {
+            eprintln!("error: {}: {e}", args.geometry.display());
+            let first_failed = matches!(e, OptimizeError::Evaluation { step: 1, .. });
+            if let (Some(last), false) = (e.last_positions(), first_failed) {
+                let comment = format!("{what}: not converged (last accepted geometry)");
+                match write_geometry(&args.output, &mol, last, &comment) {
+                    Ok(()) => eprintln!("the last accepted geometry was written to {}", args.output.display()),
+                    Err(w) => eprintln!("error: {w}"),
+                }
+            }
+            match e {
+                OptimizeError::Options(_) => exit::INPUT,
+                _ => exit::RUNTIME,
+            }
+        }
+    }
+}
