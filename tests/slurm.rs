@@ -137,9 +137,11 @@ fn read_all(part: &Path) -> Vec<flipswarm::ensemble::h5::TrajectoryData> {
     r.trajectory_indices().into_iter().map(|i| r.read(i).unwrap()).collect()
 }
 
-// End to end on a real single-node Slurm: an array of 4 tasks whose time
-// limit forces signal → checkpoint → requeue → resume, a dependent merge,
-// and the merged ensemble bit-for-bit equal to an uninterrupted local run.
+// End to end on a real single-node Slurm: an array of 4 tasks with a short
+// time limit and a pre-timeout signal (plus the same signal delivered once
+// per task with scancel, so the path runs on fast machines too) →
+// checkpoint → requeue → resume, a dependent merge, and the merged ensemble
+// bit-for-bit equal to an uninterrupted local run.
 #[test]
 fn job_array_with_time_limits_matches_a_local_run() {
     let d = scratch("e2e");
@@ -170,22 +172,35 @@ fn job_array_with_time_limits_matches_a_local_run() {
     assert!(out.contains("submitted array job"), "{out}");
     let run = d.join("cluster");
     let deadline = Instant::now() + Duration::from_secs(900);
+    let mut signalled: Vec<String> = Vec::new();
     loop {
-        // A requeued task waits for the scheduler's requeue delay (about two
-        // minutes); the test moves its start time to now to stay short.
-        let q = Command::new("squeue").args(["-h", "-r", "-o", "%i %T %r"]).env("SLURM_CONF", conf).output().unwrap();
+        let q = Command::new("squeue").args(["-h", "-r", "-o", "%i %T %r %M"]).env("SLURM_CONF", conf).output().unwrap();
         let q = String::from_utf8_lossy(&q.stdout).to_string();
         for line in q.lines() {
             let f: Vec<&str> = line.split_whitespace().collect();
+            // A requeued task waits for the scheduler's requeue delay (about
+            // two minutes); the test moves its start time to now to stay short.
             if f.len() >= 3 && f[1] == "PENDING" && f[2] == "BeginTime" {
                 let _ = Command::new("scontrol").args(["update", &format!("JobId={}", f[0]), "StartTime=now"]).env("SLURM_CONF", conf).output();
+            }
+            // Slurm checks signal times on a coarse interval, so on a fast
+            // machine a slice may end before its pre-timeout signal. To
+            // exercise the path on every machine, each task also gets the
+            // same signal once, 5 s into its first run, the way Slurm
+            // delivers a job signal at once (`scancel --batch --signal`).
+            if f.len() >= 4 && f[1] == "RUNNING" && f[0].contains('_') && !signalled.iter().any(|s| s == f[0]) {
+                let secs: u64 = f[3].rsplit(':').enumerate().map(|(i, x)| x.parse::<u64>().unwrap_or(0) * 60u64.pow(i as u32)).sum();
+                if secs >= 5 {
+                    let _ = Command::new("scancel").args(["--batch", "--signal=USR1", f[0]]).env("SLURM_CONF", conf).output();
+                    signalled.push(f[0].to_string());
+                }
             }
         }
         if run.join("merged.h5").exists() && q.trim().is_empty() {
             break;
         }
         assert!(Instant::now() < deadline, "the array did not finish in 15 minutes; queue:\n{q}");
-        std::thread::sleep(Duration::from_secs(2));
+        std::thread::sleep(Duration::from_secs(1));
     }
     // Every task was interrupted and requeued at least once in total.
     let mut restarts = 0;
@@ -195,7 +210,7 @@ fn job_array_with_time_limits_matches_a_local_run() {
         assert!(log.contains("ended with code 0"), "task {k} did not end cleanly:\n{log}");
     }
     eprintln!("{restarts} signal → checkpoint → requeue → resume cycles");
-    assert!(restarts >= 1, "no task was stopped by its time limit; the test did not exercise the requeue path");
+    assert!(restarts >= 1, "no task was stopped and requeued; the test did not exercise the requeue path");
     let (c, out, err) = flipswarm(&d, &["status", "cluster"], &[("SLURM_CONF", conf)]);
     assert_eq!(c, 0, "{err}");
     assert!(out.contains("800 of 800 trajectories ended"), "{out}");
