@@ -10,6 +10,8 @@
 //! the nuclear-ensemble spectrum (Theor. Chem. Acc. 131, 1237 (2012), from
 //! memory) with the prefactor πe²ħ/(2 m_e c ε₀) = 1.0976 eV·Å².
 
+mod common;
+
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
@@ -20,10 +22,7 @@ const BIN: &str = env!("CARGO_BIN_EXE_flipswarm");
 const EV: f64 = 27.211_386_245_988;
 
 fn scratch(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("flipswarm-ic-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
+    common::scratch("ic", name)
 }
 
 fn run_in(dir: &Path, args: &[&str]) -> (i32, String, String) {

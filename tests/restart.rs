@@ -5,6 +5,8 @@
 //! interruption; "identical" means every dataset of every trajectory equal
 //! bit for bit (the design requirement of exact restart; no outside source).
 
+mod common;
+
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
@@ -13,7 +15,7 @@ use std::time::{Duration, Instant};
 
 use flipswarm::config::load_str;
 use flipswarm::electronic::{Backend, BackendError, BackendInfo, Request, Results, Snapshot};
-use flipswarm::ensemble::h5::{PartReader, Phase, TrajectoryData, WriterState};
+use flipswarm::ensemble::h5::{PartReader, Phase, WriterState};
 use flipswarm::ensemble::runner;
 use flipswarm::swarm;
 use rand::{Rng, SeedableRng};
@@ -108,14 +110,10 @@ fn run_to_end(args: &[&str]) {
     assert_eq!(code, Some(0), "flipswarm {args:?} failed: {err}");
 }
 
-fn read_all(part: &Path) -> Vec<TrajectoryData> {
-    let r = PartReader::open(part).unwrap();
-    r.trajectory_indices().into_iter().map(|i| r.read(i).unwrap()).collect()
-}
 
 /// Every dataset of every trajectory equal, bit for bit.
 fn assert_identical(got: &Path, want: &Path) {
-    let (g, w) = (read_all(got), read_all(want));
+    let (g, w) = (common::read_all(got), common::read_all(want));
     assert_eq!(g.len(), w.len(), "trajectory count");
     for (a, b) in g.iter().zip(&w) {
         assert_eq!(a.header, b.header, "trajectory {} header", b.header.index);

@@ -1,16 +1,15 @@
 //! A run saved to a directory reports exactly what the same run reports in
 //! memory (the file is the result), and the run directory is self-contained.
 
+mod common;
+
 use std::path::PathBuf;
 use std::process::Command;
 
 const BIN: &str = env!("CARGO_BIN_EXE_flipswarm");
 
 fn scratch(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("flipswarm-rundir-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
+    common::scratch("rundir", name)
 }
 
 fn json(args: &[&str]) -> serde_json::Value {

@@ -4,6 +4,8 @@
 //! `scripts/reference/scf_energies.py`); the error cases check our own
 //! messages and exit codes (documented in the README).
 
+mod common;
+
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
@@ -19,10 +21,7 @@ fn fixture() -> Value {
 }
 
 fn scratch(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("flipswarm-sp-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
+    common::scratch("sp", name)
 }
 
 fn write_xyz(dir: &Path, case: &Value) -> PathBuf {

@@ -9,6 +9,8 @@
 //! `scripts/lib/slurm-local.sh` (Debian's slurmctld, slurmd, munge; root
 //! needed). Where that is impossible it prints a SKIPPED line saying why.
 
+mod common;
+
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::{Duration, Instant};
@@ -19,10 +21,7 @@ const BIN: &str = env!("CARGO_BIN_EXE_flipswarm");
 const ROOT: &str = env!("CARGO_MANIFEST_DIR");
 
 fn scratch(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("flipswarm-slurm-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
+    common::scratch("slurm", name)
 }
 
 fn ensemble(dir: &Path, trajectories: usize, duration_fs: f64) -> PathBuf {
@@ -132,10 +131,6 @@ impl Drop for LocalSlurm {
     }
 }
 
-fn read_all(part: &Path) -> Vec<flipswarm::ensemble::h5::TrajectoryData> {
-    let r = PartReader::open(part).unwrap();
-    r.trajectory_indices().into_iter().map(|i| r.read(i).unwrap()).collect()
-}
 
 // End to end on a real single-node Slurm: an array of 4 tasks with a short
 // time limit and a pre-timeout signal (plus the same signal delivered once
@@ -215,8 +210,8 @@ fn job_array_with_time_limits_matches_a_local_run() {
     assert_eq!(c, 0, "{err}");
     assert!(out.contains("800 of 800 trajectories ended"), "{out}");
     // Bit for bit against the local run.
-    let got = read_all(&run.join("merged.h5"));
-    let want = read_all(&d.join("local/part-0000-of-0001.h5"));
+    let got = common::read_all(&run.join("merged.h5"));
+    let want = common::read_all(&d.join("local/part-0000-of-0001.h5"));
     assert_eq!(got.len(), want.len());
     for (a, b) in got.iter().zip(&want) {
         assert_eq!(a.header, b.header, "trajectory {}", b.header.index);

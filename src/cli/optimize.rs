@@ -15,17 +15,16 @@ use std::path::PathBuf;
 use clap::Args;
 
 use super::exit;
-use super::single_point::{HarmonicsArg, Method};
-use crate::chem::xyz::{read_single_xyz_file, xyz_string};
+use super::single_point::{molecular_input, HarmonicsArg, Method, MolecularInput};
+use crate::chem::xyz::xyz_string;
 use crate::chem::Molecule;
-use crate::electronic::qc::basis::{BasisSet, BasisSetData, Harmonics};
 use crate::electronic::qc::dft::grid::GridSpec;
 use crate::electronic::qc::gradient::numerical::{ScfEnergy, Target, DEFAULT_STEP};
 use crate::electronic::qc::gradient::scf::Potential;
 use crate::electronic::qc::integrals::JkOptions;
 use crate::electronic::qc::optimize::{minimize_energy, GradientKind, OptimizeError, OptimizeOptions};
 use crate::electronic::qc::response::davidson::DavidsonOptions;
-use crate::electronic::qc::scf::{self, Electrons, Reference, ScfOptions};
+use crate::electronic::qc::scf::{Reference, ScfOptions};
 
 /// Arguments of `flipswarm optimize`.
 #[derive(Debug, Args)]
@@ -83,17 +82,6 @@ pub struct OptimizeArgs {
     pub threads: usize,
 }
 
-fn reference_of(m: Method) -> (Reference, bool, &'static str) {
-    match m {
-        Method::Rhf => (Reference::Restricted, false, "RHF"),
-        Method::Uhf => (Reference::Unrestricted, false, "UHF"),
-        Method::Rohf => (Reference::RestrictedOpen, false, "ROHF"),
-        Method::Rks => (Reference::Restricted, true, "RKS"),
-        Method::Uks => (Reference::Unrestricted, true, "UKS"),
-        Method::Roks => (Reference::RestrictedOpen, true, "ROKS"),
-    }
-}
-
 fn write_geometry(path: &std::path::Path, mol: &Molecule, positions: &[[f64; 3]], comment: &str) -> Result<(), String> {
     let mut m = mol.clone();
     for (a, p) in m.atoms.iter_mut().zip(positions) {
@@ -108,54 +96,15 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
     if args.threads > 0 {
         let _ = rayon::ThreadPoolBuilder::new().num_threads(args.threads).build_global();
     }
-    let frame = match read_single_xyz_file(&args.geometry) {
-        Ok(f) => f,
+    let input = match molecular_input(&args.geometry, &args.basis, args.harmonics, args.charge, args.multiplicity, args.method) {
+        Ok(i) => i,
         Err(e) => {
             eprintln!("error: {e}");
             return exit::INPUT;
         }
     };
-    let mol = frame.molecule;
-    let data = if std::path::Path::new(&args.basis).is_file() {
-        BasisSetData::from_file(std::path::Path::new(&args.basis), Harmonics::Spherical)
-    } else {
-        BasisSetData::builtin(&args.basis)
-    };
-    let data = match data {
-        Ok(d) => d,
-        Err(e) => {
-            eprintln!("error: --basis: {e}");
-            return exit::INPUT;
-        }
-    };
-    let harmonics = args.harmonics.map(|h| match h {
-        HarmonicsArg::Cartesian => Harmonics::Cartesian,
-        HarmonicsArg::Spherical => Harmonics::Spherical,
-    });
-    let basis = match BasisSet::new(&mol, &data, harmonics) {
-        Ok(b) => b,
-        Err(e) => {
-            eprintln!("error: {}: {e}", args.geometry.display());
-            return exit::INPUT;
-        }
-    };
-    let (reference, is_ks, label) = reference_of(args.method);
-    let z = scf::nuclear_charge(&basis);
-    let multiplicity = args.multiplicity.unwrap_or(match reference {
-        Reference::RestrictedOpen => 3,
-        _ => 1 + ((z as i64 - args.charge).rem_euclid(2)) as usize,
-    });
-    let electrons = match Electrons::from_charge_multiplicity(z, args.charge, multiplicity) {
-        Ok(e) => e,
-        Err(e) => {
-            eprintln!("error: --charge {} --multiplicity {multiplicity}: {e}", args.charge);
-            return exit::INPUT;
-        }
-    };
-    if reference == Reference::Restricted && electrons.alpha != electrons.beta {
-        eprintln!("error: --method {} is closed-shell but multiplicity {multiplicity} has unpaired electrons", label.to_lowercase());
-        return exit::INPUT;
-    }
+    let MolecularInput { mol, data, harmonics, basis, electrons, multiplicity } = input;
+    let (reference, is_ks, label) = (args.method.reference(), args.method.is_ks(), args.method.label());
     let target = match &args.state {
         None => Target::Ground,
         Some(s) => {

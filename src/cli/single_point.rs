@@ -32,17 +32,17 @@ pub enum Method {
 }
 
 impl Method {
-    fn reference(self) -> Reference {
+    pub(crate) fn reference(self) -> Reference {
         match self {
             Method::Rhf | Method::Rks => Reference::Restricted,
             Method::Uhf | Method::Uks => Reference::Unrestricted,
             Method::Rohf | Method::Roks => Reference::RestrictedOpen,
         }
     }
-    fn is_ks(self) -> bool {
+    pub(crate) fn is_ks(self) -> bool {
         matches!(self, Method::Rks | Method::Uks | Method::Roks)
     }
-    fn label(self) -> &'static str {
+    pub(crate) fn label(self) -> &'static str {
         match self {
             Method::Rhf => "RHF",
             Method::Uhf => "UHF",
@@ -145,65 +145,78 @@ pub struct SinglePointArgs {
     pub threads: usize,
 }
 
+/// A molecule with its basis set and electrons, from the options that
+/// `single-point` and `optimize` share.
+pub(crate) struct MolecularInput {
+    /// The geometry (bohr).
+    pub mol: crate::chem::Molecule,
+    /// The basis-set data.
+    pub data: BasisSetData,
+    /// The harmonics override, if any.
+    pub harmonics: Option<Harmonics>,
+    /// The basis placed on the molecule.
+    pub basis: BasisSet,
+    /// α and β electrons.
+    pub electrons: Electrons,
+    /// The spin multiplicity used (given or defaulted).
+    pub multiplicity: usize,
+}
+
+/// Read the geometry and basis and count the electrons; the message names
+/// the option or file that is wrong.
+pub(crate) fn molecular_input(
+    geometry: &std::path::Path,
+    basis_name: &str,
+    harmonics: Option<HarmonicsArg>,
+    charge: i64,
+    multiplicity: Option<usize>,
+    method: Method,
+) -> Result<MolecularInput, String> {
+    let mol = read_single_xyz_file(geometry).map_err(|e| e.to_string())?.molecule;
+    let data = if std::path::Path::new(basis_name).is_file() {
+        BasisSetData::from_file(std::path::Path::new(basis_name), Harmonics::Spherical)
+    } else {
+        BasisSetData::builtin(basis_name)
+    }
+    .map_err(|e| format!("--basis: {e}"))?;
+    let harmonics = harmonics.map(|h| match h {
+        HarmonicsArg::Cartesian => Harmonics::Cartesian,
+        HarmonicsArg::Spherical => Harmonics::Spherical,
+    });
+    let basis = BasisSet::new(&mol, &data, harmonics).map_err(|e| format!("{}: {e}", geometry.display()))?;
+    let z = scf::nuclear_charge(&basis);
+    let multiplicity = multiplicity.unwrap_or(match method {
+        Method::Rohf | Method::Roks => 3,
+        _ => 1 + ((z as i64 - charge).rem_euclid(2)) as usize,
+    });
+    let electrons = Electrons::from_charge_multiplicity(z, charge, multiplicity)
+        .map_err(|e| format!("--charge {charge} --multiplicity {multiplicity}: {e}"))?;
+    if method.reference() == Reference::Restricted && electrons.alpha != electrons.beta {
+        return Err(format!(
+            "--method {} is closed-shell but multiplicity {multiplicity} has unpaired electrons; use {} or {}",
+            method.label().to_lowercase(),
+            if method.is_ks() { "uks" } else { "uhf" },
+            if method.is_ks() { "roks" } else { "rohf" }
+        ));
+    }
+    Ok(MolecularInput { mol, data, harmonics, basis, electrons, multiplicity })
+}
+
 /// Execute; returns the exit code.
 pub fn execute(args: &SinglePointArgs) -> i32 {
     if args.threads > 0 {
         // The global pool may already exist (tests); then keep it.
         let _ = rayon::ThreadPoolBuilder::new().num_threads(args.threads).build_global();
     }
-    let frame = match read_single_xyz_file(&args.geometry) {
-        Ok(f) => f,
+    let input = match molecular_input(&args.geometry, &args.basis, args.harmonics, args.charge, args.multiplicity, args.method) {
+        Ok(i) => i,
         Err(e) => {
             eprintln!("error: {e}");
             return exit::INPUT;
         }
     };
-    let mol = frame.molecule;
-    let data = if std::path::Path::new(&args.basis).is_file() {
-        BasisSetData::from_file(std::path::Path::new(&args.basis), Harmonics::Spherical)
-    } else {
-        BasisSetData::builtin(&args.basis)
-    };
-    let data = match data {
-        Ok(d) => d,
-        Err(e) => {
-            eprintln!("error: --basis: {e}");
-            return exit::INPUT;
-        }
-    };
-    let harmonics = args.harmonics.map(|h| match h {
-        HarmonicsArg::Cartesian => Harmonics::Cartesian,
-        HarmonicsArg::Spherical => Harmonics::Spherical,
-    });
-    let basis = match BasisSet::new(&mol, &data, harmonics) {
-        Ok(b) => b,
-        Err(e) => {
-            eprintln!("error: {}: {e}", args.geometry.display());
-            return exit::INPUT;
-        }
-    };
-    let z = scf::nuclear_charge(&basis);
-    let multiplicity = args.multiplicity.unwrap_or(match args.method {
-        Method::Rohf | Method::Roks => 3,
-        _ => 1 + ((z as i64 - args.charge).rem_euclid(2)) as usize,
-    });
-    let electrons = match Electrons::from_charge_multiplicity(z, args.charge, multiplicity) {
-        Ok(e) => e,
-        Err(e) => {
-            eprintln!("error: --charge {} --multiplicity {multiplicity}: {e}", args.charge);
-            return exit::INPUT;
-        }
-    };
+    let MolecularInput { basis, electrons, multiplicity, .. } = input;
     let reference = args.method.reference();
-    if reference == Reference::Restricted && electrons.alpha != electrons.beta {
-        eprintln!(
-            "error: --method {} is closed-shell but multiplicity {multiplicity} has unpaired electrons; use {} or {}",
-            args.method.label().to_lowercase(),
-            if args.method.is_ks() { "uks" } else { "uhf" },
-            if args.method.is_ks() { "roks" } else { "rohf" }
-        );
-        return exit::INPUT;
-    }
     if args.excited.is_some() {
         if reference != Reference::RestrictedOpen || multiplicity != 3 {
             eprintln!("error: --excited needs the high-spin triplet reference: --method roks (or rohf) with --multiplicity 3");

@@ -23,8 +23,7 @@ use nalgebra::DMatrix;
 /// Core-Hamiltonian density of the lowest `n_occ` orbitals (one spin).
 pub fn core_density(h: &DMatrix<f64>, x: &DMatrix<f64>, n_occ: usize) -> DMatrix<f64> {
     let (_, c) = diagonalize_in(h, x);
-    let co = c.columns(0, n_occ);
-    co * co.transpose()
+    super::occupied_density(&c, n_occ)
 }
 
 /// Fractional aufbau occupations (total `n_elec`, at most 2 per orbital);

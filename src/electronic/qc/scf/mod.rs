@@ -376,7 +376,7 @@ fn symmetrize(m: &mut DMatrix<f64>) {
 }
 
 /// Density of the first `n` columns of `c`.
-fn occupied_density(c: &DMatrix<f64>, n: usize) -> DMatrix<f64> {
+pub(crate) fn occupied_density(c: &DMatrix<f64>, n: usize) -> DMatrix<f64> {
     let co = c.columns(0, n);
     co * co.transpose()
 }
