@@ -89,6 +89,8 @@ impl Couplings {
 pub struct Diagnostics {
     /// Iterations of an iterative solver (SCF), when there is one.
     pub iterations: Option<u32>,
+    /// Iterations of a second iterative solver (the excited-state eigensolver).
+    pub response_iterations: Option<u32>,
     /// Spin expectation values <S²> per state, when meaningful.
     pub spin_squared: Option<Vec<f64>>,
     /// Non-fatal warnings.
