@@ -71,6 +71,7 @@ fn reference_of(model: &ModelSpec) -> Result<Vec<f64>, String> {
         ModelSpec::Harmonic(h) => Ok(h.centres.clone()),
         ModelSpec::Morse(m) => Ok(vec![m.r_eq]),
         ModelSpec::Tully(_) => Err("Tully's scattering models have no bound ground state to analyse".into()),
+        ModelSpec::Molecule { spec, .. } => Ok(spec.reference_coordinates()),
     }
 }
 
@@ -137,7 +138,26 @@ pub fn execute(args: &ModesArgs) -> i32 {
             }
         };
         let model = cfg.model.clone();
+        // Molecules: the closed-shell SCF ground state (same functional,
+        // basis and grid) with analytic gradients — the usual ground state
+        // of Wigner sampling, and 6N gradients instead of 36N² MRSF energies.
+        let closed_shell = match &model {
+            ModelSpec::Molecule { spec, .. } => {
+                let mut calc = spec.calculation.clone();
+                let z = calc.electrons.alpha + calc.electrons.beta;
+                calc.electrons = crate::electronic::qc::scf::Electrons { alpha: z / 2, beta: z / 2 };
+                calc.reference = crate::electronic::qc::scf::Reference::Restricted;
+                Some(calc)
+            }
+            _ => None,
+        };
         let gradient = |q: &[f64]| -> Result<Vec<f64>, String> {
+            if let Some(calc) = &closed_shell {
+                let p: Vec<[f64; 3]> = q.chunks(3).map(|c| [c[0], c[1], c[2]]).collect();
+                let guess = crate::electronic::qc::scf::Guess::AtomicSuperposition;
+                let (_, g) = calc.analytic_gradient(&p, &guess).map_err(|e| e.to_string())?;
+                return Ok(g.into_iter().flatten().collect());
+            }
             let mut b = crate::swarm::make_backend(&model);
             let r = b.compute(q, &Request::gradient_of(0)).map_err(|e| e.to_string())?;
             Ok(r.gradient(0).expect("requested").to_vec())
@@ -159,14 +179,28 @@ pub fn execute(args: &ModesArgs) -> i32 {
             }
         };
         let masses = crate::swarm::make_backend(&cfg.model).info().masses;
-        let modes = match normal_modes_of_coordinates(&hess, &masses) {
+        let modes = match &cfg.model {
+            ModelSpec::Molecule { spec, .. } => {
+                let mol = &spec.calculation.molecule;
+                let positions: Vec<[f64; 3]> = mol.atoms.iter().map(|a| a.position_bohr).collect();
+                normal_modes(&hess, &positions, &mol.masses_me())
+            }
+            _ => normal_modes_of_coordinates(&hess, &masses),
+        };
+        let modes = match modes {
             Ok(m) => m,
             Err(e) => {
                 eprintln!("error: {e}");
                 return exit::RUNTIME;
             }
         };
-        let file = modes_file(&modes, "model", &args.input, masses, q0, gnorm, vec![]);
+        let (coordinates, elements) = match &cfg.model {
+            ModelSpec::Molecule { spec, .. } => {
+                ("cartesian", spec.calculation.molecule.atoms.iter().map(|a| a.element.symbol().to_string()).collect())
+            }
+            _ => ("model", vec![]),
+        };
+        let file = modes_file(&modes, coordinates, &args.input, masses, q0, gnorm, elements);
         (modes, file)
     };
     if file.gradient_norm_hartree_bohr > STATIONARY_GRADIENT {

@@ -19,6 +19,7 @@ pub use reader::Reader;
 
 use crate::dynamics::{DecoherenceScheme, FrustratedHops, HopDirection, Settings};
 use crate::electronic::models::{DiabaticModel, Harmonic, Lvc, Morse, Tully, TullyModel};
+use crate::electronic::qc::backend::MolecularSpec;
 use crate::units;
 
 /// A configuration problem, located as precisely as possible.
@@ -60,13 +61,22 @@ pub struct KeyDoc {
 /// Every key an ensemble file may contain.
 pub const SCHEMA: &[KeyDoc] = &[
     KeyDoc { path: "title", meaning: "free text describing the ensemble", default: "\"\"" },
-    KeyDoc { path: "model.kind", meaning: "back end: tully-1, tully-2, tully-3, lvc, harmonic, morse", default: "required" },
+    KeyDoc { path: "model.kind", meaning: "back end: tully-1, tully-2, tully-3, lvc, harmonic, morse, or molecule (MRSF-TDDFT of a molecule)", default: "required" },
     KeyDoc { path: "model.mass_au", meaning: "nuclear mass of 1D models, electron masses", default: "2000 (tully), 1836.15 (harmonic, morse)" },
     KeyDoc { path: "model.file", meaning: "LVC model file (relative to the ensemble file)", default: "required for lvc" },
     KeyDoc { path: "model.frequency_au", meaning: "harmonic angular frequency, hartree/ħ", default: "required for harmonic" },
     KeyDoc { path: "model.depth_hartree", meaning: "Morse well depth D", default: "required for morse" },
     KeyDoc { path: "model.range_per_bohr", meaning: "Morse range parameter a", default: "required for morse" },
     KeyDoc { path: "model.equilibrium_bohr", meaning: "equilibrium position (harmonic centre, Morse r_e)", default: "0" },
+    KeyDoc { path: "model.geometry", meaning: "molecule: reference geometry, an XYZ file in Å (relative to the ensemble file); trajectories start there at rest with sampling = \"fixed\"", default: "required for molecule" },
+    KeyDoc { path: "model.charge", meaning: "molecule: total charge", default: "0" },
+    KeyDoc { path: "model.basis", meaning: "molecule: basis set (built-in name or basis-set-exchange JSON file)", default: "6-31G*" },
+    KeyDoc { path: "model.functional", meaning: "molecule: functional of the triplet ROKS reference (bhhlyp, b3lyp, pbe0, hf for ROHF, or libxc names)", default: "bhhlyp" },
+    KeyDoc { path: "model.grid", meaning: "molecule: integration grid level (coarse, medium, fine, ultrafine)", default: "medium" },
+    KeyDoc { path: "model.singlets", meaning: "molecule: tracked MRSF singlets S0 … S(n−1) (the states of the dynamics)", default: "3" },
+    KeyDoc { path: "model.gradient_step_bohr", meaning: "molecule: central-difference step of gradients and coupling vectors, bohr", default: "0.001" },
+    KeyDoc { path: "model.scf_tolerance", meaning: "molecule: SCF convergence, largest orbital-gradient element", default: "1e-8" },
+    KeyDoc { path: "model.response_tolerance", meaning: "molecule: MRSF eigensolver residual norm per root", default: "1e-6" },
     KeyDoc { path: "start.sampling", meaning: "fixed (one phase-space point), wigner (Gaussian wavepacket in 1D; harmonic ground state per mode for lvc) or file (from start.initial_conditions)", default: "fixed" },
     KeyDoc { path: "start.initial_conditions", meaning: "initial-conditions file written by `flipswarm sample` (relative to the ensemble file), for sampling = \"file\"", default: "required for sampling = file" },
     KeyDoc { path: "start.position_bohr", meaning: "initial position (1D models)", default: "required for 1D models" },
@@ -104,6 +114,8 @@ pub enum ModelSpec {
     Harmonic(Harmonic),
     /// A Morse oscillator.
     Morse(Morse),
+    /// MRSF-TDDFT singlets of a molecule and the geometry file it came from.
+    Molecule { path: PathBuf, spec: std::sync::Arc<MolecularSpec> },
 }
 
 impl ModelSpec {
@@ -114,6 +126,7 @@ impl ModelSpec {
             ModelSpec::Lvc { model, .. } => model.n_states(),
             ModelSpec::Harmonic(m) => m.n_states(),
             ModelSpec::Morse(m) => m.n_states(),
+            ModelSpec::Molecule { spec, .. } => spec.singlets,
         }
     }
     /// Masses of the coordinates (electron masses).
@@ -124,18 +137,20 @@ impl ModelSpec {
             ModelSpec::Lvc { model, .. } => model.masses(),
             ModelSpec::Harmonic(m) => m.masses(),
             ModelSpec::Morse(m) => m.masses(),
+            ModelSpec::Molecule { spec, .. } => spec.masses(),
         }
     }
     /// Number of coordinates.
     pub fn n_dof(&self) -> usize {
         match self {
             ModelSpec::Lvc { model, .. } => model.n_modes(),
+            ModelSpec::Molecule { spec, .. } => 3 * spec.calculation.molecule.len(),
             _ => 1,
         }
     }
     /// Whether this is a one-dimensional scattering-type model.
     pub fn is_one_dimensional(&self) -> bool {
-        !matches!(self, ModelSpec::Lvc { .. })
+        !matches!(self, ModelSpec::Lvc { .. } | ModelSpec::Molecule { .. })
     }
 }
 
@@ -148,7 +163,7 @@ pub enum Sampling {
     Wavepacket { position: f64, momentum: f64, width: f64 },
     /// Harmonic ground-state Wigner distribution in every LVC mode.
     HarmonicGround,
-    /// LVC at the reference geometry, at rest.
+    /// LVC or a molecule at its reference geometry, at rest.
     Origin,
     /// Initial conditions from a file written by `flipswarm sample`: the
     /// rows used, in order (position, velocity, selected state if any).
@@ -307,10 +322,19 @@ const MODEL_KEYS: &[(&str, &[&str])] = &[
     ("model.depth_hartree", &["morse"]),
     ("model.range_per_bohr", &["morse"]),
     ("model.equilibrium_bohr", &["harmonic", "morse"]),
+    ("model.geometry", &["molecule"]),
+    ("model.charge", &["molecule"]),
+    ("model.basis", &["molecule"]),
+    ("model.functional", &["molecule"]),
+    ("model.grid", &["molecule"]),
+    ("model.singlets", &["molecule"]),
+    ("model.gradient_step_bohr", &["molecule"]),
+    ("model.scf_tolerance", &["molecule"]),
+    ("model.response_tolerance", &["molecule"]),
 ];
 
 fn build_model(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
-    let kinds = ["tully-1", "tully-2", "tully-3", "lvc", "harmonic", "morse"];
+    let kinds = ["tully-1", "tully-2", "tully-3", "lvc", "harmonic", "morse", "molecule"];
     let kind = r.choice("model.kind", &kinds)?.ok_or_else(|| r.error("model.kind", "missing (which model to run)"))?;
     for (key, users) in MODEL_KEYS {
         if r.has(key) && !users.contains(&kind.as_str()) {
@@ -335,6 +359,7 @@ fn build_model(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
             let model = Lvc::from_file(&path).map_err(|e| r.error("model.file", e.to_string()))?;
             ModelSpec::Lvc { path, model }
         }
+        "molecule" => build_molecule(r, base)?,
         "harmonic" => {
             let w = require(r, "model.frequency_au", positive(r, "model.frequency_au")?, "the angular frequency")?;
             ModelSpec::Harmonic(Harmonic { masses: vec![mass.unwrap_or(proton_mass)], omegas: vec![w], centres: vec![centre] })
@@ -345,6 +370,78 @@ fn build_model(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
             ModelSpec::Morse(Morse { mass: mass.unwrap_or(proton_mass), depth, alpha, r_eq: centre })
         }
     })
+}
+
+fn build_molecule(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
+    use crate::electronic::qc::backend::GradientMethod;
+    use crate::electronic::qc::basis::{BasisSet, BasisSetData};
+    use crate::electronic::qc::dft::grid::GridSpec;
+    use crate::electronic::qc::dft::xc::{Functional, Spin};
+    use crate::electronic::qc::gradient::numerical::ScfEnergy;
+    use crate::electronic::qc::gradient::scf::Potential;
+    use crate::electronic::qc::integrals::JkOptions;
+    use crate::electronic::qc::response::davidson::DavidsonOptions;
+    use crate::electronic::qc::scf::{nuclear_charge, Electrons, Reference, ScfOptions};
+    let file = r.string("model.geometry")?.ok_or_else(|| r.error("model.geometry", "missing (the molecule's XYZ file)"))?;
+    let path = base.join(&file);
+    let molecule = crate::chem::xyz::read_single_xyz_file(&path).map_err(|e| r.error("model.geometry", e.to_string()))?.molecule;
+    let basis_name = r.string("model.basis")?.unwrap_or_else(|| "6-31G*".into());
+    let basis_file = base.join(&basis_name);
+    let data = if basis_file.is_file() {
+        BasisSetData::from_file(&basis_file, crate::electronic::qc::basis::Harmonics::Spherical)
+    } else {
+        BasisSetData::builtin(&basis_name)
+    }
+    .map_err(|e| r.error("model.basis", e.to_string()))?;
+    let basis = BasisSet::new(&molecule, &data, None).map_err(|e| r.error("model.basis", format!("{}: {e}", path.display())))?;
+    let charge = match r.f64("model.charge")? {
+        None => 0,
+        Some(q) if q.fract() == 0.0 && q.abs() < 1000.0 => q as i64,
+        Some(q) => return Err(r.error("model.charge", format!("must be a whole number, found {q}"))),
+    };
+    let electrons = Electrons::from_charge_multiplicity(nuclear_charge(&basis), charge, 3)
+        .map_err(|e| r.error("model.charge", format!("the triplet reference of charge {charge}: {e}")))?;
+    let functional = r.string("model.functional")?.unwrap_or_else(|| "bhhlyp".into());
+    let potential = if functional.eq_ignore_ascii_case("hf") {
+        Potential::HartreeFock
+    } else {
+        Functional::preset_or_libxc(&functional, Spin::Polarized).map_err(|e| r.error("model.functional", e.to_string()))?;
+        let level = r.string("model.grid")?.unwrap_or_else(|| "medium".into());
+        let grid = GridSpec::level(&level).map_err(|e| r.error("model.grid", e.to_string()))?;
+        Potential::KohnSham { functional: functional.clone(), grid }
+    };
+    if matches!(potential, Potential::HartreeFock) && r.has("model.grid") {
+        return Err(r.error("model.grid", "not used with functional = \"hf\" (no exchange–correlation grid)"));
+    }
+    let singlets = r.u64("model.singlets")?.unwrap_or(3);
+    if !(1..=50).contains(&singlets) {
+        return Err(r.error("model.singlets", format!("must be between 1 and 50, found {singlets}")));
+    }
+    let step = positive(r, "model.gradient_step_bohr")?.unwrap_or(1e-3);
+    if step > 0.05 {
+        return Err(r.error("model.gradient_step_bohr", format!("{step} bohr is too large for a derivative (use 1e-4 to 1e-2)")));
+    }
+    let scf_tol = positive(r, "model.scf_tolerance")?.unwrap_or(1e-8);
+    let response_tol = positive(r, "model.response_tolerance")?.unwrap_or(1e-6);
+    for (key, v) in [("model.scf_tolerance", scf_tol), ("model.response_tolerance", response_tol)] {
+        if v > 1e-3 {
+            return Err(r.error(key, format!("{v} is too loose for dynamics (gradients are differences of energies; use ≤ 1e-5)")));
+        }
+    }
+    let calculation = ScfEnergy {
+        molecule,
+        basis: data,
+        harmonics: None,
+        electrons,
+        reference: Reference::RestrictedOpen,
+        potential,
+        scf: ScfOptions { gradient_tolerance: scf_tol, energy_tolerance: 1e-10, ..ScfOptions::default() },
+        jk: JkOptions::default(),
+        davidson: DavidsonOptions { residual_tolerance: response_tol, ..DavidsonOptions::default() },
+    };
+    let label = format!("MRSF-TDDFT {}/{}", functional.to_uppercase(), basis_name);
+    let spec = MolecularSpec { calculation, singlets: singlets as usize, gradients: GradientMethod::Numerical { step }, label };
+    Ok(ModelSpec::Molecule { path, spec: std::sync::Arc::new(spec) })
 }
 
 fn build_sampling(r: &Reader, model: &ModelSpec, base: &Path) -> Result<Sampling, ConfigError> {
@@ -388,6 +485,20 @@ fn build_sampling(r: &Reader, model: &ModelSpec, base: &Path) -> Result<Sampling
     }
     if r.has("start.initial_conditions") {
         return Err(r.error("start.initial_conditions", "only used with sampling = \"file\""));
+    }
+    if let ModelSpec::Molecule { .. } = model {
+        for key in ["start.position_bohr", "start.momentum_au", "start.width_bohr"] {
+            if r.has(key) {
+                return Err(r.error(key, "not used by molecules (they start from model.geometry at rest, or from an initial-conditions file)"));
+            }
+        }
+        if kind == "wigner" {
+            return Err(r.error(
+                "start.sampling",
+                "molecules are Wigner-sampled from their normal modes: run `flipswarm modes` and `flipswarm sample`, then use sampling = \"file\"",
+            ));
+        }
+        return Ok(Sampling::Origin);
     }
     if !model.is_one_dimensional() {
         for key in ["start.position_bohr", "start.momentum_au", "start.width_bohr"] {

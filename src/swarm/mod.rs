@@ -32,6 +32,7 @@ pub fn make_backend(model: &ModelSpec) -> Box<dyn Backend> {
         ModelSpec::Lvc { model, .. } => Box::new(DiabaticBackend::new(model.clone())),
         ModelSpec::Harmonic(m) => Box::new(DiabaticBackend::new(m.clone())),
         ModelSpec::Morse(m) => Box::new(DiabaticBackend::new(m.clone())),
+        ModelSpec::Molecule { spec, .. } => Box::new(crate::electronic::qc::backend::MrsfBackend::new(spec.clone())),
     }
 }
 
@@ -77,6 +78,7 @@ fn sampled(cfg: &RunConfig, masses: &[f64], index: usize) -> (Vec<f64>, Vec<f64>
             }
             (q, v)
         }
+        (_, ModelSpec::Molecule { spec, .. }) => (spec.reference_coordinates(), vec![0.0; spec.masses().len()]),
         (_, m) => (vec![0.0; m.n_dof()], vec![0.0; m.n_dof()]),
     }
 }

@@ -124,7 +124,7 @@ pub struct ShellData {
 }
 
 /// A basis set as data: contractions per element.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct BasisSetData {
     /// The name (as given in the file).
     pub name: String,

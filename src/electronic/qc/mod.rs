@@ -12,7 +12,9 @@
 //! * [`scf`], [`dft`]: RHF/UHF/ROHF and RKS/UKS/ROKS (libxc functionals,
 //!   molecular grids); [`response`]: SF-TDA and MRSF-TDDFT excited states;
 //!   [`gradient`]: analytic SCF gradients and numerical state gradients;
-//!   [`optimize`]: BFGS geometry optimisation.
+//!   [`optimize`]: BFGS geometry optimisation; [`backend`]: all of it as a
+//!   dynamics back end (MRSF singlets, state overlaps between geometries,
+//!   gradients and coupling vectors).
 //!
 //! Everything is in atomic units (bohr, hartree).
 //!
@@ -50,6 +52,7 @@
 //! assert!((s[(0, 1)] - 0.6593).abs() < 5e-5);
 //! ```
 
+pub mod backend;
 pub mod basis;
 pub mod boys;
 pub mod dft;

@@ -121,7 +121,7 @@ pub enum Target {
 
 /// Everything needed to compute an SCF (or MRSF state) energy at any
 /// geometry of one molecule.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct ScfEnergy {
     /// The molecule (elements; positions are replaced per call).
     pub molecule: Molecule,
@@ -173,30 +173,33 @@ impl ScfEnergy {
         Ok(BasisSet::new(&mol, &self.basis, self.harmonics)?)
     }
 
-    /// SCF (and, for an MRSF target, the excited states) at `positions`.
-    pub fn compute(&self, positions: &[[f64; 3]], guess: &Guess, target: &Target) -> Result<Computed, GradientError> {
-        let basis = self.basis_at(positions)?;
-        let (result, mut engine, cx) = match &self.potential {
+    /// The SCF at `basis` from `guess`, with the J/K engine the response
+    /// reuses and the exact-exchange fraction.
+    pub fn scf_with_engine(
+        &self,
+        basis: &BasisSet,
+        guess: &Guess,
+    ) -> Result<(ScfResult, JkEngine, f64), GradientError> {
+        Ok(match &self.potential {
             Potential::HartreeFock => {
-                let mut b = HartreeFock {
-                    engine: JkEngine::new(&basis, self.jk.clone()),
-                    exchange_fraction: 1.0,
-                };
-                let r = scf::run(&basis, self.electrons, self.reference, &mut b, guess, &self.scf)?;
+                let mut b = HartreeFock { engine: JkEngine::new(basis, self.jk.clone()), exchange_fraction: 1.0 };
+                let r = scf::run(basis, self.electrons, self.reference, &mut b, guess, &self.scf)?;
                 (r, b.engine, 1.0)
             }
             Potential::KohnSham { functional, grid } => {
-                let opts = KsOptions {
-                    functional: functional.clone(),
-                    grid: grid.clone(),
-                    jk: self.jk.clone(),
-                };
-                let mut b = KohnSham::new(&basis, self.reference, &opts)?;
+                let opts = KsOptions { functional: functional.clone(), grid: grid.clone(), jk: self.jk.clone() };
+                let mut b = KohnSham::new(basis, self.reference, &opts)?;
                 let cx = b.functional().exact_exchange();
-                let r = scf::run(&basis, self.electrons, self.reference, &mut b, guess, &self.scf)?;
+                let r = scf::run(basis, self.electrons, self.reference, &mut b, guess, &self.scf)?;
                 (r, b.into_engine(), cx)
             }
-        };
+        })
+    }
+
+    /// SCF (and, for an MRSF target, the excited states) at `positions`.
+    pub fn compute(&self, positions: &[[f64; 3]], guess: &Guess, target: &Target) -> Result<Computed, GradientError> {
+        let basis = self.basis_at(positions)?;
+        let (result, mut engine, cx) = self.scf_with_engine(&basis, guess)?;
         match target {
             Target::Ground => Ok(Computed {
                 energy: result.energy,

@@ -49,7 +49,7 @@ use crate::electronic::qc::scf::{Reference, ScfResult};
 use nalgebra::DMatrix;
 
 /// The potential the SCF was run with.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq)]
 pub enum Potential {
     /// Hartree–Fock (exact exchange 1).
     HartreeFock,

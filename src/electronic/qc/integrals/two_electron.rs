@@ -1163,7 +1163,7 @@ fn degeneracy(same_ij: bool, same_kl: bool, same_pairs: bool) -> f64 {
 }
 
 /// Options of the J/K builds.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct JkOptions {
     /// Schwarz threshold: quartets with Q_ab Q_cd (× max density in the
     /// direct build) below it are skipped. Default 1e−12.

@@ -138,7 +138,7 @@ pub trait Operator {
 }
 
 /// Tunables of [`lowest_eigenpairs`].
-#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct DavidsonOptions {
     /// Residual-norm threshold per root (default 1e−5).
     pub residual_tolerance: f64,

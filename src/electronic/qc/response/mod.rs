@@ -199,6 +199,7 @@
 //! ```
 
 pub mod davidson;
+pub mod overlap;
 mod kernel;
 mod mrsf;
 mod properties;

@@ -155,7 +155,7 @@ pub enum Guess {
 }
 
 /// Tunables of [`run`].
-#[derive(Clone, Debug, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ScfOptions {
     /// Iteration limit (default 128).
     pub max_iterations: usize,

@@ -1,0 +1,392 @@
+//! The built-in quantum chemistry as a dynamics back end: MRSF-TDDFT
+//! singlets S0 … S(n−1) of a molecule, from a triplet ROKS (or ROHF)
+//! reference, at every geometry the engine asks for.
+//!
+//! One call at a new geometry runs:
+//!
+//! 1. the ROKS SCF, started from the orbitals of the previous geometry
+//!    (superposition of atomic densities at the first one);
+//! 2. the MRSF response for the tracked singlets ([`response`]);
+//! 3. the reference-character check against the previous geometry
+//!    ([`tracking`]): a change of the open-shell pair is a warning in the
+//!    diagnostics (the published limitation of triplet-reference methods);
+//! 4. when asked, the state overlaps with the previous geometry
+//!    ([`overlap::state_overlaps`], exact, raw phases), the gradients and
+//!    the coupling vectors.
+//!
+//! # Gradients and coupling vectors
+//! Gradients are central differences of the response energies
+//! ([`GradientMethod::Numerical`]): one set of 6N displaced calculations
+//! gives the gradients of *all* tracked states, so a hop to another state
+//! at the same geometry costs nothing more. The same displaced calculations
+//! give the nonadiabatic coupling vectors by finite differences of state
+//! overlaps,
+//!
+//! ```text
+//!   d_IJ,k ≈ [<ψ_I(R)|ψ_J(R + h e_k)> − <ψ_I(R)|ψ_J(R − h e_k)>] / 2h,
+//! ```
+//!
+//! with the phase of each displaced state aligned to its undisplaced self
+//! and the result antisymmetrised (common practice), in the raw phases of
+//! the states at R. They are computed only when the engine asks (hop
+//! attempts).
+//!
+//! # Exact restart
+//! The snapshot holds the orbitals and state amplitudes of the last
+//! geometry. The next geometry's SCF guess and overlaps are derived from
+//! that record in the running and the restored back end alike, so a resumed
+//! trajectory repeats the one that never stopped bit for bit (on the same
+//! machine and thread count).
+
+use super::basis::BasisSet;
+use super::gradient::numerical::ScfEnergy;
+use super::response::overlap::{state_overlaps, StateVectors};
+use super::response::tracking::ReferenceCharacter;
+use super::response::{self, ExcitedStates, Method, StateRequest};
+use super::scf::{Guess, ScfResult};
+use crate::electronic::{
+    check_geometry, Backend, BackendError, BackendInfo, Couplings, Diagnostics, Request, Results, Snapshot,
+};
+use nalgebra::DMatrix;
+use rayon::prelude::*;
+use std::sync::Arc;
+
+/// How state gradients are obtained.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum GradientMethod {
+    /// Central differences of the response energies with this step (bohr).
+    Numerical {
+        /// Displacement h (bohr).
+        step: f64,
+    },
+}
+
+/// Everything that defines the electronic structure of a molecular run.
+#[derive(Clone, Debug, PartialEq)]
+pub struct MolecularSpec {
+    /// Molecule, basis, electrons (the triplet reference), potential and
+    /// solver options; the molecule's positions are the reference geometry.
+    pub calculation: ScfEnergy,
+    /// Tracked singlets S0 … S(n−1).
+    pub singlets: usize,
+    /// Gradients.
+    pub gradients: GradientMethod,
+    /// Short description ("MRSF-TDDFT BH&HLYP/6-31G").
+    pub label: String,
+}
+
+impl MolecularSpec {
+    /// Masses per Cartesian coordinate (electron masses).
+    pub fn masses(&self) -> Vec<f64> {
+        self.calculation.molecule.masses_me().iter().flat_map(|&m| [m, m, m]).collect()
+    }
+    /// The reference geometry as flat Cartesian coordinates (bohr).
+    pub fn reference_coordinates(&self) -> Vec<f64> {
+        self.calculation.molecule.atoms.iter().flat_map(|a| a.position_bohr).collect()
+    }
+}
+
+/// One geometry's electronic structure.
+struct Point {
+    q: Vec<f64>,
+    basis: BasisSet,
+    excited: ExcitedStates,
+    vectors: StateVectors,
+    /// Gradients of every tracked state, when computed.
+    gradients: Option<Vec<Vec<f64>>>,
+    /// Displaced calculations (coordinate k: 2k = +h, 2k+1 = −h).
+    displaced: Option<Vec<(BasisSet, StateVectors)>>,
+}
+
+/// The record of the last geometry that the next one builds on.
+struct Previous {
+    q: Vec<f64>,
+    basis: BasisSet,
+    vectors: StateVectors,
+}
+
+/// MRSF-TDDFT singlets of one molecule (one instance per trajectory).
+pub struct MrsfBackend {
+    spec: Arc<MolecularSpec>,
+    masses: Vec<f64>,
+    current: Option<Point>,
+    previous: Option<Previous>,
+    results: Results,
+}
+
+fn positions(q: &[f64]) -> Vec<[f64; 3]> {
+    q.chunks(3).map(|c| [c[0], c[1], c[2]]).collect()
+}
+
+fn failed(e: impl std::fmt::Display) -> BackendError {
+    BackendError::Failed(e.to_string())
+}
+
+/// The SCF guess from a record's orbitals: occupied α and β columns.
+fn guess_from(vectors: &StateVectors, calc: &ScfEnergy) -> Guess {
+    let (na, nb) = (calc.electrons.alpha, calc.electrons.beta);
+    Guess::Orbitals {
+        alpha: vectors.orbitals.columns(0, na).into_owned(),
+        beta: vectors.orbitals.columns(0, nb).into_owned(),
+    }
+}
+
+impl MrsfBackend {
+    /// A back end for `spec`.
+    pub fn new(spec: Arc<MolecularSpec>) -> MrsfBackend {
+        let masses = spec.masses();
+        MrsfBackend { spec, masses, current: None, previous: None, results: Results::default() }
+    }
+
+    fn n_dof(&self) -> usize {
+        self.masses.len()
+    }
+
+    /// SCF and response at `q` from `guess`.
+    fn solve(spec: &MolecularSpec, q: &[f64], guess: &Guess) -> Result<(BasisSet, ScfResult, ExcitedStates), BackendError> {
+        let calc = &spec.calculation;
+        let basis = calc.basis_at(&positions(q)).map_err(failed)?;
+        let (scf, mut engine, cx) = calc.scf_with_engine(&basis, guess).map_err(failed)?;
+        let request = StateRequest { method: Method::Mrsf, singlets: spec.singlets, triplets: 0 };
+        let excited = response::excited_states(&basis, &scf, cx, &mut engine, request, &calc.davidson)
+            .map_err(|e| BackendError::Failed(format!("MRSF response: {e}")))?;
+        if excited.states.len() < spec.singlets {
+            return Err(BackendError::Failed(format!(
+                "{} singlets computed, {} tracked",
+                excited.states.len(),
+                spec.singlets
+            )));
+        }
+        Ok((basis, scf, excited))
+    }
+
+    fn energies(excited: &ExcitedStates, n: usize) -> Vec<f64> {
+        excited.states.iter().take(n).map(|s| s.energy).collect()
+    }
+
+    /// A new geometry: SCF, response, character check, overlaps.
+    fn new_point(&mut self, q: &[f64]) -> Result<(), BackendError> {
+        if let Some(p) = self.current.take() {
+            self.previous = Some(Previous { q: p.q, basis: p.basis, vectors: p.vectors });
+        }
+        let spec = self.spec.clone();
+        let guess = match &self.previous {
+            Some(prev) => guess_from(&prev.vectors, &spec.calculation),
+            None => Guess::AtomicSuperposition,
+        };
+        let (basis, scf, excited) = Self::solve(&spec, q, &guess)?;
+        let scf_iterations = scf.iterations;
+        let n = spec.singlets;
+        let indices: Vec<usize> = (0..n).collect();
+        let vectors = StateVectors::from_states(&excited, &indices).map_err(failed)?;
+        let mut diagnostics = Diagnostics {
+            iterations: Some(scf_iterations as u32),
+            response_iterations: excited.solver.first().map(|s| s.iterations as u32),
+            spin_squared: Some(excited.states.iter().take(n).map(|s| s.s_squared).collect()),
+            warnings: Vec::new(),
+        };
+        if let Some(prev) = &self.previous {
+            let nc = vectors.n_core;
+            let before = ReferenceCharacter { open_shells: prev.vectors.orbitals.columns(nc, 2).into_owned() };
+            let now = ReferenceCharacter { open_shells: vectors.orbitals.columns(nc, 2).into_owned() };
+            let check = now.compare(&basis, &before, &prev.basis).map_err(failed)?;
+            if check.changed {
+                diagnostics.warnings.push(format!(
+                    "the reference triplet changed character (open-shell overlap σ₂ = {:.3})",
+                    check.singular_values[1]
+                ));
+            }
+        }
+        self.results = Results {
+            energies: Self::energies(&excited, n),
+            diagnostics,
+            ..Results::default()
+        };
+        self.current = Some(Point { q: q.to_vec(), basis, excited, vectors, gradients: None, displaced: None });
+        Ok(())
+    }
+
+    /// The 6N displaced calculations: gradients of all tracked states, and
+    /// the displaced states for coupling vectors.
+    fn displacements(&mut self) -> Result<(), BackendError> {
+        let GradientMethod::Numerical { step } = self.spec.gradients;
+        let spec = self.spec.clone();
+        let point = self.current.as_mut().expect("a current point");
+        if point.gradients.is_some() {
+            return Ok(());
+        }
+        let n = spec.singlets;
+        let guess = guess_from(&point.vectors, &spec.calculation);
+        let indices: Vec<usize> = (0..n).collect();
+        let jobs: Vec<(usize, f64)> = (0..point.q.len()).flat_map(|k| [(k, step), (k, -step)]).collect();
+        let base = &point.q;
+        let done: Vec<Result<(Vec<f64>, BasisSet, StateVectors), BackendError>> = jobs
+            .par_iter()
+            .map(|&(k, h)| {
+                let mut q = base.clone();
+                q[k] += h;
+                let (basis, _, excited) = Self::solve(&spec, &q, &guess).map_err(|e| {
+                    BackendError::Failed(format!("displaced geometry (coordinate {k}, {h:+e} bohr): {e}"))
+                })?;
+                let vectors = StateVectors::from_states(&excited, &indices).map_err(failed)?;
+                Ok((Self::energies(&excited, n), basis, vectors))
+            })
+            .collect();
+        let mut energies = Vec::with_capacity(done.len());
+        let mut displaced = Vec::with_capacity(done.len());
+        for d in done {
+            let (e, b, v) = d?;
+            energies.push(e);
+            displaced.push((b, v));
+        }
+        let dof = point.q.len();
+        let gradients: Vec<Vec<f64>> = (0..n)
+            .map(|s| (0..dof).map(|k| (energies[2 * k][s] - energies[2 * k + 1][s]) / (2.0 * step)).collect())
+            .collect();
+        point.gradients = Some(gradients);
+        point.displaced = Some(displaced);
+        Ok(())
+    }
+
+    fn couplings(&self) -> Result<Couplings, BackendError> {
+        let GradientMethod::Numerical { step } = self.spec.gradients;
+        let point = self.current.as_ref().expect("a current point");
+        let displaced = point.displaced.as_ref().expect("displacements done");
+        let n = self.spec.singlets;
+        let dof = point.q.len();
+        let overlaps: Vec<DMatrix<f64>> = displaced
+            .par_iter()
+            .map(|(b, v)| {
+                let mut s = state_overlaps(&point.vectors, &point.basis, v, b).map_err(failed)?;
+                for j in 0..n {
+                    if s[(j, j)] < 0.0 {
+                        s.column_mut(j).neg_mut();
+                    }
+                }
+                Ok(s)
+            })
+            .collect::<Result<_, BackendError>>()?;
+        let mut c = Couplings::zeros(n, dof);
+        for i in 0..n {
+            for j in i + 1..n {
+                let d = c.upper_mut(i, j);
+                for k in 0..dof {
+                    let (plus, minus) = (&overlaps[2 * k], &overlaps[2 * k + 1]);
+                    let dij = (plus[(i, j)] - minus[(i, j)]) / (2.0 * step);
+                    let dji = (plus[(j, i)] - minus[(j, i)]) / (2.0 * step);
+                    d[k] = 0.5 * (dij - dji);
+                }
+            }
+        }
+        Ok(c)
+    }
+}
+
+impl Backend for MrsfBackend {
+    fn info(&self) -> BackendInfo {
+        BackendInfo { name: self.spec.label.clone(), n_states: self.spec.singlets, masses: self.masses.clone() }
+    }
+
+    fn compute(&mut self, q: &[f64], request: &Request) -> Result<&Results, BackendError> {
+        check_geometry(q, self.n_dof())?;
+        let n = self.spec.singlets;
+        if let Some(&state) = request.gradients.iter().find(|&&s| s >= n) {
+            return Err(BackendError::NoSuchState { state, n_states: n });
+        }
+        let same = self.current.as_ref().is_some_and(|p| p.q.as_slice() == q);
+        if !same {
+            self.new_point(q)?;
+            if request.overlaps {
+                if let Some(prev) = &self.previous {
+                    let p = self.current.as_ref().expect("just computed");
+                    let s = state_overlaps(&prev.vectors, &prev.basis, &p.vectors, &p.basis).map_err(failed)?;
+                    self.results.overlaps = Some(s);
+                }
+            }
+        }
+        if !request.gradients.is_empty() || request.couplings {
+            self.displacements()?;
+        }
+        if request.couplings && self.results.couplings.is_none() {
+            self.results.couplings = Some(self.couplings()?);
+        }
+        let point = self.current.as_ref().expect("a current point");
+        if let Some(all) = &point.gradients {
+            for &s in &request.gradients {
+                if self.results.gradient(s).is_none() {
+                    self.results.gradients.push((s, all[s].clone()));
+                }
+            }
+        }
+        if request.transition_dipoles && self.results.transition_dipoles.is_none() {
+            let x = &point.excited;
+            let dipoles = (0..n).map(|i| x.transition_dipole(0, i)).collect::<Result<Vec<_>, _>>().map_err(failed)?;
+            self.results.transition_dipoles = Some(dipoles);
+        }
+        Ok(&self.results)
+    }
+
+    fn snapshot(&self) -> Snapshot {
+        let (q, v) = match (&self.current, &self.previous) {
+            (Some(p), _) => (p.q.clone(), &p.vectors),
+            (None, Some(p)) => (p.q.clone(), &p.vectors),
+            (None, None) => return Snapshot { backend: self.spec.label.clone(), geometry: Vec::new(), reals: Vec::new() },
+        };
+        let c = &v.orbitals;
+        let mut reals = vec![c.nrows() as f64, c.ncols() as f64, v.n_core as f64, v.len() as f64];
+        reals.extend_from_slice(c.as_slice());
+        for (xp, xm) in &v.amplitudes {
+            reals.extend_from_slice(xp.as_slice());
+            reals.extend_from_slice(xm.as_slice());
+        }
+        Snapshot { backend: self.spec.label.clone(), geometry: q, reals }
+    }
+
+    fn restore(&mut self, snapshot: &Snapshot) -> Result<(), BackendError> {
+        if snapshot.backend != self.spec.label {
+            return Err(BackendError::Snapshot(format!(
+                "written by \"{}\", this run uses \"{}\"",
+                snapshot.backend, self.spec.label
+            )));
+        }
+        self.current = None;
+        self.results = Results::default();
+        if snapshot.geometry.is_empty() {
+            self.previous = None;
+            return Ok(());
+        }
+        check_geometry(&snapshot.geometry, self.n_dof()).map_err(|e| BackendError::Snapshot(e.to_string()))?;
+        let r = &snapshot.reals;
+        let bad = |what: &str| BackendError::Snapshot(format!("electronic record: {what}"));
+        if r.len() < 4 || r[..4].iter().any(|x| x.fract() != 0.0 || *x < 0.0) {
+            return Err(bad("malformed header"));
+        }
+        let (nbf, nmo, nc, ns) = (r[0] as usize, r[1] as usize, r[2] as usize, r[3] as usize);
+        if nc + 2 > nmo || ns != self.spec.singlets {
+            return Err(bad("orbital or state counts do not fit this run"));
+        }
+        let (nocc, nvir) = (nc + 2, nmo - nc);
+        let need = 4 + nbf * nmo + 2 * ns * nocc * nvir;
+        if r.len() != need {
+            return Err(bad(&format!("{} numbers, {need} expected", r.len())));
+        }
+        let basis = self.spec.calculation.basis_at(&positions(&snapshot.geometry)).map_err(|e| bad(&e.to_string()))?;
+        if basis.nbf != nbf {
+            return Err(bad(&format!("{nbf} basis functions recorded, the basis has {}", basis.nbf)));
+        }
+        let mut at = 4;
+        let mut take = |rows: usize, cols: usize| {
+            let m = DMatrix::from_column_slice(rows, cols, &r[at..at + rows * cols]);
+            at += rows * cols;
+            m
+        };
+        let orbitals = take(nbf, nmo);
+        let amplitudes = (0..ns).map(|_| (take(nocc, nvir), take(nocc, nvir))).collect();
+        self.previous = Some(Previous {
+            q: snapshot.geometry.clone(),
+            basis,
+            vectors: StateVectors { n_core: nc, orbitals, amplitudes },
+        });
+        Ok(())
+    }
+}
