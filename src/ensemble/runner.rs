@@ -543,12 +543,16 @@ fn human(bytes: u64) -> String {
 /// The name under which an LVC model file is copied into the run directory.
 pub const MODEL_COPY: &str = "lvc-model.toml";
 
+/// The name under which a molecule's geometry file is copied into the run directory.
+pub const GEOMETRY_COPY: &str = "molecule.xyz";
+
 /// The name under which an initial-conditions file is copied into the run directory.
 pub const INITIAL_CONDITIONS_COPY: &str = "initial-conditions.h5";
 
-/// A run directory must not depend on files outside it: an LVC model file
-/// and an initial-conditions file are copied in and `model.file` and
-/// `start.initial_conditions` rewritten to point at the copies.
+/// A run directory must not depend on files outside it: an LVC model file,
+/// a molecule's geometry and an initial-conditions file are copied in and
+/// `model.file`, `model.geometry` and `start.initial_conditions` rewritten
+/// to point at the copies.
 fn self_contained(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
     let mut sets = Vec::new();
     if let crate::config::ModelSpec::Lvc { path, .. } = &cfg.model {
@@ -557,6 +561,13 @@ fn self_contained(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
             std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the LVC model {}: {e}", path.display()) })?;
         }
         sets.push(format!("model.file=\"{MODEL_COPY}\""));
+    }
+    if let crate::config::ModelSpec::Molecule { path, .. } = &cfg.model {
+        let copy = dir.join(GEOMETRY_COPY);
+        if !copy.exists() {
+            std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the geometry {}: {e}", path.display()) })?;
+        }
+        sets.push(format!("model.geometry=\"{GEOMETRY_COPY}\""));
     }
     if let crate::config::Sampling::File { path, .. } = &cfg.sampling {
         let copy = dir.join(INITIAL_CONDITIONS_COPY);
