@@ -295,3 +295,64 @@ fn molecular_nve_dynamics_conserves_energy() {
     assert!(swing < 2e-4, "fluctuation {swing:e} Eh");
     assert!(t.rows.iter().all(|r| r.active == 0));
 }
+
+fn stdout_of(args: &[&str]) -> String {
+    let out = Command::new(BIN).args(args).output().unwrap();
+    assert_eq!(out.status.code(), Some(0), "flipswarm {args:?}: {}", String::from_utf8_lossy(&out.stderr));
+    String::from_utf8_lossy(&out.stdout).into_owned()
+}
+
+// Source: the demonstration pipeline of scripts/demo in a reduced form
+// (common practice of a photodynamics study: ground-state minimum, normal
+// modes, Wigner sample, surface hopping from S1, analysis); ethylene with
+// STO-3G and two 0.5 fs steps. Checked against outside facts: the closed-
+// shell minimum has 12 real vibrational modes (3N − 6 for a non-linear
+// molecule), the C=C stretch lies between 1500 and 2100 cm⁻¹ (ethylene's is
+// 1623 cm⁻¹ experimentally, from memory; BH&HLYP/STO-3G overestimates),
+// every trajectory starts on S1 and finishes, and the exported movie has
+// one 6-atom frame per step.
+#[test]
+fn demo_pipeline_in_reduced_form() {
+    let dir = common::scratch("molecular", "demo");
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let d = |name: &str| dir.join(name).to_str().unwrap().to_string();
+    stdout_of(&["-q", "optimize", root.join("ensembles/molecules/ethylene.xyz").to_str().unwrap(), "--method", "rks", "--basis", "STO-3G", "--grid", "coarse", "-o", &d("minimum.xyz")]);
+    let toml = std::fs::read_to_string(root.join("ensembles/ethylene-s1.toml")).unwrap();
+    let toml = toml
+        .lines()
+        .map(|l| {
+            if l.starts_with("geometry") {
+                "geometry = \"minimum.xyz\"".to_string()
+            } else if l.starts_with("basis") {
+                "basis = \"STO-3G\"".to_string()
+            } else {
+                l.to_string()
+            }
+        })
+        .collect::<Vec<_>>()
+        .join("\n");
+    std::fs::write(dir.join("ethylene.toml"), toml).unwrap();
+    let modes = stdout_of(&["-q", "modes", &d("ethylene.toml"), "-o", &d("modes.toml")]);
+    assert!(modes.contains("12 modes"), "{modes}");
+    let wavenumbers: Vec<f64> = modes.lines().skip(2).filter_map(|l| l.split_whitespace().nth(1)?.parse().ok()).collect();
+    assert_eq!(wavenumbers.len(), 12);
+    assert!(wavenumbers.iter().all(|&w| w > 100.0), "{wavenumbers:?}");
+    assert!(wavenumbers.iter().any(|&w| (1500.0..2100.0).contains(&w)), "no C=C stretch: {wavenumbers:?}");
+    stdout_of(&["-q", "sample", &d("modes.toml"), "-n", "2", "--seed", "5", "--temperature-k", "0", "-o", &d("ic.h5")]);
+    stdout_of(&[
+        "-q", "run", &d("ethylene.toml"), "--set", "start.sampling=\"file\"", "--set", "start.initial_conditions=\"ic.h5\"",
+        "--set", "swarm.trajectories=2", "--set", "dynamics.duration_fs=1.0", "-o", &d("run"),
+    ]);
+    let runs = common::read_all(&part(&dir.join("run")));
+    assert_eq!(runs.len(), 2);
+    for t in &runs {
+        assert_eq!(t.rows.len(), 3);
+        assert_eq!(t.rows[0].active, 1);
+        assert!(matches!(t.status, flipswarm::dynamics::Status::Finished(_)), "{:?}", t.status);
+    }
+    stdout_of(&["-q", "export", &d("run"), "--trajectory", "0", "--format", "xyz", "-o", &d("t0.xyz")]);
+    let xyz = std::fs::read_to_string(dir.join("t0.xyz")).unwrap();
+    assert_eq!(xyz.lines().filter(|l| l.trim() == "6").count(), 3);
+    stdout_of(&["-q", "analyze", &d("run"), "--out", &d("analysis")]);
+    assert!(dir.join("analysis/populations.csv").exists());
+}

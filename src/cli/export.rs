@@ -73,15 +73,18 @@ fn export(args: &ExportArgs) -> Result<usize, String> {
             return Err(format!("{}: no trajectory {i}", args.path.display()));
         }
     }
-    let elements: Vec<Element> = args
+    let mut elements: Vec<Element> = args
         .elements
         .iter()
         .map(|s| Element::parse_symbol_or_number(s.trim()).map_err(|e| format!("--elements: `{s}`: {e}")))
         .collect::<Result<_, _>>()?;
+    if elements.is_empty() {
+        elements = molecule_elements(&args.path).unwrap_or_default();
+    }
     let n_dof = found[0].header.q0.len();
     if args.format == Format::Xyz {
         if elements.is_empty() {
-            return Err("--format xyz needs --elements (one per atom; the coordinates are x, y, z per atom)".into());
+            return Err("--format xyz needs --elements (one per atom; the coordinates are x, y, z per atom); molecular runs supply them from their run.toml".into());
         }
         if elements.len() * 3 != n_dof {
             return Err(format!("--elements names {} atoms, but the trajectories have {n_dof} coordinates ({} would need {} atoms)", elements.len(), n_dof, if n_dof % 3 == 0 { (n_dof / 3).to_string() } else { "no whole number of".into() }));
@@ -123,6 +126,15 @@ fn write_csv(out: &mut Vec<u8>, data: &TrajectoryData, header: bool) -> usize {
         let _ = writeln!(out, "{line}");
     }
     data.rows.len()
+}
+
+/// The elements of a molecular run, from the run directory's `run.toml`.
+fn molecule_elements(path: &std::path::Path) -> Option<Vec<Element>> {
+    let toml = path.join("run.toml");
+    match crate::config::load_file(&toml, &[]).ok()?.model {
+        crate::config::ModelSpec::Molecule { spec, .. } => Some(spec.calculation.molecule.elements()),
+        _ => None,
+    }
 }
 
 fn write_xyz(out: &mut Vec<u8>, data: &TrajectoryData, elements: &[Element]) -> Result<usize, String> {
