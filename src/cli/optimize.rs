@@ -22,7 +22,8 @@ use crate::electronic::qc::dft::grid::GridSpec;
 use crate::electronic::qc::gradient::numerical::{ScfEnergy, Target, DEFAULT_STEP};
 use crate::electronic::qc::gradient::scf::Potential;
 use crate::electronic::qc::integrals::JkOptions;
-use crate::electronic::qc::optimize::{minimize_energy, GradientKind, OptimizeError, OptimizeOptions};
+use crate::electronic::qc::optimize::intersection::CrossingOptions;
+use crate::electronic::qc::optimize::{minimize_energy, minimize_mrsf_crossing, GradientKind, OptimizeError, OptimizeOptions};
 use crate::electronic::qc::response::davidson::DavidsonOptions;
 use crate::electronic::qc::scf::{Reference, ScfOptions};
 
@@ -59,6 +60,14 @@ pub struct OptimizeArgs {
     /// ROKS/ROHF reference instead of the SCF energy (numerical gradients).
     #[arg(long)]
     pub state: Option<String>,
+    /// Search the minimum-energy crossing of two MRSF states of the same
+    /// spin instead, e.g. `S0,S1` (penalty-function method, numerical
+    /// gradients); the gap and both energies are reported.
+    #[arg(long, value_name = "LOWER,UPPER", conflicts_with = "state")]
+    pub crossing: Option<String>,
+    /// Gap at which a crossing search stops (Eh).
+    #[arg(long, default_value_t = 1e-4)]
+    pub gap_tolerance: f64,
     /// MRSF singlet roots to solve for with --state.
     #[arg(long, default_value_t = 3)]
     pub singlets: usize,
@@ -105,11 +114,22 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
     };
     let MolecularInput { mol, data, harmonics, basis, electrons, multiplicity } = input;
     let (reference, is_ks, label) = (args.method.reference(), args.method.is_ks(), args.method.label());
-    let target = match &args.state {
+    let crossing = match &args.crossing {
+        None => None,
+        Some(text) => match text.split_once(',') {
+            Some((a, b)) if !a.trim().is_empty() && !b.trim().is_empty() => Some((a.trim().to_string(), b.trim().to_string())),
+            _ => {
+                eprintln!("error: --crossing {text:?}: give two state labels separated by a comma, e.g. S0,S1");
+                return exit::INPUT;
+            }
+        },
+    };
+    let state = args.state.clone().or_else(|| crossing.as_ref().map(|(a, _)| a.clone()));
+    let target = match &state {
         None => Target::Ground,
         Some(s) => {
             if reference != Reference::RestrictedOpen || multiplicity != 3 {
-                eprintln!("error: --state needs the high-spin triplet reference: --method roks (or rohf) with --multiplicity 3");
+                eprintln!("error: --state and --crossing need the high-spin triplet reference: --method roks (or rohf) with --multiplicity 3");
                 return exit::INPUT;
             }
             Target::Mrsf {
@@ -168,9 +188,10 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
     }
     .scaled(args.criteria_scale);
     let start: Vec<[f64; 3]> = mol.atoms.iter().map(|a| a.position_bohr).collect();
-    let what = match &args.state {
-        Some(s) => format!("MRSF {s} of {label}"),
-        None => label.to_string(),
+    let what = match (&args.state, &crossing) {
+        (_, Some((a, b))) => format!("the MRSF {a}/{b} crossing of {label}"),
+        (Some(s), None) => format!("MRSF {s} of {label}"),
+        (None, None) => label.to_string(),
     };
     println!(
         "{}: optimising {what} ({} basis, {} gradients)",
@@ -179,6 +200,29 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
         if gradient == GradientKind::Analytic { "analytic" } else { "numerical" }
     );
     let t = std::time::Instant::now();
+    if let Some((lower, upper)) = &crossing {
+        if !(args.gap_tolerance.is_finite() && args.gap_tolerance > 0.0) {
+            eprintln!("error: --gap-tolerance must be positive");
+            return exit::INPUT;
+        }
+        let copts = CrossingOptions { stage: opts, gap_tolerance: args.gap_tolerance, ..CrossingOptions::default() };
+        return match minimize_mrsf_crossing(&calc, &start, lower, upper, args.singlets, args.triplets, args.step, &copts) {
+            Ok(c) => {
+                let comment = format!("{what}: E({lower}) = {:.10} Eh, E({upper}) = {:.10} Eh, gap {:.2e} Eh", c.states.lower, c.states.upper, c.gap);
+                if let Err(e) = write_geometry(&args.output, &mol, &c.positions, &comment) {
+                    eprintln!("error: {e}");
+                    return exit::RUNTIME;
+                }
+                println!("{what} found in {:.1} s: {c}; written to {}", t.elapsed().as_secs_f64(), args.output.display());
+                println!("branching-plane gradient difference (unit vector, per atom):");
+                for (a, v) in mol.atoms.iter().zip(&c.gradient_difference) {
+                    println!("  {:<2} {:>12.6} {:>12.6} {:>12.6}", a.element.symbol(), v[0], v[1], v[2]);
+                }
+                exit::OK
+            }
+            Err(e) => fail(&args.geometry, &args.output, &mol, &what, e),
+        };
+    }
     match minimize_energy(&calc, &start, &target, gradient, &opts) {
         Ok(r) => {
             let comment = format!("{what} minimum, E = {:.10} Eh", r.energy);
@@ -196,20 +240,23 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
             );
             exit::OK
         }
-        Err(e) => {
-            eprintln!("error: {}: {e}", args.geometry.display());
-            let first_failed = matches!(e, OptimizeError::Evaluation { step: 1, .. });
-            if let (Some(last), false) = (e.last_positions(), first_failed) {
-                let comment = format!("{what}: not converged (last accepted geometry)");
-                match write_geometry(&args.output, &mol, last, &comment) {
-                    Ok(()) => eprintln!("the last accepted geometry was written to {}", args.output.display()),
-                    Err(w) => eprintln!("error: {w}"),
-                }
-            }
-            match e {
-                OptimizeError::Options(_) => exit::INPUT,
-                _ => exit::RUNTIME,
-            }
+        Err(e) => fail(&args.geometry, &args.output, &mol, &what, e),
+    }
+}
+
+/// Report a failed optimisation, saving the last accepted geometry.
+fn fail(geometry: &std::path::Path, output: &std::path::Path, mol: &Molecule, what: &str, e: OptimizeError) -> i32 {
+    eprintln!("error: {}: {e}", geometry.display());
+    let first_failed = matches!(e, OptimizeError::Evaluation { step: 1, .. });
+    if let (Some(last), false) = (e.last_positions(), first_failed) {
+        let comment = format!("{what}: not converged (last accepted geometry)");
+        match write_geometry(output, mol, last, &comment) {
+            Ok(()) => eprintln!("the last accepted geometry was written to {}", output.display()),
+            Err(w) => eprintln!("error: {w}"),
         }
+    }
+    match e {
+        OptimizeError::Options(_) => exit::INPUT,
+        _ => exit::RUNTIME,
     }
 }

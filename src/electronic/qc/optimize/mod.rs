@@ -27,6 +27,8 @@
 //! [`OptimizeOptions::max_steps`] is [`OptimizeError::NotConverged`], which
 //! carries the last (lowest-energy) geometry so a caller can save it.
 
+pub mod intersection;
+
 use std::fmt;
 
 /// Tunables of [`minimize`].
@@ -394,5 +396,43 @@ pub fn minimize_energy(
         };
         guess = orbital_guess(&c.scf);
         Ok((c.energy, g))
+    })
+}
+
+/// The minimum-energy crossing of two MRSF-TDDFT states of `calc` (labels
+/// as [`crate::electronic::qc::response::ExcitedStates::label`], e.g. `S0`
+/// and `S1`), with central-difference gradients of step `step` (both
+/// states from one set of displaced calculations, each SCF starting from
+/// the orbitals of the current geometry).
+#[allow(clippy::too_many_arguments)]
+pub fn minimize_mrsf_crossing(
+    calc: &crate::electronic::qc::gradient::numerical::ScfEnergy,
+    start: &[[f64; 3]],
+    lower: &str,
+    upper: &str,
+    singlets: usize,
+    triplets: usize,
+    step: f64,
+    opts: &intersection::CrossingOptions,
+) -> Result<intersection::Crossing, OptimizeError> {
+    use crate::electronic::qc::gradient::numerical::{central_differences_many, orbital_guess, state_energy, Target};
+    use crate::electronic::qc::gradient::GradientError;
+    use crate::electronic::qc::scf::Guess;
+    let target = Target::Mrsf { label: lower.to_string(), singlets, triplets };
+    let mut guess = Guess::AtomicSuperposition;
+    intersection::minimize_crossing(start, opts, |p| -> Result<intersection::StatePair, GradientError> {
+        let c = calc.compute(p, &guess, &target)?;
+        let x = c.excited.as_ref().expect("MRSF target");
+        let (el, eu) = (state_energy(x, lower)?, state_energy(x, upper)?);
+        let g = orbital_guess(&c.scf);
+        let grads = central_differences_many(p, step, 2, |q| {
+            let d = calc.compute(q, &g, &target).map_err(|e| e.to_string())?;
+            let x = d.excited.as_ref().ok_or("no excited states")?;
+            Ok(vec![state_energy(x, lower).map_err(|e| e.to_string())?, state_energy(x, upper).map_err(|e| e.to_string())?])
+        })?;
+        guess = g;
+        let mut it = grads.into_iter();
+        let (lower_gradient, upper_gradient) = (it.next().expect("two"), it.next().expect("two"));
+        Ok(intersection::StatePair { lower: el, upper: eu, lower_gradient, upper_gradient })
     })
 }
