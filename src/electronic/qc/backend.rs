@@ -105,6 +105,31 @@ struct Previous {
     vectors: StateVectors,
 }
 
+/// Wall-clock time spent in each part of the back end (seconds), summed
+/// over all calls: for benchmarks and logs.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct Timings {
+    /// SCF at the geometries the engine asked for.
+    pub scf: f64,
+    /// MRSF response at those geometries.
+    pub response: f64,
+    /// State overlaps with the previous geometry (and the character check).
+    pub overlaps: f64,
+    /// The displaced calculations of gradients (SCF + response each).
+    pub gradients: f64,
+    /// Coupling vectors from the displaced states.
+    pub couplings: f64,
+    /// New geometries computed.
+    pub geometries: usize,
+}
+
+impl Timings {
+    /// Sum of all parts.
+    pub fn total(&self) -> f64 {
+        self.scf + self.response + self.overlaps + self.gradients + self.couplings
+    }
+}
+
 /// MRSF-TDDFT singlets of one molecule (one instance per trajectory).
 pub struct MrsfBackend {
     spec: Arc<MolecularSpec>,
@@ -112,6 +137,7 @@ pub struct MrsfBackend {
     current: Option<Point>,
     previous: Option<Previous>,
     results: Results,
+    timings: Timings,
 }
 
 fn positions(q: &[f64]) -> Vec<[f64; 3]> {
@@ -135,7 +161,12 @@ impl MrsfBackend {
     /// A back end for `spec`.
     pub fn new(spec: Arc<MolecularSpec>) -> MrsfBackend {
         let masses = spec.masses();
-        MrsfBackend { spec, masses, current: None, previous: None, results: Results::default() }
+        MrsfBackend { spec, masses, current: None, previous: None, results: Results::default(), timings: Timings::default() }
+    }
+
+    /// Time spent so far, by part.
+    pub fn timings(&self) -> Timings {
+        self.timings
     }
 
     fn n_dof(&self) -> usize {
@@ -144,9 +175,16 @@ impl MrsfBackend {
 
     /// SCF and response at `q` from `guess`.
     fn solve(spec: &MolecularSpec, q: &[f64], guess: &Guess) -> Result<(BasisSet, ScfResult, ExcitedStates), BackendError> {
+        Self::solve_timed(spec, q, guess).map(|(b, s, x, _)| (b, s, x))
+    }
+
+    /// As [`Self::solve`], with the SCF and response times (s).
+    fn solve_timed(spec: &MolecularSpec, q: &[f64], guess: &Guess) -> Result<(BasisSet, ScfResult, ExcitedStates, [f64; 2]), BackendError> {
         let calc = &spec.calculation;
+        let t0 = std::time::Instant::now();
         let basis = calc.basis_at(&positions(q)).map_err(failed)?;
         let (scf, mut engine, cx) = calc.scf_with_engine(&basis, guess).map_err(failed)?;
+        let t1 = std::time::Instant::now();
         let request = StateRequest { method: Method::Mrsf, singlets: spec.singlets, triplets: 0 };
         let excited = response::excited_states(&basis, &scf, cx, &mut engine, request, &calc.davidson)
             .map_err(|e| BackendError::Failed(format!("MRSF response: {e}")))?;
@@ -157,7 +195,8 @@ impl MrsfBackend {
                 spec.singlets
             )));
         }
-        Ok((basis, scf, excited))
+        let times = [(t1 - t0).as_secs_f64(), t1.elapsed().as_secs_f64()];
+        Ok((basis, scf, excited, times))
     }
 
     fn energies(excited: &ExcitedStates, n: usize) -> Vec<f64> {
@@ -174,7 +213,11 @@ impl MrsfBackend {
             Some(prev) => guess_from(&prev.vectors, &spec.calculation),
             None => Guess::AtomicSuperposition,
         };
-        let (basis, scf, excited) = Self::solve(&spec, q, &guess)?;
+        let (basis, scf, excited, [t_scf, t_response]) = Self::solve_timed(&spec, q, &guess)?;
+        self.timings.scf += t_scf;
+        self.timings.response += t_response;
+        self.timings.geometries += 1;
+        let t_overlaps = std::time::Instant::now();
         let scf_iterations = scf.iterations;
         let n = spec.singlets;
         let indices: Vec<usize> = (0..n).collect();
@@ -202,6 +245,7 @@ impl MrsfBackend {
             diagnostics,
             ..Results::default()
         };
+        self.timings.overlaps += t_overlaps.elapsed().as_secs_f64();
         self.current = Some(Point { q: q.to_vec(), basis, excited, vectors, gradients: None, displaced: None });
         Ok(())
     }
@@ -215,6 +259,7 @@ impl MrsfBackend {
         if point.gradients.is_some() {
             return Ok(());
         }
+        let started = std::time::Instant::now();
         let n = spec.singlets;
         let guess = guess_from(&point.vectors, &spec.calculation);
         let indices: Vec<usize> = (0..n).collect();
@@ -245,6 +290,7 @@ impl MrsfBackend {
             .collect();
         point.gradients = Some(gradients);
         point.displaced = Some(displaced);
+        self.timings.gradients += started.elapsed().as_secs_f64();
         Ok(())
     }
 
@@ -298,9 +344,11 @@ impl Backend for MrsfBackend {
             self.new_point(q)?;
             if request.overlaps {
                 if let Some(prev) = &self.previous {
+                    let t = std::time::Instant::now();
                     let p = self.current.as_ref().expect("just computed");
                     let s = state_overlaps(&prev.vectors, &prev.basis, &p.vectors, &p.basis).map_err(failed)?;
                     self.results.overlaps = Some(s);
+                    self.timings.overlaps += t.elapsed().as_secs_f64();
                 }
             }
         }
@@ -308,7 +356,9 @@ impl Backend for MrsfBackend {
             self.displacements()?;
         }
         if request.couplings && self.results.couplings.is_none() {
+            let t = std::time::Instant::now();
             self.results.couplings = Some(self.couplings()?);
+            self.timings.couplings += t.elapsed().as_secs_f64();
         }
         let point = self.current.as_ref().expect("a current point");
         if let Some(all) = &point.gradients {
