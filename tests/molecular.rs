@@ -356,3 +356,27 @@ fn demo_pipeline_in_reduced_form() {
     stdout_of(&["-q", "analyze", &d("run"), "--out", &d("analysis")]);
     assert!(dir.join("analysis/populations.csv").exists());
 }
+
+// Source: the brief's failure rule (a failing calculation ends one
+// trajectory cleanly with its reason, the run says how many failed and
+// exits non-zero, nothing is lost): an SCF that cannot meet its threshold
+// (1e-15, below rounding) fails the trajectory at its first geometry with
+// an SCF message, recorded in the part file.
+#[test]
+fn scf_failure_ends_the_trajectory_cleanly() {
+    let dir = common::scratch("molecular", "scf-fail");
+    let ens = methylene_ensemble(&dir, 1, 2.0, 1);
+    let run = dir.join("run");
+    let out = Command::new(BIN)
+        .args(["-q", "run", ens.to_str().unwrap(), "-o", run.to_str().unwrap(), "--set", "model.scf_tolerance=1e-15"])
+        .output()
+        .unwrap();
+    let text = format!("{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    assert_ne!(out.status.code(), Some(0), "{text}");
+    assert!(text.contains("1 failed"), "{text}");
+    let t = &common::read_all(&part(&run))[0];
+    match &t.status {
+        flipswarm::dynamics::Status::Failed { reason, .. } => assert!(reason.contains("SCF"), "{reason}"),
+        other => panic!("status {other:?}"),
+    }
+}
