@@ -439,6 +439,35 @@ fn build_molecule(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
         jk: JkOptions::default(),
         davidson: DavidsonOptions { residual_tolerance: response_tol, ..DavidsonOptions::default() },
     };
+    // Refuse what cannot fit before any work: one calculation must fit in
+    // the available memory; the displaced calculations of a gradient run in
+    // parallel, so the log gives the total for the machine's cores too.
+    let grid_spec = match &calculation.potential {
+        Potential::KohnSham { grid, .. } => Some(grid),
+        Potential::HartreeFock => None,
+    };
+    let estimate = crate::electronic::qc::estimate::memory(
+        basis.nbf,
+        calculation.molecule.len(),
+        electrons.alpha + electrons.beta,
+        grid_spec,
+        singlets as usize,
+        &calculation.jk,
+    );
+    if let Some(available) = crate::electronic::qc::estimate::available_memory() {
+        if estimate.total() > available {
+            return Err(r.error(
+                "model.basis",
+                format!(
+                    "one calculation of {} basis functions needs about {estimate}, more than the {} available; use a smaller basis or grid",
+                    basis.nbf,
+                    crate::electronic::qc::estimate::human(available)
+                ),
+            ));
+        }
+        let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+        tracing::debug!("memory per calculation about {estimate}; {cores} in parallel need {}", crate::electronic::qc::estimate::human(cores * estimate.total()));
+    }
     let label = format!("MRSF-TDDFT {}/{}", functional.to_uppercase(), basis_name);
     let spec = MolecularSpec { calculation, singlets: singlets as usize, gradients: GradientMethod::Numerical { step }, label };
     Ok(ModelSpec::Molecule { path, spec: std::sync::Arc::new(spec) })

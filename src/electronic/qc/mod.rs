@@ -56,6 +56,7 @@ pub mod backend;
 pub mod basis;
 pub mod boys;
 pub mod dft;
+pub mod estimate;
 pub mod gradient;
 pub mod integrals;
 pub mod optimize;
