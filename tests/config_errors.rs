@@ -162,3 +162,42 @@ fn lvc_model_file_errors_name_the_entry() {
     assert!(err.contains("m.toml") && err.contains("line 3") && err.contains("frequency"), "{err}");
     std::fs::remove_dir_all(&dir).ok();
 }
+
+/// Molecule ensembles: each bad entry is refused naming the key and what is
+/// wrong (the first good file loads and tracks the requested singlets).
+#[test]
+fn molecule_model_errors_name_the_key() {
+    let dir = std::env::temp_dir().join(format!("flipswarm-cfg-mol-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    std::fs::write(dir.join("ch2.xyz"), "3\nmethylene\nC 0 0 0\nH 0 0.86 0.65\nH 0 -0.86 0.65\n").unwrap();
+    std::fs::write(dir.join("bad.xyz"), "3\nmethylene\nC 0 0 0\nH 0 0.86\nH 0 -0.86 0.65\n").unwrap();
+    let good = "[model]\nkind = \"molecule\"\ngeometry = \"ch2.xyz\"\nbasis = \"STO-3G\"\nsinglets = 2\n[start]\nstate = 1\n[dynamics]\ntimestep_fs = 0.5\nduration_fs = 5.0\n[swarm]\ntrajectories = 2\nseed = 1\n";
+    let c = load_str(good, "mol.toml", &dir, &[]).unwrap();
+    assert_eq!(c.model.n_states(), 2);
+    assert_eq!(c.model.n_dof(), 9);
+    let cases: &[(&[&str], &str, &str)] = &[
+        (&["model.geometry=\"missing.xyz\""], "model.geometry", "missing.xyz"),
+        (&["model.geometry=\"bad.xyz\""], "model.geometry", "line 4"),
+        (&["model.basis=\"6-31Z\""], "model.basis", "6-31Z"),
+        (&["model.functional=\"nonsense\""], "model.functional", "nonsense"),
+        (&["model.functional=\"hf\"", "model.grid=\"fine\""], "model.grid", "not used"),
+        (&["model.grid=\"huge\""], "model.grid", "huge"),
+        (&["model.singlets=0"], "model.singlets", "between 1 and 50"),
+        (&["model.charge=0.5"], "model.charge", "whole number"),
+        (&["model.charge=1"], "model.charge", "triplet"),
+        (&["model.gradient_step_bohr=0.5"], "model.gradient_step_bohr", "too large"),
+        (&["model.scf_tolerance=0.1"], "model.scf_tolerance", "too loose"),
+        (&["start.sampling=\"wigner\""], "start.sampling", "flipswarm sample"),
+        (&["start.position_bohr=1.0"], "start.position_bohr", "not used by molecules"),
+        (&["model.file=\"x.toml\""], "model.file", "not used by model kind"),
+        (&["start.state=2"], "start.state", "does not exist"),
+    ];
+    for (overrides, key, says) in cases {
+        let o: Vec<String> = overrides.iter().map(|s| s.to_string()).collect();
+        let err = load_str(good, "mol.toml", &dir, &o).unwrap_err();
+        let shown = err.to_string();
+        assert_eq!(err.key.as_deref(), Some(*key), "{overrides:?}: {shown}");
+        assert!(shown.contains(says), "{overrides:?}: `{shown}` lacks `{says}`");
+    }
+    std::fs::remove_dir_all(&dir).ok();
+}
