@@ -161,6 +161,18 @@ impl KohnSham {
         &self.grid
     }
 
+    /// The exchange–correlation potentials (V^α_xc, V^β_xc) (AO) of any pair
+    /// of spin densities, spin-polarised (zero for an exact-exchange-only
+    /// functional). Used by the response gradients.
+    pub(crate) fn xc_potential(
+        &self,
+        da: &DMatrix<f64>,
+        db: &DMatrix<f64>,
+    ) -> Result<(DMatrix<f64>, DMatrix<f64>), ScfError> {
+        let p = self.xc(da, db, false)?;
+        Ok((p.va, p.vb))
+    }
+
     fn xc(&self, da: &DMatrix<f64>, db: &DMatrix<f64>, restricted: bool) -> Result<XcParts, ScfError> {
         let n = self.nbf;
         if self.functional.is_hf_only() {

@@ -10,8 +10,9 @@
 //!   SCF energy or any MRSF-TDDFT state ([`numerical::Target`]); several
 //!   states from one set of displaced calculations with
 //!   [`numerical::ScfEnergy::numerical_state_gradients`]
-//!   ([`numerical::central_differences_many`]). Analytic MRSF gradients
-//!   (Z-vector) are not written yet.
+//!   ([`numerical::central_differences_many`]).
+//! * [`mrsf`]: analytic gradients of MRSF-TDDFT states by the Z-vector
+//!   method ([`mrsf::mrsf_state_gradients`]; ROHF and ROKS references).
 //!
 //! Gradients are returned per atom, `[dE/dx, dE/dy, dE/dz]` in Eh/bohr, in
 //! the atom order of the basis (forces are their negatives).
@@ -20,6 +21,7 @@
 //! energies, against PySCF analytic gradients (fixtures made by
 //! `scripts/reference/scf_gradients.py`) and against exact invariances.
 
+pub mod mrsf;
 pub mod numerical;
 pub mod scf;
 pub mod xc;
@@ -75,6 +77,19 @@ pub enum GradientError {
     /// The excited-state response failed.
     #[error("excited states: {0}")]
     Response(String),
+    /// The reference is not a triplet ROHF/ROKS determinant.
+    #[error("not a triplet ROHF/ROKS reference: {0}")]
+    NotTripletReference(String),
+    /// The Z-vector (coupled-perturbed ROKS) equations did not converge.
+    #[error("Z-vector equations not converged after {iterations} iterations (residual norms {residuals:?}, tolerance {tolerance:e})")]
+    ZVectorNotConverged {
+        /// Iterations done.
+        iterations: usize,
+        /// Residual norm per state at the end.
+        residuals: Vec<f64>,
+        /// The requested tolerance.
+        tolerance: f64,
+    },
 }
 
 impl From<KsRunError> for GradientError {

@@ -1855,3 +1855,175 @@ pub fn jk_gradient(
     }
     Ok(grad)
 }
+
+/// Densities of one energy expression for [`eri_gradient_pairs`]:
+///   E = Σ_{(c,P,Q) ∈ coulomb} c Σ_abcd (ab|cd) P_ab Q_cd
+///     + Σ_{(c,P,Q) ∈ exchange} c Σ_abcd (ab|cd) P_ac Q_bd,
+/// for any (not necessarily symmetric) AO matrices P, Q.
+#[derive(Clone, Debug, Default)]
+pub struct DensityPairs {
+    /// Coulomb-type pairs (coefficient, P, Q).
+    pub coulomb: Vec<(f64, DMatrix<f64>, DMatrix<f64>)>,
+    /// Exchange-type pairs (coefficient, P, Q).
+    pub exchange: Vec<(f64, DMatrix<f64>, DMatrix<f64>)>,
+}
+
+/// Nuclear gradient (fixed AO matrices) of several energy expressions of the
+/// [`DensityPairs`] form from one pass over the bra-derivative integrals; one
+/// per-atom gradient per group.
+///
+/// The integrals are invariant under the 8 index permutations, so only the
+/// symmetrised Γ_abcd counts: for a Coulomb pair ½(P̄_ab Q̄_cd + Q̄_ab P̄_cd)
+/// with P̄ the symmetric part; for an exchange pair the contraction splits
+/// into (P_s, Q_s) and (P_a, Q_a) (symmetric/antisymmetric parts; the mixed
+/// terms cancel under the (ab)↔(cd) exchange), each with
+/// Γ = ¼(P_ac Q_bd + P_bc Q_ad + P_ad Q_bc + P_bd Q_ac). Then, as in
+/// [`jk_gradient`], dE/dR_K = 4 Σ_{a on K} Σ_bcd (∂a/∂A b|cd) Γ_abcd.
+pub fn eri_gradient_pairs(
+    basis: &BasisSet,
+    groups: &[DensityPairs],
+) -> Result<Vec<Vec<[f64; 3]>>, TwoElectronError> {
+    let n = basis.nbf;
+    // Flattened, split pairs per group: coulomb (c, Ps, Qs); exchange (c, P, Q)
+    // with P, Q both symmetric or both antisymmetric.
+    type Flat = (f64, Vec<f64>, Vec<f64>);
+    let mut flat: Vec<(Vec<Flat>, Vec<Flat>)> = Vec::with_capacity(groups.len());
+    let mut index = 0;
+    for g in groups {
+        let mut coul = Vec::new();
+        let mut exch = Vec::new();
+        for (c, p, q) in &g.coulomb {
+            let d = check_densities(n, &[p.clone(), q.clone()]).map_err(|e| match e {
+                TwoElectronError::DensityShape { rows, cols, nbf, .. } => {
+                    TwoElectronError::DensityShape { index, rows, cols, nbf }
+                }
+            })?;
+            index += 1;
+            let sym = |m: &Vec<f64>| -> Vec<f64> {
+                (0..n * n).map(|x| 0.5 * (m[x] + m[(x % n) * n + x / n])).collect()
+            };
+            coul.push((*c, sym(&d[0]), sym(&d[1])));
+        }
+        for (c, p, q) in &g.exchange {
+            let d = check_densities(n, &[p.clone(), q.clone()]).map_err(|e| match e {
+                TwoElectronError::DensityShape { rows, cols, nbf, .. } => {
+                    TwoElectronError::DensityShape { index, rows, cols, nbf }
+                }
+            })?;
+            index += 1;
+            let part = |m: &Vec<f64>, s: f64| -> Vec<f64> {
+                (0..n * n).map(|x| 0.5 * (m[x] + s * m[(x % n) * n + x / n])).collect()
+            };
+            let (ps, qs) = (part(&d[0], 1.0), part(&d[1], 1.0));
+            exch.push((*c, ps, qs));
+            let (pa, qa) = (part(&d[0], -1.0), part(&d[1], -1.0));
+            if pa.iter().any(|v| *v != 0.0) && qa.iter().any(|v| *v != 0.0) {
+                exch.push((*c, pa, qa));
+            }
+        }
+        flat.push((coul, exch));
+    }
+    let ng = groups.len();
+    let raws: Vec<RawShell> = basis.shells.iter().map(RawShell::from_shell).collect();
+    let ns = raws.len();
+    let dp = deriv_pairs(&raws);
+    let (kets, schwarz_kl) = single_shell_pairs(basis, &raws);
+    let ao: Vec<(usize, usize)> = basis
+        .shells
+        .iter()
+        .zip(&basis.offsets)
+        .map(|(s, &o)| (o, s.nfunc()))
+        .collect();
+    let atoms: Vec<usize> = basis.shells.iter().map(|s| s.atom).collect();
+    let per_i: Vec<Vec<[f64; 3]>> = (0..ns)
+        .into_par_iter()
+        .map(|i| {
+            let mut g = vec![[0.0; 3]; ng];
+            let mut w = EriWork::new();
+            let mut buf = Vec::new();
+            let mut raw3 = [Vec::new(), Vec::new(), Vec::new()];
+            let mut gam = Vec::new();
+            for j in 0..ns {
+                for k in 0..ns {
+                    for l in 0..=k {
+                        if schwarz_kl[pair_index(k, l)] * schwarz_kl[pair_index(i, j)] < 1e-14 {
+                            continue;
+                        }
+                        let ket = &kets[pair_index(k, l)];
+                        raw_bra_derivative_quartet(
+                            raws[i].l,
+                            raws[j].l,
+                            &dp.up[i * ns + j],
+                            dp.down[i * ns + j].as_ref(),
+                            ket,
+                            &mut w,
+                            &mut buf,
+                            &mut raw3,
+                        );
+                        let info = [
+                            (basis.shells[i].l, basis.shells[i].pure, 1),
+                            (basis.shells[j].l, basis.shells[j].pure, 1),
+                            (basis.shells[k].l, basis.shells[k].pure, 1),
+                            (basis.shells[l].l, basis.shells[l].pure, 1),
+                        ];
+                        let (oi, ni) = ao[i];
+                        let (oj, nj) = ao[j];
+                        let (ok, nk) = ao[k];
+                        let (ol, nl) = ao[l];
+                        let kl_factor = if k == l { 1.0 } else { 2.0 };
+                        // Γ of every group for this block, in the order of w.out.
+                        let nblk = ni * nj * nk * nl;
+                        gam.clear();
+                        gam.resize(ng * nblk, 0.0);
+                        for (gi, (coul, exch)) in flat.iter().enumerate() {
+                            let gg = &mut gam[gi * nblk..(gi + 1) * nblk];
+                            let mut x = 0;
+                            for a in oi..oi + ni {
+                                for b in oj..oj + nj {
+                                    for c in ok..ok + nk {
+                                        for e in ol..ol + nl {
+                                            let mut s = 0.0;
+                                            for (cf, p, q) in coul {
+                                                s += cf * 0.5 * (p[a * n + b] * q[c * n + e] + q[a * n + b] * p[c * n + e]);
+                                            }
+                                            for (cf, p, q) in exch {
+                                                s += cf
+                                                    * 0.25
+                                                    * (p[a * n + c] * q[b * n + e]
+                                                        + p[b * n + c] * q[a * n + e]
+                                                        + p[a * n + e] * q[b * n + c]
+                                                        + p[b * n + e] * q[a * n + c]);
+                                            }
+                                            gg[x] = s;
+                                            x += 1;
+                                        }
+                                    }
+                                }
+                            }
+                        }
+                        for d in 0..3 {
+                            std::mem::swap(&mut w.raw, &mut raw3[d]);
+                            transform_quartet(info, &mut w);
+                            std::mem::swap(&mut w.raw, &mut raw3[d]);
+                            for (gi, gv) in g.iter_mut().enumerate() {
+                                let gg = &gam[gi * nblk..(gi + 1) * nblk];
+                                let s: f64 = w.out[..nblk].iter().zip(gg).map(|(v, y)| v * y).sum();
+                                gv[d] += 4.0 * kl_factor * s;
+                            }
+                        }
+                    }
+                }
+            }
+            g
+        })
+        .collect();
+    let mut grad = vec![vec![[0.0; 3]; basis.natoms()]; ng];
+    for (i, g) in per_i.iter().enumerate() {
+        for (gi, gv) in g.iter().enumerate() {
+            for d in 0..3 {
+                grad[gi][atoms[i]][d] += gv[d];
+            }
+        }
+    }
+    Ok(grad)
+}

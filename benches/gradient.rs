@@ -1,0 +1,142 @@
+//! Cost of analytic MRSF-TDDFT state gradients, printed, never asserted
+//! (`cargo bench --bench gradient`).
+//!
+//! Workload: triplet formaldehyde (generic off-symmetry geometry) in 6-31G*,
+//! ROHF and ROKS BH&HLYP ("coarse" grid) references, MRSF with 2 singlets
+//! and 1 triplet. Per reference, in the same run: the SCF, the MRSF energy
+//! (response solve), the analytic S1 gradient (Z-vector and derivative
+//! integrals; the SCF and response are not included) and the central-
+//! difference S1 gradient (6N displaced SCF + MRSF calculations). Figures of
+//! merit: analytic / MRSF energy (goal ≤ 2) and numerical / analytic.
+
+use flipswarm::chem::{Element, Molecule};
+use flipswarm::electronic::qc::basis::BasisSetData;
+use flipswarm::electronic::qc::dft::grid::GridSpec;
+use flipswarm::electronic::qc::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
+use flipswarm::electronic::qc::gradient::numerical::{ScfEnergy, Target};
+use flipswarm::electronic::qc::gradient::scf::Potential;
+use flipswarm::electronic::qc::integrals::JkOptions;
+use flipswarm::electronic::qc::response::davidson::DavidsonOptions;
+use flipswarm::electronic::qc::response::{self, Method, StateRequest};
+use flipswarm::electronic::qc::scf::fock::JkEngine;
+use flipswarm::electronic::qc::scf::{Electrons, Guess, Reference, ScfOptions};
+use std::time::Instant;
+
+fn formaldehyde() -> (Molecule, Vec<[f64; 3]>) {
+    let atoms: [(u64, [f64; 3]); 4] = [
+        (6, [0.0, 0.0, -1.0]),
+        (8, [0.0, 0.02, 1.28]),
+        (1, [0.0, 1.77, -2.08]),
+        (1, [0.03, -1.76, -2.1]),
+    ];
+    let els: Vec<Element> = atoms
+        .iter()
+        .map(|(z, _)| Element::from_atomic_number(*z).unwrap())
+        .collect();
+    let pos: Vec<[f64; 3]> = atoms.iter().map(|(_, p)| *p).collect();
+    (
+        Molecule::from_elements_positions_bohr(&els, &pos).unwrap(),
+        pos,
+    )
+}
+
+fn run(name: &str, potential: Potential) {
+    let (mol, pos) = formaldehyde();
+    let calc = ScfEnergy {
+        molecule: mol,
+        basis: BasisSetData::builtin("6-31G*").unwrap(),
+        harmonics: None,
+        electrons: Electrons::from_charge_multiplicity(16, 0, 3).unwrap(),
+        reference: Reference::RestrictedOpen,
+        potential: potential.clone(),
+        scf: ScfOptions {
+            gradient_tolerance: 1e-10,
+            energy_tolerance: 1e-12,
+            max_iterations: 300,
+            ..ScfOptions::default()
+        },
+        jk: JkOptions::default(),
+        davidson: DavidsonOptions {
+            residual_tolerance: 1e-8,
+            energy_tolerance: 1e-12,
+            ..DavidsonOptions::default()
+        },
+    };
+    let t = Instant::now();
+    let ground = calc
+        .compute(&pos, &Guess::AtomicSuperposition, &Target::Ground)
+        .expect("SCF");
+    let t_scf = t.elapsed().as_secs_f64();
+    let cx = match &potential {
+        Potential::HartreeFock => 1.0,
+        Potential::KohnSham { .. } => 0.5,
+    };
+    let t = Instant::now();
+    let mut engine = JkEngine::new(&ground.basis, calc.jk.clone());
+    let request = StateRequest {
+        method: Method::Mrsf,
+        singlets: 2,
+        triplets: 1,
+    };
+    let x = response::excited_states(
+        &ground.basis,
+        &ground.scf,
+        cx,
+        &mut engine,
+        request,
+        &calc.davidson,
+    )
+    .expect("MRSF");
+    let t_mrsf = t.elapsed().as_secs_f64();
+    let s1 = (0..x.states.len())
+        .find(|&i| x.label(i).unwrap() == "S1")
+        .unwrap();
+    let t = Instant::now();
+    let g = mrsf_state_gradients(
+        &ground.basis,
+        &ground.scf,
+        &x,
+        &[s1],
+        &potential,
+        &calc.jk,
+        &ZVectorOptions::default(),
+    )
+    .expect("analytic gradient");
+    let t_an = t.elapsed().as_secs_f64();
+    let t = Instant::now();
+    let target = Target::Mrsf {
+        label: "S1".into(),
+        singlets: 2,
+        triplets: 1,
+    };
+    let n = calc
+        .numerical_gradient(&pos, 1e-3, &target, Some(&ground.scf))
+        .expect("numerical gradient");
+    let t_num = t.elapsed().as_secs_f64();
+    let diff = g[0]
+        .iter()
+        .flatten()
+        .zip(n.iter().flatten())
+        .map(|(a, b)| (a - b).abs())
+        .fold(0.0, f64::max);
+    println!(
+        "{name} formaldehyde 6-31G* ({} functions): SCF {t_scf:.3} s | MRSF energy {t_mrsf:.3} s | \
+         analytic S1 gradient {t_an:.3} s ({:.2} × MRSF energy, {:.2} × SCF + MRSF) | \
+         numerical S1 gradient {t_num:.3} s ({:.1} × analytic) | max |analytic − numerical| {diff:.1e} Eh/bohr",
+        ground.basis.nbf,
+        t_an / t_mrsf,
+        t_an / (t_scf + t_mrsf),
+        t_num / t_an
+    );
+}
+
+fn main() {
+    run("ROHF", Potential::HartreeFock);
+    run(
+        "ROKS BH&HLYP (coarse grid)",
+        Potential::KohnSham {
+            functional: "bhhlyp".into(),
+            grid: GridSpec::level("coarse").unwrap(),
+        },
+    );
+}
