@@ -1,6 +1,7 @@
 //! Cost of one MRSF-TDDFT surface-hopping step, printed, never asserted
 //! (`scripts/bench`): ethylene (BH&HLYP, coarse grid) in three basis sets,
-//! a start and `STEPS` steps of one trajectory on S1 in the same run, with
+//! analytic gradients (and, as the reference run, numerical ones for
+//! 6-31G), a start and `STEPS` steps of one trajectory on S1 each, with
 //! the breakdown the back end records (SCF and response at the step's
 //! geometry, overlaps with the previous step, the 6N displaced calculations
 //! of the numerical gradient) and the engine's share (everything else: Verlet,
@@ -23,15 +24,17 @@ fn main() {
         .expect("ethylene geometry");
     println!("MRSF-TDDFT dynamics step, ethylene BH&HLYP (coarse grid), 3 singlets, start + {STEPS} steps on S1");
     println!(
-        "{:>9} {:>4} {:>10} {:>9} {:>9} {:>9} {:>10} {:>10} {:>12} {:>11}",
-        "basis", "nbf", "step (s)", "SCF", "response", "overlaps", "gradient", "engine", "engine share", "step/SCF"
+        "{:>15} {:>4} {:>10} {:>9} {:>9} {:>9} {:>10} {:>10} {:>12} {:>11}",
+        "basis/gradient", "nbf", "step (s)", "SCF", "response", "overlaps", "gradient", "engine", "engine share", "step/SCF"
     );
-    for basis in ["STO-3G", "6-31G", "6-31G*"] {
+    let mut reference = None;
+    for (basis, gradients) in [("6-31G", "numerical"), ("STO-3G", "analytic"), ("6-31G", "analytic"), ("6-31G*", "analytic")] {
         let text = format!(
             r#"[model]
 kind = "molecule"
 geometry = "ethylene.xyz"
 basis = "{basis}"
+gradients = "{gradients}"
 grid = "coarse"
 singlets = 3
 [start]
@@ -66,8 +69,8 @@ seed = 3
         let per = |x: f64| x / (STEPS + 1) as f64;
         let engine = (wall - tm.total()).max(0.0);
         println!(
-            "{:>9} {:>4} {:>10.2} {:>9.3} {:>9.3} {:>9.4} {:>10.2} {:>10.5} {:>11.4}% {:>11.1}",
-            basis,
+            "{:>15} {:>4} {:>10.2} {:>9.3} {:>9.3} {:>9.4} {:>10.2} {:>10.5} {:>11.4}% {:>11.1}",
+            format!("{basis}/{}", &gradients[..4]),
             nbf,
             per(wall),
             per(tm.scf),
@@ -78,6 +81,12 @@ seed = 3
             100.0 * engine / wall,
             wall / tm.scf
         );
+        if basis == "6-31G" {
+            match reference {
+                None => reference = Some(per(wall)),
+                Some(r) => println!("{:>15} 6-31G step: numerical / analytic gradients = {:.1}×", "", r / per(wall)),
+            }
+        }
     }
     let _ = std::fs::remove_dir_all(&dir);
 }

@@ -1,5 +1,5 @@
 //! `flipswarm optimize`: minimise the energy of the SCF ground state (analytic
-//! gradients) or of an MRSF-TDDFT state (numerical gradients) in Cartesian
+//! gradients) or of an MRSF-TDDFT state (analytic MRSF gradients) in Cartesian
 //! coordinates, and write the optimised geometry as XYZ (Å).
 //!
 //! Convergence criteria (common practice, see
@@ -57,12 +57,12 @@ pub struct OptimizeArgs {
     #[arg(long, default_value = "fine")]
     pub grid: String,
     /// Optimise this MRSF-TDDFT state (S0, S1, …, T1, …) of the triplet
-    /// ROKS/ROHF reference instead of the SCF energy (numerical gradients).
+    /// ROKS/ROHF reference instead of the SCF energy (analytic MRSF gradients).
     #[arg(long)]
     pub state: Option<String>,
     /// Search the minimum-energy crossing of two MRSF states of the same
-    /// spin instead, e.g. `S0,S1` (penalty-function method, numerical
-    /// gradients); the gap and both energies are reported.
+    /// spin instead, e.g. `S0,S1` (penalty-function method, analytic
+    /// gradients unless --numerical); the gap and both energies are reported.
     #[arg(long, value_name = "LOWER,UPPER", conflicts_with = "state")]
     pub crossing: Option<String>,
     /// Gap at which a crossing search stops (Eh).
@@ -74,7 +74,7 @@ pub struct OptimizeArgs {
     /// MRSF triplet roots to solve for with --state.
     #[arg(long, default_value_t = 1)]
     pub triplets: usize,
-    /// Use central-difference gradients also for the SCF ground state.
+    /// Use central-difference gradients instead of analytic ones.
     #[arg(long)]
     pub numerical: bool,
     /// Central-difference step (bohr).
@@ -157,7 +157,7 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
         eprintln!("error: --step and --criteria-scale must be positive");
         return exit::INPUT;
     }
-    let gradient = if args.numerical || target != Target::Ground {
+    let gradient = if args.numerical {
         GradientKind::Numerical(args.step)
     } else {
         GradientKind::Analytic
@@ -206,7 +206,8 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
             return exit::INPUT;
         }
         let copts = CrossingOptions { stage: opts, gap_tolerance: args.gap_tolerance, ..CrossingOptions::default() };
-        return match minimize_mrsf_crossing(&calc, &start, lower, upper, args.singlets, args.triplets, args.step, &copts) {
+        let kind = if args.numerical { GradientKind::Numerical(args.step) } else { GradientKind::Analytic };
+        return match minimize_mrsf_crossing(&calc, &start, lower, upper, args.singlets, args.triplets, kind, &copts) {
             Ok(c) => {
                 let comment = format!("{what}: E({lower}) = {:.10} Eh, E({upper}) = {:.10} Eh, gap {:.2e} Eh", c.states.lower, c.states.upper, c.gap);
                 if let Err(e) = write_geometry(&args.output, &mol, &c.positions, &comment) {

@@ -74,7 +74,8 @@ pub const SCHEMA: &[KeyDoc] = &[
     KeyDoc { path: "model.functional", meaning: "molecule: functional of the triplet ROKS reference (bhhlyp, b3lyp, pbe0, hf for ROHF, or libxc names)", default: "bhhlyp" },
     KeyDoc { path: "model.grid", meaning: "molecule: integration grid level (coarse, medium, fine, ultrafine)", default: "medium" },
     KeyDoc { path: "model.singlets", meaning: "molecule: tracked MRSF singlets S0 … S(n−1) (the states of the dynamics)", default: "3" },
-    KeyDoc { path: "model.gradient_step_bohr", meaning: "molecule: central-difference step of gradients and coupling vectors, bohr", default: "0.001" },
+    KeyDoc { path: "model.gradients", meaning: "molecule: analytic (MRSF Z-vector gradients) or numerical (central differences of the state energies)", default: "analytic" },
+    KeyDoc { path: "model.gradient_step_bohr", meaning: "molecule: central-difference step of numerical gradients and of coupling vectors, bohr", default: "0.001" },
     KeyDoc { path: "model.scf_tolerance", meaning: "molecule: SCF convergence, largest orbital-gradient element", default: "1e-8" },
     KeyDoc { path: "model.response_tolerance", meaning: "molecule: MRSF eigensolver residual norm per root", default: "1e-6" },
     KeyDoc { path: "start.sampling", meaning: "fixed (one phase-space point), wigner (Gaussian wavepacket in 1D; harmonic ground state per mode for lvc) or file (from start.initial_conditions)", default: "fixed" },
@@ -328,6 +329,7 @@ const MODEL_KEYS: &[(&str, &[&str])] = &[
     ("model.functional", &["molecule"]),
     ("model.grid", &["molecule"]),
     ("model.singlets", &["molecule"]),
+    ("model.gradients", &["molecule"]),
     ("model.gradient_step_bohr", &["molecule"]),
     ("model.scf_tolerance", &["molecule"]),
     ("model.response_tolerance", &["molecule"]),
@@ -469,7 +471,11 @@ fn build_molecule(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
         tracing::debug!("memory per calculation about {estimate}; {cores} in parallel need {}", crate::electronic::qc::estimate::human(cores * estimate.total()));
     }
     let label = format!("MRSF-TDDFT {}/{}", functional.to_uppercase(), basis_name);
-    let spec = MolecularSpec { calculation, singlets: singlets as usize, gradients: GradientMethod::Numerical { step }, label };
+    let gradients = match r.choice("model.gradients", &["analytic", "numerical"])?.as_deref() {
+        Some("numerical") => GradientMethod::Numerical { step },
+        _ => GradientMethod::Analytic { zvector: Default::default(), coupling_step: step },
+    };
+    let spec = MolecularSpec { calculation, singlets: singlets as usize, gradients, label };
     Ok(ModelSpec::Molecule { path, spec: std::sync::Arc::new(spec) })
 }
 

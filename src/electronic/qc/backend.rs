@@ -15,12 +15,14 @@
 //!    the coupling vectors.
 //!
 //! # Gradients and coupling vectors
-//! Gradients are central differences of the response energies
-//! ([`GradientMethod::Numerical`]): one set of 6N displaced calculations
-//! gives the gradients of *all* tracked states, so a hop to another state
-//! at the same geometry costs nothing more. The same displaced calculations
-//! give the nonadiabatic coupling vectors by finite differences of state
-//! overlaps,
+//! Gradients are analytic by default ([`GradientMethod::Analytic`]: the
+//! Z-vector gradients of [`mrsf_state_gradients`], computed for the states
+//! the engine asks for, once per geometry and state), or central
+//! differences of the response energies ([`GradientMethod::Numerical`]):
+//! one set of 6N displaced calculations gives the gradients of *all*
+//! tracked states. Nonadiabatic coupling vectors, asked for only at hop
+//! attempts, are finite differences of state overlaps at the same kind of
+//! displaced geometries (reused when the numerical gradients made them),
 //!
 //! ```text
 //!   d_IJ,k ≈ [<ψ_I(R)|ψ_J(R + h e_k)> − <ψ_I(R)|ψ_J(R − h e_k)>] / 2h,
@@ -28,8 +30,7 @@
 //!
 //! with the phase of each displaced state aligned to its undisplaced self
 //! and the result antisymmetrised (common practice), in the raw phases of
-//! the states at R. They are computed only when the engine asks (hop
-//! attempts).
+//! the states at R.
 //!
 //! # Exact restart
 //! The snapshot holds the orbitals and state amplitudes of the last
@@ -39,6 +40,7 @@
 //! machine and thread count).
 
 use super::basis::BasisSet;
+use super::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
 use super::gradient::numerical::ScfEnergy;
 use super::response::overlap::{state_overlaps, StateVectors};
 use super::response::tracking::ReferenceCharacter;
@@ -52,13 +54,32 @@ use rayon::prelude::*;
 use std::sync::Arc;
 
 /// How state gradients are obtained.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq)]
 pub enum GradientMethod {
     /// Central differences of the response energies with this step (bohr).
     Numerical {
         /// Displacement h (bohr).
         step: f64,
     },
+    /// Analytic MRSF gradients ([`mrsf_state_gradients`]), one state at a
+    /// time as the engine asks; coupling vectors still come from displaced
+    /// state overlaps with `coupling_step` (bohr), at hop attempts only.
+    Analytic {
+        /// Z-vector solver options.
+        zvector: ZVectorOptions,
+        /// Displacement of the coupling vectors (bohr).
+        coupling_step: f64,
+    },
+}
+
+impl GradientMethod {
+    /// The displacement of finite differences (gradients or couplings).
+    pub fn step(&self) -> f64 {
+        match self {
+            GradientMethod::Numerical { step } => *step,
+            GradientMethod::Analytic { coupling_step, .. } => *coupling_step,
+        }
+    }
 }
 
 /// Everything that defines the electronic structure of a molecular run.
@@ -90,10 +111,11 @@ impl MolecularSpec {
 struct Point {
     q: Vec<f64>,
     basis: BasisSet,
+    scf: ScfResult,
     excited: ExcitedStates,
     vectors: StateVectors,
-    /// Gradients of every tracked state, when computed.
-    gradients: Option<Vec<Vec<f64>>>,
+    /// Gradients of the tracked states computed so far.
+    gradients: Vec<Option<Vec<f64>>>,
     /// Displaced calculations (coordinate k: 2k = +h, 2k+1 = −h).
     displaced: Option<Vec<(BasisSet, StateVectors)>>,
 }
@@ -246,17 +268,19 @@ impl MrsfBackend {
             ..Results::default()
         };
         self.timings.overlaps += t_overlaps.elapsed().as_secs_f64();
-        self.current = Some(Point { q: q.to_vec(), basis, excited, vectors, gradients: None, displaced: None });
+        self.current = Some(Point { q: q.to_vec(), basis, scf, excited, vectors, gradients: vec![None; n], displaced: None });
         Ok(())
     }
 
-    /// The 6N displaced calculations: gradients of all tracked states, and
-    /// the displaced states for coupling vectors.
+    /// The 6N displaced calculations: the displaced states (for coupling
+    /// vectors) and, with numerical gradients, the gradients of all tracked
+    /// states.
     fn displacements(&mut self) -> Result<(), BackendError> {
-        let GradientMethod::Numerical { step } = self.spec.gradients;
+        let step = self.spec.gradients.step();
+        let numerical = matches!(self.spec.gradients, GradientMethod::Numerical { .. });
         let spec = self.spec.clone();
         let point = self.current.as_mut().expect("a current point");
-        if point.gradients.is_some() {
+        if point.displaced.is_some() {
             return Ok(());
         }
         let started = std::time::Instant::now();
@@ -284,18 +308,47 @@ impl MrsfBackend {
             energies.push(e);
             displaced.push((b, v));
         }
-        let dof = point.q.len();
-        let gradients: Vec<Vec<f64>> = (0..n)
-            .map(|s| (0..dof).map(|k| (energies[2 * k][s] - energies[2 * k + 1][s]) / (2.0 * step)).collect())
-            .collect();
-        point.gradients = Some(gradients);
+        if numerical {
+            let dof = point.q.len();
+            for (s, g) in point.gradients.iter_mut().enumerate() {
+                *g = Some((0..dof).map(|k| (energies[2 * k][s] - energies[2 * k + 1][s]) / (2.0 * step)).collect());
+            }
+        }
         point.displaced = Some(displaced);
         self.timings.gradients += started.elapsed().as_secs_f64();
         Ok(())
     }
 
+    /// Gradients of `states` at the current point (computed once each).
+    fn gradients(&mut self, states: &[usize]) -> Result<(), BackendError> {
+        let missing: Vec<usize> = {
+            let point = self.current.as_ref().expect("a current point");
+            let mut m: Vec<usize> = states.iter().copied().filter(|&s| point.gradients[s].is_none()).collect();
+            m.dedup();
+            m
+        };
+        if missing.is_empty() {
+            return Ok(());
+        }
+        match &self.spec.gradients {
+            GradientMethod::Numerical { .. } => self.displacements(),
+            GradientMethod::Analytic { zvector, .. } => {
+                let started = std::time::Instant::now();
+                let calc = &self.spec.calculation;
+                let point = self.current.as_mut().expect("a current point");
+                let g = mrsf_state_gradients(&point.basis, &point.scf, &point.excited, &missing, &calc.potential, &calc.jk, zvector)
+                    .map_err(|e| BackendError::Failed(format!("analytic MRSF gradient: {e}")))?;
+                for (s, gs) in missing.iter().zip(g) {
+                    point.gradients[*s] = Some(gs.into_iter().flatten().collect());
+                }
+                self.timings.gradients += started.elapsed().as_secs_f64();
+                Ok(())
+            }
+        }
+    }
+
     fn couplings(&self) -> Result<Couplings, BackendError> {
-        let GradientMethod::Numerical { step } = self.spec.gradients;
+        let step = self.spec.gradients.step();
         let point = self.current.as_ref().expect("a current point");
         let displaced = point.displaced.as_ref().expect("displacements done");
         let n = self.spec.singlets;
@@ -352,20 +405,18 @@ impl Backend for MrsfBackend {
                 }
             }
         }
-        if !request.gradients.is_empty() || request.couplings {
-            self.displacements()?;
-        }
+        self.gradients(&request.gradients)?;
         if request.couplings && self.results.couplings.is_none() {
+            self.displacements()?;
             let t = std::time::Instant::now();
             self.results.couplings = Some(self.couplings()?);
             self.timings.couplings += t.elapsed().as_secs_f64();
         }
         let point = self.current.as_ref().expect("a current point");
-        if let Some(all) = &point.gradients {
-            for &s in &request.gradients {
-                if self.results.gradient(s).is_none() {
-                    self.results.gradients.push((s, all[s].clone()));
-                }
+        for &s in &request.gradients {
+            if self.results.gradient(s).is_none() {
+                let g = point.gradients[s].clone().expect("computed above");
+                self.results.gradients.push((s, g));
             }
         }
         if request.transition_dipoles && self.results.transition_dipoles.is_none() {

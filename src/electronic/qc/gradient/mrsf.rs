@@ -230,7 +230,7 @@ impl Ctx {
 }
 
 /// Options of the Z-vector (coupled-perturbed ROKS) solver.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq)]
 pub struct ZVectorOptions {
     /// Converged when the 2-norm of each state's residual is below this
     /// (default 1e−9).

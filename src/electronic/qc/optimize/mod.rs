@@ -363,7 +363,8 @@ where
 /// How [`minimize_energy`] gets gradients.
 #[derive(Clone, Copy, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub enum GradientKind {
-    /// Analytic SCF gradients ([`crate::electronic::qc::gradient::scf`]); ground state only.
+    /// Analytic SCF gradients ([`crate::electronic::qc::gradient::scf`]) or,
+    /// for an MRSF state, analytic MRSF gradients ([`crate::electronic::qc::gradient::mrsf`]).
     Analytic,
     /// Central differences with this step (bohr).
     Numerical(f64),
@@ -381,18 +382,20 @@ pub fn minimize_energy(
     use crate::electronic::qc::gradient::numerical::{orbital_guess, Target};
     use crate::electronic::qc::gradient::{scf::scf_gradient, GradientError};
     use crate::electronic::qc::scf::Guess;
-    if gradient == GradientKind::Analytic && *target != Target::Ground {
-        return Err(OptimizeError::Options(
-            "analytic gradients exist for the SCF ground state only; use numerical gradients for an excited state"
-                .into(),
-        ));
-    }
     let mut guess = Guess::AtomicSuperposition;
     minimize(start, opts, |p| -> Result<(f64, Vec<[f64; 3]>), GradientError> {
         let c = calc.compute(p, &guess, target)?;
-        let g = match gradient {
-            GradientKind::Analytic => scf_gradient(&c.basis, &c.scf, &calc.potential)?,
-            GradientKind::Numerical(h) => calc.numerical_gradient(p, h, target, Some(&c.scf))?,
+        let g = match (gradient, target) {
+            (GradientKind::Analytic, Target::Ground) => scf_gradient(&c.basis, &c.scf, &calc.potential)?,
+            (GradientKind::Analytic, Target::Mrsf { label, .. }) => {
+                use crate::electronic::qc::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
+                let x = c.excited.as_ref().expect("MRSF target");
+                let e = crate::electronic::qc::gradient::numerical::state_energy(x, label)?;
+                let i = x.states.iter().position(|s| s.energy == e).expect("the state just found");
+                let mut g = mrsf_state_gradients(&c.basis, &c.scf, x, &[i], &calc.potential, &calc.jk, &ZVectorOptions::default())?;
+                g.swap_remove(0)
+            }
+            (GradientKind::Numerical(h), _) => calc.numerical_gradient(p, h, target, Some(&c.scf))?,
         };
         guess = orbital_guess(&c.scf);
         Ok((c.energy, g))
@@ -401,9 +404,10 @@ pub fn minimize_energy(
 
 /// The minimum-energy crossing of two MRSF-TDDFT states of `calc` (labels
 /// as [`crate::electronic::qc::response::ExcitedStates::label`], e.g. `S0`
-/// and `S1`), with central-difference gradients of step `step` (both
-/// states from one set of displaced calculations, each SCF starting from
-/// the orbitals of the current geometry).
+/// and `S1`), with analytic MRSF gradients ([`GradientKind::Analytic`]) or
+/// central differences ([`GradientKind::Numerical`]: both states from one
+/// set of displaced calculations); each SCF starts from the orbitals of the
+/// previous geometry.
 #[allow(clippy::too_many_arguments)]
 pub fn minimize_mrsf_crossing(
     calc: &crate::electronic::qc::gradient::numerical::ScfEnergy,
@@ -412,24 +416,40 @@ pub fn minimize_mrsf_crossing(
     upper: &str,
     singlets: usize,
     triplets: usize,
-    step: f64,
+    gradient: GradientKind,
     opts: &intersection::CrossingOptions,
 ) -> Result<intersection::Crossing, OptimizeError> {
+    use crate::electronic::qc::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
     use crate::electronic::qc::gradient::numerical::{central_differences_many, orbital_guess, state_energy, Target};
     use crate::electronic::qc::gradient::GradientError;
     use crate::electronic::qc::scf::Guess;
     let target = Target::Mrsf { label: lower.to_string(), singlets, triplets };
     let mut guess = Guess::AtomicSuperposition;
+    let index = |x: &crate::electronic::qc::response::ExcitedStates, label: &str| -> Result<usize, GradientError> {
+        let e = state_energy(x, label)?;
+        Ok(x.states.iter().position(|s| s.energy == e).expect("the state just found"))
+    };
     intersection::minimize_crossing(start, opts, |p| -> Result<intersection::StatePair, GradientError> {
         let c = calc.compute(p, &guess, &target)?;
         let x = c.excited.as_ref().expect("MRSF target");
         let (el, eu) = (state_energy(x, lower)?, state_energy(x, upper)?);
         let g = orbital_guess(&c.scf);
-        let grads = central_differences_many(p, step, 2, |q| {
-            let d = calc.compute(q, &g, &target).map_err(|e| e.to_string())?;
-            let x = d.excited.as_ref().ok_or("no excited states")?;
-            Ok(vec![state_energy(x, lower).map_err(|e| e.to_string())?, state_energy(x, upper).map_err(|e| e.to_string())?])
-        })?;
+        let grads = match gradient {
+            GradientKind::Analytic => mrsf_state_gradients(
+                &c.basis,
+                &c.scf,
+                x,
+                &[index(x, lower)?, index(x, upper)?],
+                &calc.potential,
+                &calc.jk,
+                &ZVectorOptions::default(),
+            )?,
+            GradientKind::Numerical(step) => central_differences_many(p, step, 2, |q| {
+                let d = calc.compute(q, &g, &target).map_err(|e| e.to_string())?;
+                let x = d.excited.as_ref().ok_or("no excited states")?;
+                Ok(vec![state_energy(x, lower).map_err(|e| e.to_string())?, state_energy(x, upper).map_err(|e| e.to_string())?])
+            })?,
+        };
         guess = g;
         let mut it = grads.into_iter();
         let (lower_gradient, upper_gradient) = (it.next().expect("two"), it.next().expect("two"));
