@@ -2,13 +2,25 @@
 //! B 112, 405 (2008), from memory) on a two-state model of our own whose
 //! crossing seam and minimum-energy crossing point are known in closed form.
 //!
+//! Then the real case: the twisted-pyramidalised S1/S0 intersection of
+//! ethylene with MRSF-TDDFT, and the geometric phase around it.
+//!
 //! The model: mean energy V̄(r) = ½k|r|² + t x + c z, half gap
 //! Δ(r) = √((g x)² + (h y)²), E∓ = V̄ ∓ Δ. The seam is the z axis (x = y = 0,
 //! a conical intersection with branching plane x, y); on it V̄ = ½k z² + c z
 //! is smallest at z* = −c/k, where E = −c²/2k (exact, elementary calculus).
 
+use flipswarm::chem::{Element, Molecule};
+use flipswarm::electronic::qc::basis::{BasisSet, BasisSetData};
+use flipswarm::electronic::qc::dft::grid::GridSpec;
+use flipswarm::electronic::qc::gradient::numerical::{orbital_guess, ScfEnergy, Target};
+use flipswarm::electronic::qc::gradient::scf::Potential;
+use flipswarm::electronic::qc::integrals::JkOptions;
 use flipswarm::electronic::qc::optimize::intersection::{minimize_crossing, CrossingOptions, StatePair};
-use flipswarm::electronic::qc::optimize::{OptimizeError, OptimizeOptions};
+use flipswarm::electronic::qc::optimize::{minimize_mrsf_crossing, GradientKind, OptimizeError, OptimizeOptions};
+use flipswarm::electronic::qc::response::davidson::DavidsonOptions;
+use flipswarm::electronic::qc::response::overlap::{state_overlaps, StateVectors};
+use flipswarm::electronic::qc::scf::{Electrons, Guess, Reference, ScfOptions};
 
 const K: f64 = 0.4;
 const T: f64 = 0.03;
@@ -62,4 +74,139 @@ fn crossing_search_reports_bad_options_and_non_convergence() {
     let e = minimize_crossing(&[[0.5, -0.4, 1.0]], &short, model).unwrap_err();
     assert!(e.to_string().contains("step limit"), "{e}");
     assert!(e.last_positions().is_some());
+}
+
+/// Ethylene twisted by 90° with the second CH2 group folded (Å): the start
+/// of the twisted-pyramidalised intersection search (a geometry of our own
+/// in the trade-standard region).
+fn twisted_pyramidalised() -> Molecule {
+    let atoms: [(&str, [f64; 3]); 6] = [
+        ("C", [0.0, 0.0, -0.7]),
+        ("C", [0.0, 0.0, 0.7]),
+        ("H", [0.0, 0.920132, -1.274962]),
+        ("H", [0.0, -0.920132, -1.274962]),
+        ("H", [0.920132, 0.636396, 1.10656]),
+        ("H", [-0.920132, 0.636396, 1.10656]),
+    ];
+    let els: Vec<Element> = atoms.iter().map(|(s, _)| Element::from_symbol(s).unwrap()).collect();
+    let pos: Vec<[f64; 3]> = atoms.iter().map(|(_, p)| p.map(|x| x / 0.529177210903)).collect();
+    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
+}
+
+fn ethylene_calculation() -> ScfEnergy {
+    ScfEnergy {
+        molecule: twisted_pyramidalised(),
+        basis: BasisSetData::builtin("6-31G").unwrap(),
+        harmonics: None,
+        electrons: Electrons { alpha: 9, beta: 7 },
+        reference: Reference::RestrictedOpen,
+        potential: Potential::KohnSham { functional: "bhhlyp".into(), grid: GridSpec::level("coarse").unwrap() },
+        scf: ScfOptions { gradient_tolerance: 1e-9, energy_tolerance: 1e-11, ..ScfOptions::default() },
+        jk: JkOptions::default(),
+        davidson: DavidsonOptions { residual_tolerance: 1e-8, energy_tolerance: 1e-12, ..DavidsonOptions::default() },
+    }
+}
+
+/// S0 and S1 state vectors at `positions`, SCF started from `guess`.
+fn states_at(calc: &ScfEnergy, positions: &[[f64; 3]], guess: &Guess) -> (BasisSet, StateVectors, f64, Guess) {
+    let target = Target::Mrsf { label: "S0".into(), singlets: 2, triplets: 0 };
+    let c = calc.compute(positions, guess, &target).unwrap();
+    let x = c.excited.as_ref().unwrap();
+    let v = StateVectors::from_states(x, &[0, 1]).unwrap();
+    (c.basis, v, x.states[1].energy - x.states[0].energy, orbital_guess(&c.scf))
+}
+
+/// Sign acquired by S0 and S1 transported around a closed loop of
+/// geometries (consecutive overlaps, each sign-aligned, and the closing
+/// overlap with the states at the first point), and the smallest gap seen.
+fn loop_signs(calc: &ScfEnergy, points: &[Vec<[f64; 3]>]) -> ([f64; 2], f64) {
+    let (b0, v0, gap0, mut guess) = states_at(calc, &points[0], &Guess::AtomicSuperposition);
+    let (mut bp, mut vp) = (b0.clone(), v0.clone());
+    let mut signs = [1.0, 1.0];
+    let mut min_gap = gap0;
+    for p in points[1..].iter() {
+        let (b, v, gap, g) = states_at(calc, p, &guess);
+        guess = g;
+        min_gap = min_gap.min(gap);
+        let s = state_overlaps(&vp, &bp, &v, &b).unwrap();
+        for i in 0..2 {
+            assert!(s[(i, i)].abs() > 0.7, "state {i} lost between loop points: overlap {:.3}", s[(i, i)]);
+            signs[i] *= s[(i, i)].signum();
+        }
+        bp = b;
+        vp = v;
+    }
+    let close = state_overlaps(&vp, &bp, &v0, &b0).unwrap();
+    for i in 0..2 {
+        assert!(close[(i, i)].abs() > 0.7, "state {i} lost closing the loop");
+        signs[i] *= close[(i, i)].signum();
+    }
+    (signs, min_gap)
+}
+
+// Sources: the twisted-pyramidalised S1/S0 intersection of ethylene
+// (trade-standard test case, common practice), the penalty-function search
+// (J. Phys. Chem. B 112, 405 (2008), from memory) and the geometric-phase
+// theorem (Discuss. Faraday Soc. 35, 77 (1963), from memory). MRSF-TDDFT
+// (BH&HLYP/6-31G, coarse grid) with analytic gradients: the search from a
+// twisted, folded start ends with S1 − S0 < 1e-4 Eh at a geometry twisted by
+// about 90° (H–C–C–H dihedrals within 30° of ±90°… checked loosely as the
+// two CH2 planes being far from coplanar); transporting S0 and S1 around a
+// loop of radius 0.03 bohr in the branching plane (gradient difference and
+// a second direction from the coupling of the states) flips the sign of
+// both, and a loop of the same size centred 0.3 bohr away does not.
+#[test]
+fn ethylene_s1_s0_intersection_and_its_geometric_phase() {
+    let calc = ethylene_calculation();
+    let start: Vec<[f64; 3]> = calc.molecule.atoms.iter().map(|a| a.position_bohr).collect();
+    let opts = CrossingOptions { stage: OptimizeOptions { max_steps: 80, ..OptimizeOptions::default() }, ..CrossingOptions::default() };
+    let t = std::time::Instant::now();
+    let found = minimize_mrsf_crossing(&calc, &start, "S0", "S1", 2, 0, GradientKind::Analytic, &opts).unwrap();
+    eprintln!("{found} in {:.1} s", t.elapsed().as_secs_f64());
+    assert!(found.gap < 1e-4, "gap {:e}", found.gap);
+    let x = &found.positions;
+    // The two CH2 planes: normals of (H2 C0 H3) and (H4 C1 H5).
+    let sub = |a: [f64; 3], b: [f64; 3]| nalgebra::Vector3::new(a[0] - b[0], a[1] - b[1], a[2] - b[2]);
+    let n1 = sub(x[2], x[0]).cross(&sub(x[3], x[0])).normalize();
+    let n2 = sub(x[4], x[1]).cross(&sub(x[5], x[1])).normalize();
+    assert!(n1.dot(&n2).abs() < 0.7, "the CH2 groups are not twisted: cos = {}", n1.dot(&n2));
+    // Branching plane: x̂ from the search, ŷ ⟂ x̂ from the derivative coupling
+    // (finite differences of S0–S1 overlaps along each coordinate).
+    let xs: Vec<f64> = found.gradient_difference.iter().flatten().copied().collect();
+    let flat: Vec<f64> = x.iter().flatten().copied().collect();
+    let (b0, v0, _, guess) = states_at(&calc, x, &Guess::AtomicSuperposition);
+    let h = 1e-3;
+    let mut d = vec![0.0; flat.len()];
+    for k in 0..flat.len() {
+        let mut vals = [0.0; 2];
+        for (m, sgn) in [1.0, -1.0].iter().enumerate() {
+            let mut q = flat.clone();
+            q[k] += sgn * h;
+            let p: Vec<[f64; 3]> = q.chunks(3).map(|c| [c[0], c[1], c[2]]).collect();
+            let (b, v, _, _) = states_at(&calc, &p, &guess);
+            let s = state_overlaps(&v0, &b0, &v, &b).unwrap();
+            vals[m] = s[(0, 1)] * s[(1, 1)].signum();
+        }
+        d[k] = (vals[0] - vals[1]) / (2.0 * h);
+    }
+    let dx: f64 = d.iter().zip(&xs).map(|(a, b)| a * b).sum();
+    let mut ys: Vec<f64> = d.iter().zip(&xs).map(|(a, b)| a - dx * b).collect();
+    let ny = ys.iter().map(|v| v * v).sum::<f64>().sqrt();
+    assert!(ny > 1e-3, "no coupling direction out of the gradient difference");
+    ys.iter_mut().for_each(|v| *v /= ny);
+    let circle = |centre: &[f64], radius: f64, n: usize| -> Vec<Vec<[f64; 3]>> {
+        (0..n)
+            .map(|k| {
+                let a = 2.0 * std::f64::consts::PI * k as f64 / n as f64;
+                let q: Vec<f64> = (0..centre.len()).map(|i| centre[i] + radius * (a.cos() * xs[i] + a.sin() * ys[i])).collect();
+                q.chunks(3).map(|c| [c[0], c[1], c[2]]).collect()
+            })
+            .collect()
+    };
+    let (around, gap_around) = loop_signs(&calc, &circle(&flat, 0.03, 16));
+    let away: Vec<f64> = flat.iter().zip(&xs).map(|(q, u)| q + 0.3 * u).collect();
+    let (beside, gap_beside) = loop_signs(&calc, &circle(&away, 0.03, 16));
+    eprintln!("geometric phase: around the intersection {around:?} (smallest gap {gap_around:.2e} Eh), beside it {beside:?} (gap {gap_beside:.2e} Eh)");
+    assert_eq!(around, [-1.0, -1.0], "no sign change around the intersection");
+    assert_eq!(beside, [1.0, 1.0], "a sign change around a loop that encloses no intersection");
 }
