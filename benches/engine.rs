@@ -67,6 +67,53 @@ seed = 2
     load_str(&text, "bench", dir, &[]).expect("valid bench config")
 }
 
+/// A made-up 20-atom-sized LVC model: 60 modes (3 × 20 coordinates), 5
+/// states; tuning modes 0–29, coupling modes 30–59 (invented numbers, a demo).
+fn lvc20_config(trajectories: usize, duration_fs: f64, dir: &Path, checkpoint_every: u64, record_every: u64) -> RunConfig {
+    let freqs: Vec<String> = (0..60).map(|k| format!("{:.4}", 0.02 + 0.006 * k as f64)).collect();
+    let mut m = format!("frequencies_ev = [{}]\nvertical_ev = [0.0, 3.6, 3.9, 4.2, 4.6]\n", freqs.join(", "));
+    for mode in 0..30 {
+        for state in 1..5 {
+            let v = if state % 2 == 0 { 0.04 } else { -0.05 } * (1.0 + 0.02 * mode as f64);
+            m.push_str(&format!("[[gradient]]\nstate = {state}\nmode = {mode}\nvalue_ev = {v:.5}\n"));
+        }
+    }
+    for mode in 30..60 {
+        for (a, b, v) in [(1, 2, 0.03), (2, 3, 0.03), (3, 4, 0.025), (0, 1, 0.005)] {
+            m.push_str(&format!("[[coupling]]\nstates = [{a}, {b}]\nmode = {mode}\nvalue_ev = {v}\n"));
+        }
+    }
+    std::fs::write(dir.join("bench-lvc20.toml"), m).expect("temp dir writable");
+    let text = format!(
+        r#"[model]
+kind = "lvc"
+file = "bench-lvc20.toml"
+[start]
+sampling = "wigner"
+state = 4
+[dynamics]
+timestep_fs = 0.1
+duration_fs = {duration_fs}
+[output]
+record_every_steps = {record_every}
+checkpoint_every_steps = {checkpoint_every}
+[swarm]
+trajectories = {trajectories}
+seed = 3
+"#
+    );
+    load_str(&text, "bench", dir, &[]).expect("valid bench config")
+}
+
+/// CPU time (user + system) of this process so far, seconds.
+fn cpu_seconds() -> f64 {
+    let mut u: libc::rusage = unsafe { std::mem::zeroed() };
+    // SAFETY: `u` is a valid out-pointer for getrusage.
+    unsafe { libc::getrusage(libc::RUSAGE_SELF, &mut u) };
+    let t = |tv: libc::timeval| tv.tv_sec as f64 + tv.tv_usec as f64 * 1e-6;
+    t(u.ru_utime) + t(u.ru_stime)
+}
+
 /// Trajectory-steps per second of the full engine, one thread.
 fn engine(cfg: &RunConfig) -> (u64, f64) {
     let t = Instant::now();
@@ -83,7 +130,7 @@ fn reference(cfg: &RunConfig, steps_each: &[u64]) -> (u64, f64) {
     for (i, &n) in steps_each.iter().enumerate() {
         let mut backend = swarm::make_backend(&cfg.model);
         let masses = backend.info().masses;
-        let (mut q, mut v) = swarm::initial_condition(cfg, &masses, i);
+        let (mut q, mut v, _) = swarm::initial_condition(cfg, &masses, i);
         let req = Request::gradient_of(cfg.initial_state);
         let mut g = backend.compute(&q, &req).expect("model").gradient(cfg.initial_state).unwrap().to_vec();
         for _ in 0..n {
@@ -179,44 +226,105 @@ fn writer_throughput(dir: &Path) {
 }
 
 /// The same ensemble run in memory (reference) and into a run directory with
-/// every row written and a checkpoint every 200 steps.
-fn output_overhead(cfg: &RunConfig, dir: &Path) {
+/// every row written and a checkpoint every `checkpoint_every` steps (0:
+/// the default cadence, by wall-clock time). Wall and CPU time of the best
+/// of `repeats` alternating pairs.
+fn output_overhead(name: &str, cfg: &RunConfig, dir: &Path, checkpoint_every: u64, repeats: usize) {
     use flipswarm::ensemble::runner;
     use std::sync::atomic::AtomicBool;
     use std::sync::Arc;
-    let t = Instant::now();
-    swarm::run(cfg, 1).expect("thread pool");
-    let plain = t.elapsed().as_secs_f64();
+    let cfg = cfg.clone();
+    assert_eq!(cfg.output.checkpoint_every, checkpoint_every, "cadence in the TOML text");
+    let model = cfg.model.clone();
+    let factory = move |_: usize| swarm::make_backend(&model);
+    let (mut plain, mut plain_cpu, mut with, mut with_cpu) = (f64::INFINITY, f64::INFINITY, f64::INFINITY, f64::INFINITY);
+    let mut size = 0u64;
+    for _ in 0..repeats {
+        let (t, c) = (Instant::now(), cpu_seconds());
+        swarm::run(&cfg, 1).expect("thread pool");
+        plain = plain.min(t.elapsed().as_secs_f64());
+        plain_cpu = plain_cpu.min(cpu_seconds() - c);
+        let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+        let run_dir = dir.join("overhead-run");
+        let _ = std::fs::remove_dir_all(&run_dir);
+        let (t, c) = (Instant::now(), cpu_seconds());
+        runner::start(&cfg, &run_dir, (0, 1), &opts).expect("run into directory");
+        with = with.min(t.elapsed().as_secs_f64());
+        with_cpu = with_cpu.min(cpu_seconds() - c);
+        size = std::fs::metadata(run_dir.join(runner::part_name(0, 1))).map(|m| m.len()).unwrap_or(0);
+        let _ = std::fs::remove_dir_all(&run_dir);
+    }
+    let cadence = if checkpoint_every == 0 { "default checkpoints".to_string() } else { format!("checkpoint/{checkpoint_every} steps") };
+    let cadence = format!("row/{} steps, {cadence}", cfg.output.record_every);
+    println!(
+        "{:<34} {with:>7.3} s ({with_cpu:.3} s CPU) with output, {cadence}, {:.1} MB | reference (no output) {plain:>7.3} s ({plain_cpu:.3} s CPU) | overhead wall {:>5.1} %, CPU {:>5.1} % (goal < 2 %)",
+        format!("output + checkpoints ({name})"),
+        size as f64 / 1e6,
+        100.0 * (with / plain - 1.0),
+        100.0 * (with_cpu / plain_cpu - 1.0)
+    );
+}
+
+/// One run with output (for profiling).
+fn output_overhead_once(cfg: &RunConfig, dir: &Path, checkpoint_every: u64) {
+    use flipswarm::ensemble::runner;
+    use std::sync::atomic::AtomicBool;
+    use std::sync::Arc;
     let mut cfg = cfg.clone();
     cfg.output.record_every = 1;
-    cfg.output.checkpoint_every = 200;
+    cfg.output.checkpoint_every = checkpoint_every;
     let model = cfg.model.clone();
     let factory = move |_: usize| swarm::make_backend(&model);
     let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
     let run_dir = dir.join("overhead-run");
     let _ = std::fs::remove_dir_all(&run_dir);
-    let t = Instant::now();
     runner::start(&cfg, &run_dir, (0, 1), &opts).expect("run into directory");
-    let with_output = t.elapsed().as_secs_f64();
-    println!(
-        "{:<34} {with_output:>7.3} s with output | reference (no output) {plain:>7.3} s | overhead {:>6.1} % (goal < 2 %)",
-        "output + checkpoints (LVC)",
-        100.0 * (with_output / plain - 1.0)
-    );
     let _ = std::fs::remove_dir_all(&run_dir);
 }
 
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
+    if let Some(which) = std::env::args().find_map(|a| a.strip_prefix("--profile=").map(str::to_string)) {
+        // For a profiler: only the plain run or only the run with output, five times.
+        let dir = std::env::temp_dir().join(format!("flipswarm-bench-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).expect("temp dir");
+        let cfg = lvc20_config(20, 200.0, &dir, 200, 1);
+        for _ in 0..5 {
+            if which == "plain" {
+                swarm::run(&cfg, 1).expect("thread pool");
+            } else {
+                let cfg = match which.as_str() { "runner0" => lvc20_config(20, 200.0, &dir, 0, 1), "runner20" => lvc20_config(20, 200.0, &dir, 0, 20), _ => cfg.clone() };
+                output_overhead_once(&cfg, &dir, cfg.output.checkpoint_every);
+            }
+        }
+        std::fs::remove_dir_all(&dir).ok();
+        return;
+    }
     let scale = if quick { 10 } else { 1 };
     println!("flipswarm engine benchmark (one thread; ratio = engine rate / reference rate)");
-    report("Tully 1, k = 20, decoherence", &tully_config(2000 / scale));
     let dir = std::env::temp_dir().join(format!("flipswarm-bench-{}", std::process::id()));
     std::fs::create_dir_all(&dir).expect("temp dir");
     let lvc = lvc_config(200 / scale, &dir);
+    // The run directory re-reads the configuration from its TOML text, so the
+    // checkpoint cadence is part of the text.
+    let lvc20 = lvc20_config(20 / scale.min(4), 200.0, &dir, 200, 1);
+    let lvc20_default = lvc20_config(20 / scale.min(4), 200.0, &dir, 0, 1);
+    let lvc20_every20 = lvc20_config(20 / scale.min(4), 200.0, &dir, 0, 20);
+    if std::env::args().any(|a| a == "--overhead") {
+        // Only the output overhead (scripts/bench engine -- --overhead).
+        output_overhead("LVC 20 atoms x 5 states", &lvc20, &dir, 200, 3);
+        output_overhead("LVC 20 atoms x 5 states", &lvc20_default, &dir, 0, 3);
+        output_overhead("LVC 20 atoms x 5 states", &lvc20_every20, &dir, 0, 3);
+        std::fs::remove_dir_all(&dir).ok();
+        return;
+    }
+    report("Tully 1, k = 20, decoherence", &tully_config(2000 / scale));
     report("LVC 3 states x 10 modes", &lvc);
+    report("LVC 20 atoms (60 modes) x 5 states", &lvc20);
     writer_throughput(&dir);
-    output_overhead(&lvc, &dir);
+    output_overhead("LVC 20 atoms x 5 states", &lvc20, &dir, 200, 3);
+    output_overhead("LVC 20 atoms x 5 states", &lvc20_default, &dir, 0, 3);
+    output_overhead("LVC 20 atoms x 5 states", &lvc20_every20, &dir, 0, 3);
     std::fs::remove_dir_all(&dir).ok();
     let t = Instant::now();
     let cfg = tully_config(2000);

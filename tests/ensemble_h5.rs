@@ -7,8 +7,8 @@ use std::process::Command;
 use std::sync::{RwLock, RwLockReadGuard, RwLockWriteGuard};
 
 use flipswarm::dynamics::EndReason;
-use flipswarm::ensemble::h5::{merge, EnsembleError, PartReader, PartWriter, Phase, TrajectoryData, WriterState};
-use flipswarm::ensemble::record::{Hop, PartMeta, Status, StepRow, TrajectoryHeader};
+use flipswarm::ensemble::h5::{merge, Counts, EnsembleError, PartReader, PartWriter, Phase, TrajectoryData, WriterState};
+use flipswarm::ensemble::record::{Hop, PartMeta, RowDiagnostics, Status, StepRow, TrajectoryHeader, WarningRow};
 use num_complex::Complex64;
 
 const N_STATES: usize = 3;
@@ -150,10 +150,36 @@ fn assert_hops_exact(got: &[Hop], want: &[Hop]) {
     }
 }
 
+/// Diagnostics of `n` rows of trajectory `index` (invented values): every
+/// third row reports none (−1, NaN), the others iteration counts and <S²>.
+fn diags(index: usize, n: usize) -> Vec<RowDiagnostics> {
+    (0..n)
+        .map(|k| {
+            if k % 3 == 0 {
+                RowDiagnostics::none(N_STATES)
+            } else {
+                RowDiagnostics {
+                    iterations: (7 + k + index) as i32,
+                    response_iterations: if k % 2 == 0 { -1 } else { (k % 11) as i32 },
+                    spin_squared: (0..N_STATES).map(|s| if s == 1 { f64::NAN } else { 0.001 * k as f64 + s as f64 * 2.0 }).collect(),
+                }
+            }
+        })
+        .collect()
+}
+
+/// A few warnings of trajectory `index`, with non-ASCII text.
+fn warnings(index: usize) -> Vec<WarningRow> {
+    (0..index % 3 + 1).map(|k| WarningRow { step: 5 * k as u64 + 1, text: format!("solver stalled ({k}); ⟨S²⟩ = 2.1 for trajectory {index}") }).collect()
+}
+
 fn assert_same_data(got: &TrajectoryData, want: &TrajectoryData) {
     assert_eq!(got.header, want.header);
     assert_rows_exact(&got.rows, &want.rows);
     assert_hops_exact(&got.hops, &want.hops);
+    let bits = |d: &[RowDiagnostics]| d.iter().map(RowDiagnostics::bits).collect::<Vec<_>>();
+    assert_eq!(bits(&got.diagnostics), bits(&want.diagnostics), "diagnostics differ");
+    assert_eq!(got.warnings, want.warnings, "warnings differ");
     assert_eq!((&got.status, got.phase), (&want.status, want.phase));
 }
 
@@ -167,8 +193,9 @@ fn write_part(path: &Path, slice: (usize, usize), indices: &[usize], n: usize) -
         w.begin(&h).unwrap();
         let r = rows(i, 0, n, 0);
         let hp = hops(i % 4 + 1, 1);
-        w.append(i, &r[..n / 3], &hp).unwrap();
-        w.append(i, &r[n / 3..], &[]).unwrap();
+        let d = diags(i, n);
+        w.append_all(i, &r[..n / 3], &d[..n / 3], &hp, &warnings(i)).unwrap();
+        w.append_all(i, &r[n / 3..], &d[n / 3..], &[], &[]).unwrap();
         w.set_status(i, &Status::Finished(EndReason::TimeLimit)).unwrap();
         out.push((h, r, hp));
     }
@@ -593,6 +620,10 @@ fn str_attr(loc: &hdf5::Location, name: &str) -> Option<String> {
     a.read_scalar::<hdf5::types::VarLenUnicode>().ok().map(|s| s.as_str().to_string())
 }
 
+fn unit_of_seen(seen: &[(String, String)], n: &str) -> String {
+    seen.iter().find(|(name, _)| name == n).map(|(_, u)| u.clone()).unwrap_or_else(|| panic!("{n} missing"))
+}
+
 /// Shows that every dataset of a written file (walked, not listed by hand)
 /// has non-empty `units` and `description` string attributes, and that the
 /// root names the format and its units.
@@ -611,8 +642,11 @@ fn every_dataset_has_units_and_description() {
         assert!(!units.is_empty() && description.len() > 10, "{name}: units {units:?}, description {description:?}");
         seen.push((name, units));
     });
-    // 2 at the root; per trajectory 2 initial + 10 per-step + 8 hop datasets.
-    assert_eq!(seen.len(), 2 + 2 * (2 + 10 + 8), "{seen:?}");
+    // 2 at the root; per trajectory 2 initial + 10 per-step + 3 diagnostics
+    // + 8 hop + 2 warning datasets.
+    assert_eq!(seen.len(), 2 + 2 * (2 + 10 + 3 + 8 + 2), "{seen:?}");
+    assert_eq!(unit_of_seen(&seen, "/trajectories/000001/spin_squared"), "hbar^2");
+    assert_eq!(unit_of_seen(&seen, "/trajectories/000001/solver_iterations"), "1");
     let unit_of = |n: &str| seen.iter().find(|(name, _)| name == n).map(|(_, u)| u.clone()).unwrap();
     assert_eq!(unit_of("/trajectories/000001/energies"), "hartree");
     assert_eq!(unit_of("/trajectories/000001/time"), "a.u. of time");
@@ -694,4 +728,48 @@ fn python_h5py_reads_the_file() {
     assert_eq!(floats("last_amplitudes_re_im"), amps);
     assert_eq!(v["active_state"], serde_json::json!(r.iter().map(|x| x.active).collect::<Vec<_>>()));
     assert_eq!(v["accepted"], serde_json::json!(hp.iter().map(|x| u8::from(x.accepted)).collect::<Vec<_>>()));
+    // The diagnostics datasets as h5py sees them.
+    let d = diags(8, r.len());
+    assert_eq!(v["solver_iterations"], serde_json::json!(d.iter().map(|x| x.iterations).collect::<Vec<_>>()));
+    let nans: usize = d.iter().map(|x| x.spin_squared.iter().filter(|s| s.is_nan()).count()).sum();
+    assert_eq!(v["spin_squared_nan"], nans);
+    let w: Vec<serde_json::Value> = warnings(8).iter().map(|x| serde_json::json!([x.step, x.text])).collect();
+    assert_eq!(v["warnings"], serde_json::Value::Array(w));
+}
+
+/// Shows that back-end diagnostics and warnings round-trip exactly through
+/// append, truncation to a checkpoint and prefix reading, and that rows
+/// appended without diagnostics read back as "none" (−1, NaN). Our own
+/// format: no outside source.
+#[test]
+fn diagnostics_round_trip_truncate_and_prefix() {
+    let _guard = files();
+    let path = scratch("diagnostics").join("part.h5");
+    let mut w = PartWriter::create(&path, &meta((0, 1), vec![2])).unwrap();
+    w.begin(&header(2)).unwrap();
+    let (r, d, wr) = (rows(2, 0, 40, 3), diags(2, 40), warnings(2));
+    w.append_all(2, &r[..25], &d[..25], &[], &wr[..1]).unwrap();
+    w.append_all(2, &r[25..], &d[25..], &[], &wr[1..]).unwrap();
+    assert_eq!(w.all_counts(2).unwrap(), Counts { rows: 40, hops: 0, warnings: wr.len() as u64 });
+    // Mismatched diagnostics are refused before anything is written.
+    let e = message(w.append_all(2, &rows(2, 40, 2, 0), &d[..1], &[], &[]).unwrap_err());
+    assert!(e.contains("1 diagnostics for 2 rows"), "{e}");
+    let mut bad = diags(2, 2);
+    bad[1].spin_squared.pop();
+    let e = message(w.append_all(2, &rows(2, 40, 2, 0), &bad, &[], &[]).unwrap_err());
+    assert!(e.contains("<S^2> values"), "{e}");
+    w.truncate_all(2, Counts { rows: 30, hops: 0, warnings: 1 }).unwrap();
+    w.append(2, &rows(2, 30, 5, 9), &[]).unwrap();
+    w.set_status(2, &Status::Finished(EndReason::TimeLimit)).unwrap();
+    w.close().unwrap();
+    let reader = PartReader::open(&path).unwrap();
+    let data = reader.read(2).unwrap();
+    let mut want_d = d[..30].to_vec();
+    want_d.extend((0..5).map(|_| RowDiagnostics::none(N_STATES)));
+    let bits = |d: &[RowDiagnostics]| d.iter().map(RowDiagnostics::bits).collect::<Vec<_>>();
+    assert_eq!(bits(&data.diagnostics), bits(&want_d));
+    assert_eq!(data.warnings, wr[..1].to_vec());
+    let prefix = reader.read_prefix_all(2, Counts { rows: 12, hops: 0, warnings: 1 }).unwrap();
+    assert_eq!(bits(&prefix.diagnostics), bits(&d[..12]));
+    assert_eq!(prefix.warnings, wr[..1].to_vec());
 }

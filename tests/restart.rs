@@ -128,6 +128,11 @@ fn assert_identical(got: &Path, want: &Path) {
             assert_eq!(bits(ra), bits(rb), "trajectory {} step {}", b.header.index, rb.step);
         }
         assert_eq!(a.hops, b.hops, "trajectory {} hops", b.header.index);
+        // Back-end diagnostics (−1 / NaN for these models) and warnings, bit for bit.
+        assert_eq!(a.diagnostics.len(), a.rows.len(), "trajectory {} diagnostics rows", b.header.index);
+        let dbits = |d: &[flipswarm::ensemble::record::RowDiagnostics]| d.iter().map(|x| x.bits()).collect::<Vec<_>>();
+        assert_eq!(dbits(&a.diagnostics), dbits(&b.diagnostics), "trajectory {} diagnostics", b.header.index);
+        assert_eq!(a.warnings, b.warnings, "trajectory {} warnings", b.header.index);
         assert_eq!(a.status, b.status, "trajectory {} status", b.header.index);
     }
     let r = PartReader::open(got).unwrap();
@@ -207,7 +212,9 @@ fn sigkill_at_random_moments_then_resume_is_bit_identical() {
 /// Start a run and send SIGTERM once some checkpoints exist.
 fn stopped_run(s: &Scratch, name: &str) -> PathBuf {
     let dir = s.run_dir(name);
-    let child = spawn(&["-q", "run", s.ens().to_str().unwrap(), "-o", dir.to_str().unwrap(), "--threads", "2"]);
+    // Four workers: at the stop, four trajectories are in flight, so that
+    // several hold two checkpoints (the damage test needs two such).
+    let child = spawn(&["-q", "run", s.ens().to_str().unwrap(), "-o", dir.to_str().unwrap(), "--threads", "4"]);
     let ckpts = dir.join("checkpoints").join("part-0000");
     let t = Instant::now();
     while t.elapsed() < Duration::from_secs(20) {
@@ -231,7 +238,7 @@ fn stopped_run(s: &Scratch, name: &str) -> PathBuf {
 /// disk, a clean part file; resume completes it identically.
 #[test]
 fn sigterm_stops_cleanly_and_resume_completes_identically() {
-    let s = Scratch::new("term", 16, 60.0);
+    let s = Scratch::new("term", 16, 600.0);
     let want = reference(&s);
     let dir = stopped_run(&s, "stopped");
     let r = PartReader::open(&part(&dir)).unwrap();
@@ -253,7 +260,7 @@ fn sigterm_stops_cleanly_and_resume_completes_identically() {
 /// identical (each trajectory is deterministic).
 #[test]
 fn damaged_or_missing_checkpoints_fall_back_and_stay_identical() {
-    let s = Scratch::new("damage", 16, 60.0);
+    let s = Scratch::new("damage", 16, 600.0);
     let want = reference(&s);
     let dir = stopped_run(&s, "damaged");
     let ckdir = dir.join("checkpoints").join("part-0000");

@@ -55,6 +55,12 @@ pub fn execute(args: &InspectArgs) -> i32 {
     let mut totals = [0usize; 5];
     let mut unreadable = 0;
     for file in &files {
+        // Probed in a child first: a damaged file gets a message, not a crash.
+        if let Err(e) = crate::ensemble::h5::probe_in_child(file, false) {
+            eprintln!("error: {e}");
+            unreadable += 1;
+            continue;
+        }
         let reader = match PartReader::open(file) {
             Ok(r) => r,
             Err(e) => {
@@ -100,7 +106,12 @@ pub fn execute(args: &InspectArgs) -> i32 {
             }] += 1;
             let time_fs = s.last_time.map(units::au_to_fs);
             let drift_ev = units::hartree_to_ev(s.max_energy_drift);
-            let reason = s.failure_reason.clone().unwrap_or_default();
+            let mut reason = s.failure_reason.clone().unwrap_or_default();
+            if s.warnings > 0 {
+                // Back-end warnings (the table `warnings` of the trajectory group).
+                let sep = if reason.is_empty() { "" } else { "; " };
+                reason = format!("{reason}{sep}{} back-end warning(s)", s.warnings);
+            }
             if !args.json {
                 let t = time_fs.map_or("-".into(), |t| format!("{t:.3}"));
                 let a = s.active_state.map_or("-".into(), |a| a.to_string());
@@ -110,6 +121,7 @@ pub fn execute(args: &InspectArgs) -> i32 {
                 "index": i, "status": s.phase.as_str(), "rows": s.steps, "hops": s.hops,
                 "time_fs": time_fs, "active_state": s.active_state, "max_energy_drift_ev": drift_ev,
                 "failure_reason": s.failure_reason,
+                "backend_warnings": s.warnings, "max_solver_iterations": s.max_solver_iterations,
             }));
         }
         json_parts.push(serde_json::json!({

@@ -30,7 +30,8 @@ pub fn execute(args: &MergeArgs) -> i32 {
             }
         }
     }
-    match h5::merge(&files, &args.output) {
+    // Probed in a child first: a damaged part gets a message, not a crash.
+    match h5::merge_checked(&files, &args.output, true) {
         Ok(r) => {
             println!("{}: {} trajectories, {} rows, {} hop attempts from {} part files", r.output.display(), r.trajectories, r.rows, r.hops, r.parts);
             exit::OK

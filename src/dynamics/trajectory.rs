@@ -16,7 +16,7 @@ use super::amplitudes::{align_phases, StepCoupling};
 use super::decoherence::{Decoherence, DecoherenceScheme};
 use super::hopping::{adjust_velocity, choose_target, kinetic_energy, reflect_velocity, FrustratedHops, HopDirection};
 use super::verlet;
-use crate::electronic::{Backend, BackendError, Request};
+use crate::electronic::{Backend, BackendError, Diagnostics, Request};
 
 /// Validated engine settings, atomic units.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -114,6 +114,11 @@ pub struct TrajectoryState {
     pub rng: ChaCha20Rng,
     /// Status.
     pub status: Status,
+    /// The back end's diagnostics of the call at `q` (recorded, never used
+    /// by the physics; kept here so a resumed trajectory records exactly
+    /// what an uninterrupted one does).
+    #[serde(default)]
+    pub diagnostics: Diagnostics,
 }
 
 impl TrajectoryState {
@@ -177,6 +182,14 @@ impl Observer for () {
     }
 }
 
+/// The first non-finite energy or gradient component, described.
+fn non_finite(energies: &[f64], gradient: &[f64]) -> Option<String> {
+    if let Some(i) = energies.iter().position(|x| !x.is_finite()) {
+        return Some(format!("energy or gradient (energy of state {i} = {})", energies[i]));
+    }
+    gradient.iter().position(|x| !x.is_finite()).map(|i| format!("energy or gradient (gradient component {i} = {})", gradient[i]))
+}
+
 /// A trajectory bound to its back end.
 pub struct Trajectory<'b> {
     backend: &'b mut dyn Backend,
@@ -210,7 +223,11 @@ impl<'b> Trajectory<'b> {
         }
         let res = backend.compute(&q, &Request::gradient_of(active))?;
         let energies = res.energies.clone();
-        let gradient = res.gradient(active).expect("requested").to_vec();
+        let gradient = res.gradient(active).ok_or_else(|| BackendError::Failed(format!("the back end did not return the requested gradient of state {active}")))?.to_vec();
+        if let Some(bad) = non_finite(&energies, &gradient) {
+            return Err(BackendError::Failed(format!("the back end returned a non-finite {bad} at the initial geometry (step 0)")));
+        }
+        let diagnostics = res.diagnostics.clone();
         let mut amplitudes = vec![Complex64::new(0.0, 0.0); n];
         amplitudes[active] = Complex64::new(1.0, 0.0);
         let e0 = kinetic_energy(&v, &info.masses) + energies[active];
@@ -227,6 +244,7 @@ impl<'b> Trajectory<'b> {
             initial_total_energy: e0,
             rng,
             status: Status::Running,
+            diagnostics,
         };
         Ok(Self { backend, settings, masses: info.masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new(), q_new: Vec::new(), v_new: Vec::new() })
     }
@@ -265,14 +283,19 @@ impl<'b> Trajectory<'b> {
         self.request.gradients.push(s.active);
         self.request.overlaps = n > 1;
         let res = self.backend.compute(&self.q_new, &self.request)?;
-        let gradient = res.gradient(s.active).expect("requested");
-        if res.energies.iter().chain(gradient).any(|x| !x.is_finite()) {
-            return Err(BackendError::Failed(format!(
-                "the back end returned a non-finite energy or gradient at step {}",
-                s.step + 1
-            )));
+        let gradient = res.gradient(s.active).ok_or_else(|| BackendError::Failed(format!("the back end did not return the requested gradient of state {} at step {}", s.active, s.step + 1)))?;
+        if let Some(bad) = non_finite(&res.energies, gradient) {
+            return Err(BackendError::Failed(format!("the back end returned a non-finite {bad} at step {}", s.step + 1)));
         }
+        if res.energies.len() != n {
+            return Err(BackendError::Failed(format!("the back end returned {} energies for {n} states at step {}", res.energies.len(), s.step + 1)));
+        }
+
         verlet::kick(&mut self.v_new, gradient, &self.masses, dt);
+        if let Some(i) = self.q_new.iter().chain(&self.v_new).position(|x| !x.is_finite()) {
+            let what = if i < self.q_new.len() { format!("position {i}") } else { format!("velocity {}", i - self.q_new.len()) };
+            return Err(BackendError::Failed(format!("non-finite {what} after step {} (the gradient overflowed)", s.step + 1)));
+        }
         self.new_energies.clear();
         self.new_energies.extend_from_slice(&res.energies);
         let new_energies = &self.new_energies;
@@ -287,6 +310,7 @@ impl<'b> Trajectory<'b> {
             }
             _ => StepCoupling::none(n),
         };
+        s.diagnostics.clone_from(&res.diagnostics);
         std::mem::swap(&mut s.q, &mut self.q_new);
         std::mem::swap(&mut s.v, &mut self.v_new);
         s.gradient.copy_from_slice(gradient);

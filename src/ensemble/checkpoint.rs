@@ -35,6 +35,9 @@ pub struct Checkpoint {
     pub rows_written: u64,
     /// Hop rows in the part file that this checkpoint covers.
     pub hops_written: u64,
+    /// Warning rows in the part file that this checkpoint covers.
+    #[serde(default)]
+    pub warnings_written: u64,
     /// The engine state after the last completed step.
     pub state: TrajectoryState,
     /// The back end's electronic state.
@@ -104,6 +107,40 @@ pub fn write(path: &Path, ckpt: &Checkpoint) -> Result<(), CheckpointError> {
         // Make the renames durable (best effort: not every file system allows it).
         if let Ok(d) = fs::File::open(dir) {
             let _ = d.sync_all();
+        }
+    }
+    Ok(())
+}
+
+/// Write several checkpoints, each atomically as [`write`] does, with one
+/// directory sync per directory at the end (the writer's commit).
+pub fn write_batch(items: &[(PathBuf, Checkpoint)]) -> Result<(), CheckpointError> {
+    let mut dirs: Vec<PathBuf> = Vec::new();
+    for (path, ckpt) in items {
+        let json = serde_json::to_string(ckpt).map_err(|e| CheckpointError::Damaged { path: path.to_path_buf(), reason: format!("cannot serialise: {e}") })?;
+        let tmp = with_suffix(path, ".tmp");
+        {
+            let mut f = fs::File::create(&tmp).map_err(io(&tmp))?;
+            let mut text = json;
+            let sum = fnv1a(text.as_bytes());
+            text.push_str(&format!("\nchecksum {sum:016x}\n"));
+            f.write_all(text.as_bytes()).map_err(io(&tmp))?;
+            f.sync_all().map_err(io(&tmp))?;
+        }
+        if path.exists() {
+            fs::rename(path, with_suffix(path, ".prev")).map_err(io(path))?;
+        }
+        fs::rename(&tmp, path).map_err(io(path))?;
+        if let Some(d) = path.parent() {
+            if !dirs.iter().any(|x| x == d) {
+                dirs.push(d.to_path_buf());
+            }
+        }
+    }
+    for d in dirs {
+        // Make the renames durable (best effort: not every file system allows it).
+        if let Ok(f) = fs::File::open(&d) {
+            let _ = f.sync_all();
         }
     }
     Ok(())

@@ -50,6 +50,13 @@
 //!     kinetic_energy   f64 (n)
 //!     potential_energy f64 (n)              of the active state
 //!     total_energy     f64 (n)
+//!     solver_iterations   i32 (n)           back end's SCF iterations, −1 = none/not reported
+//!     response_iterations i32 (n)           excited-state solver iterations, −1 = none
+//!     spin_squared     f64 (n, n_states)    <S²> per state, NaN = not available
+//!     warnings_written u64 attribute        rows in warnings/
+//!     warnings/        non-fatal back-end warnings of every step (not only recorded ones)
+//!       step           u64 (w)   step whose back-end call warned
+//!       text           str (w)   the warning (variable-length UTF-8)
 //!     hops/            one row per hop attempt (accepted or frustrated)
 //!       step           u64 (h)   step after which the attempt happened
 //!       time           f64 (h)
@@ -61,9 +68,14 @@
 //!       kinetic_after  f64 (h)
 //! ```
 //!
+//! Files written before the diagnostics existed lack `solver_iterations`,
+//! `response_iterations`, `spin_squared` and `warnings/`; readers fill −1,
+//! NaN and no warnings.
+//!
 //! The per-step and hop datasets are chunked and extendible along their first
 //! axis (chunks of up to 256 rows, fewer for very wide rows so a chunk stays
-//! under 256 KiB; 64 rows for the hop table). Every dataset has the Fletcher-32 checksum filter, so a
+//! under 256 KiB; 64 rows for the hop and warning tables). Every dataset but
+//! `warnings/text` (variable-length strings cannot be filtered) has the Fletcher-32 checksum filter, so a
 //! damaged data block is reported instead of read; the file is written with
 //! the HDF5 1.8 object format (checksummed metadata), readable by HDF5 ≥ 1.8.
 //!
@@ -103,7 +115,7 @@ use hdf5::types::VarLenUnicode;
 use hdf5::{Dataset, File, Group, H5Type, Location};
 use num_complex::Complex64;
 
-use super::record::{Hop, PartMeta, Status, StepRow, TrajectoryHeader};
+use super::record::{Hop, PartMeta, RowBlock, RowDiagnostics, Status, StepRow, TrajectoryHeader, WarningRow};
 use crate::dynamics::EndReason;
 
 /// Value of the root attribute `format`.
@@ -129,6 +141,9 @@ const CHUNK_ROWS: usize = 256;
 const HOP_CHUNK_ROWS: usize = 64;
 /// Upper bound of a chunk's size in bytes.
 const CHUNK_BYTES: usize = 256 * 1024;
+
+/// Trajectories whose datasets a writer keeps open at most.
+const MAX_OPEN_TRAJECTORIES: usize = 256;
 
 /// Names of the writer states.
 const OPEN: &str = "open";
@@ -245,6 +260,10 @@ pub struct TrajectorySummary {
     pub max_energy_drift: f64,
     /// The failure reason of a failed trajectory.
     pub failure_reason: Option<String>,
+    /// Back-end warnings written.
+    pub warnings: u64,
+    /// The most solver iterations of any row, if the back end reported any.
+    pub max_solver_iterations: Option<i32>,
 }
 
 /// Everything stored for one trajectory.
@@ -256,10 +275,25 @@ pub struct TrajectoryData {
     pub rows: Vec<StepRow>,
     /// Hop attempts.
     pub hops: Vec<Hop>,
+    /// Back-end diagnostics, one per row.
+    pub diagnostics: Vec<RowDiagnostics>,
+    /// Back-end warnings (every step, not only recorded ones).
+    pub warnings: Vec<WarningRow>,
     /// Status ("stopped" and "pending" read as `Running`).
     pub status: Status,
     /// The stored status word.
     pub phase: Phase,
+}
+
+/// Rows, hop attempts and warnings of a trajectory in its file.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct Counts {
+    /// Per-step rows.
+    pub rows: u64,
+    /// Hop attempts.
+    pub hops: u64,
+    /// Warnings.
+    pub warnings: u64,
 }
 
 /// What [`merge`] wrote.
@@ -343,8 +377,32 @@ const TOTAL: Spec = Spec {
     description: "Total energy (kinetic plus active-state potential) of each row.",
 };
 
+const SOLVER_ITERATIONS: Spec = Spec {
+    name: "solver_iterations",
+    width: Width::One,
+    units: "1",
+    description: "Iterations of the back end's first iterative solver (SCF) at each row's step; -1 means none (the back end has no such solver or did not report it).",
+};
+const RESPONSE_ITERATIONS: Spec = Spec {
+    name: "response_iterations",
+    width: Width::One,
+    units: "1",
+    description: "Iterations of the back end's excited-state eigensolver at each row's step; -1 means none.",
+};
+const SPIN_SQUARED: Spec = Spec {
+    name: "spin_squared",
+    width: Width::States,
+    units: "hbar^2",
+    description: "Spin expectation value <S^2> of each state (columns as in energies) at each row's step; NaN means not available from the back end.",
+};
+
 /// The per-step datasets, in the order they are written.
-const ROW_SPECS: [&Spec; 10] = [&TIME, &STEP, &POSITIONS, &VELOCITIES, &ENERGIES, &ACTIVE, &AMPLITUDES, &KINETIC, &POTENTIAL, &TOTAL];
+const ROW_SPECS: [&Spec; 13] = [&TIME, &STEP, &POSITIONS, &VELOCITIES, &ENERGIES, &ACTIVE, &AMPLITUDES, &KINETIC, &POTENTIAL, &TOTAL, &SOLVER_ITERATIONS, &RESPONSE_ITERATIONS, &SPIN_SQUARED];
+
+const WARN_STEP: Spec = Spec { name: "step", width: Width::One, units: "1", description: "Step whose back-end call issued the warning." };
+const WARN_TEXT: Spec = Spec { name: "text", width: Width::One, units: "text", description: "The back end's warning (variable-length UTF-8)." };
+/// Rows per chunk of the warning table.
+const WARN_CHUNK_ROWS: usize = 64;
 
 const HOP_STEP: Spec = Spec { name: "step", width: Width::One, units: "1", description: "Step after which the hop attempt happened." };
 const HOP_TIME: Spec = Spec { name: "time", width: Width::One, units: "a.u. of time", description: "Time of the hop attempt." };
@@ -436,6 +494,15 @@ fn get_str(cx: Ctx, loc: &Location, object: &str, name: &str) -> Result<String, 
     Ok(get_attr::<VarLenUnicode>(cx, loc, object, name)?.as_str().to_string())
 }
 
+/// An optional count attribute (absent in files that predate it: 0).
+fn get_opt_usize(cx: Ctx, loc: &Location, object: &str, name: &str) -> Result<usize, EnsembleError> {
+    if loc.attr_names().map_err(cx.h5(object, "listing attributes"))?.iter().any(|n| n == name) {
+        get_usize(cx, loc, object, name)
+    } else {
+        Ok(0)
+    }
+}
+
 fn get_usize(cx: Ctx, loc: &Location, object: &str, name: &str) -> Result<usize, EnsembleError> {
     let v = get_attr::<u64>(cx, loc, object, name)?;
     usize::try_from(v).map_err(|_| cx.layout(object, format!("attribute `{name}` = {v} does not fit this machine")))
@@ -467,7 +534,9 @@ fn label(cx: Ctx, ds: &Dataset, object: &str, spec: &Spec) -> Result<(), Ensembl
 fn create_series<T: H5Type>(cx: Ctx, group: &Group, parent: &str, spec: &Spec, width: usize, max_rows: usize) -> Result<Dataset, EnsembleError> {
     let object = format!("{parent}/{}", spec.name);
     let rows = chunk_rows(width, std::mem::size_of::<T>()).min(max_rows);
-    let builder = group.new_dataset::<T>().fletcher32();
+    // HDF5 cannot checksum variable-length data (the strings live on its heap).
+    let varlen = matches!(T::type_descriptor(), hdf5::types::TypeDescriptor::VarLenUnicode | hdf5::types::TypeDescriptor::VarLenAscii);
+    let builder = if varlen { group.new_dataset::<T>() } else { group.new_dataset::<T>().fletcher32() };
     let made = if matches!(spec.width, Width::One) {
         builder.chunk(rows).shape(0..).create(spec.name)
     } else {
@@ -744,6 +813,11 @@ pub struct PartWriter {
     path: PathBuf,
     file: File,
     meta: PartMeta,
+    fault: FaultInjector,
+    /// The per-step datasets of the trajectories being written, kept open
+    /// so that their chunk caches hold the last, partly filled chunk (no
+    /// read-back and re-checksum of it at the next append).
+    open: std::collections::HashMap<usize, Vec<Dataset>>,
 }
 
 impl PartWriter {
@@ -759,7 +833,7 @@ impl PartWriter {
             .create_excl(path)
             .map_err(|e| if path.exists() { EnsembleError::Exists { file: path.to_path_buf() } } else { cx.h5("/", "creating the file")(e) })?;
         write_meta(cx, &file, meta)?;
-        let writer = PartWriter { path: path.to_path_buf(), file, meta: meta.clone() };
+        let writer = PartWriter { path: path.to_path_buf(), file, meta: meta.clone(), fault: FaultInjector::from_env(), open: Default::default() };
         writer.file.flush().map_err(cx.h5("/", "flushing"))?;
         Ok(writer)
     }
@@ -776,7 +850,7 @@ impl PartWriter {
         list_groups(cx, &file)?;
         put_str(cx, &file, "/", "writer_state", OPEN)?;
         file.flush().map_err(cx.h5("/", "flushing"))?;
-        Ok((PartWriter { path: path.to_path_buf(), file, meta: meta.clone() }, meta))
+        Ok((PartWriter { path: path.to_path_buf(), file, meta: meta.clone(), fault: FaultInjector::from_env(), open: Default::default() }, meta))
     }
 
     /// The file's metadata.
@@ -830,43 +904,99 @@ impl PartWriter {
         write_status(cx, &g, &object, &Status::Running, Phase::Running)
     }
 
-    /// Appends rows and hop attempts to trajectory `index`. All rows are
-    /// checked before anything is written.
+    /// Appends rows and hop attempts to trajectory `index` (diagnostics
+    /// "none", no warnings). All rows are checked before anything is written.
     pub fn append(&mut self, index: usize, rows: &[StepRow], hops: &[Hop]) -> Result<(), EnsembleError> {
+        self.append_all(index, rows, &[], hops, &[])
+    }
+
+    /// Appends rows with their diagnostics (empty: "none" for every row),
+    /// hop attempts and warnings. Everything is checked before anything is written.
+    pub fn append_all(&mut self, index: usize, rows: &[StepRow], diagnostics: &[RowDiagnostics], hops: &[Hop], warnings: &[WarningRow]) -> Result<(), EnsembleError> {
         let cx = self.cx();
         let object = group_path(index);
         let (n_dof, n_states) = (self.meta.n_dof, self.meta.n_states);
         check_rows(cx, &object, rows, n_dof, n_states)?;
+        if !diagnostics.is_empty() && diagnostics.len() != rows.len() {
+            return Err(cx.input(&object, format!("{} diagnostics for {} rows", diagnostics.len(), rows.len())));
+        }
+        if let Some(k) = diagnostics.iter().position(|d| d.spin_squared.len() != n_states) {
+            return Err(cx.input(&object, format!("diagnostics {k} of the batch: {} <S^2> values for n_states = {n_states}", diagnostics[k].spin_squared.len())));
+        }
+        let mut block = RowBlock::new(n_dof, n_states);
+        let none = RowDiagnostics::none(n_states);
+        for (k, r) in rows.iter().enumerate() {
+            block.push_row(r, diagnostics.get(k).unwrap_or(&none));
+        }
+        self.append_block(index, &block, hops, warnings)
+    }
+
+    /// Appends a block of rows (columns, see [`RowBlock`]), hop attempts and
+    /// warnings. Everything is checked before anything is written; the
+    /// counts attributes are written last.
+    pub fn append_block(&mut self, index: usize, block: &RowBlock, hops: &[Hop], warnings: &[WarningRow]) -> Result<(), EnsembleError> {
+        let cx = Ctx(&self.path);
+        let object = group_path(index);
+        let (n_dof, n_states) = (self.meta.n_dof, self.meta.n_states);
+        check_block(cx, &object, block, n_dof, n_states)?;
         let hop_cols = hop_columns(cx, &object, hops, n_states)?;
         let g = self.group(index)?;
-        let (r0, h0) = self.counts(index)?;
-        if !rows.is_empty() {
-            write_row_columns(cx, &g, &object, r0 as usize, rows, n_dof, n_states)?;
-            put_attr(cx, &g, &object, "steps_written", &(r0 + rows.len() as u64))?;
+        let c = self.all_counts(index)?;
+        if !block.is_empty() {
+            if !self.open.contains_key(&index) {
+                if self.open.len() >= MAX_OPEN_TRAJECTORIES {
+                    self.open.clear();
+                }
+                self.open.insert(index, open_row_sets(cx, &g, &object)?);
+            }
+            let sets = &self.open[&index];
+            write_block(cx, sets, &object, c.rows as usize, block, &mut self.fault)?;
+            put_attr(cx, &g, &object, "steps_written", &(c.rows + block.len() as u64))?;
         }
         if !hops.is_empty() {
-            write_hop_columns(cx, &g, &object, h0 as usize, &hop_cols)?;
-            put_attr(cx, &g, &object, "hops_written", &(h0 + hops.len() as u64))?;
+            self.fault.charge(cx, &format!("{object}/hops"))?;
+            write_hop_columns(cx, &g, &object, c.hops as usize, &hop_cols)?;
+            put_attr(cx, &g, &object, "hops_written", &(c.hops + hops.len() as u64))?;
+        }
+        if !warnings.is_empty() {
+            write_warnings(cx, &g, &object, c.warnings as usize, warnings, &mut self.fault)?;
+            put_attr(cx, &g, &object, "warnings_written", &(c.warnings + warnings.len() as u64))?;
         }
         Ok(())
     }
 
     /// Discards everything written after the first `rows` rows and `hops`
-    /// hop attempts of trajectory `index` (back to a checkpoint).
+    /// hop attempts of trajectory `index` (back to a checkpoint); warnings are kept.
     pub fn truncate(&mut self, index: usize, rows: u64, hops: u64) -> Result<(), EnsembleError> {
+        let warnings = self.all_counts(index)?.warnings;
+        self.truncate_all(index, Counts { rows, hops, warnings })
+    }
+
+    /// Discards everything beyond `keep` (rows, hop attempts, warnings) of trajectory `index`.
+    pub fn truncate_all(&mut self, index: usize, keep: Counts) -> Result<(), EnsembleError> {
+        self.open.remove(&index);
         let cx = self.cx();
         let object = group_path(index);
         let g = self.group(index)?;
         let (n_dof, n_states) = (self.meta.n_dof, self.meta.n_states);
-        truncate_group(cx, &g, &object, ROW_SPECS.iter().map(|s| (s.name, row_width(s, n_dof, n_states), s.width)), rows)?;
+        let present = |s: &&&Spec| g.link_exists(s.name);
+        truncate_group(cx, &g, &object, ROW_SPECS.iter().filter(present).map(|s| (s.name, row_width(s, n_dof, n_states), s.width)), keep.rows)?;
         let hg = g.group("hops").map_err(|_| cx.layout(&format!("{object}/hops"), "group is missing"))?;
-        truncate_group(cx, &hg, &format!("{object}/hops"), HOP_SPECS.iter().map(|s| (s.name, 1, s.width)), hops)?;
-        put_attr(cx, &g, &object, "steps_written", &rows)?;
-        put_attr(cx, &g, &object, "hops_written", &hops)
+        truncate_group(cx, &hg, &format!("{object}/hops"), HOP_SPECS.iter().map(|s| (s.name, 1, s.width)), keep.hops)?;
+        if g.link_exists("warnings") {
+            let wg = g.group("warnings").map_err(cx.h5(&format!("{object}/warnings"), "opening group"))?;
+            truncate_group(cx, &wg, &format!("{object}/warnings"), [&WARN_STEP, &WARN_TEXT].into_iter().map(|s| (s.name, 1, s.width)), keep.warnings)?;
+            put_attr(cx, &g, &object, "warnings_written", &keep.warnings)?;
+        }
+        put_attr(cx, &g, &object, "steps_written", &keep.rows)?;
+        put_attr(cx, &g, &object, "hops_written", &keep.hops)
     }
 
     /// Records the status of trajectory `index`.
     pub fn set_status(&mut self, index: usize, status: &Status) -> Result<(), EnsembleError> {
+        if !matches!(status, Status::Running) {
+            self.open.remove(&index);
+        }
         let g = self.group(index)?;
         write_status(self.cx(), &g, &group_path(index), status, status_attrs(status).0)
     }
@@ -874,6 +1004,7 @@ impl PartWriter {
     /// Marks trajectory `index` "stopped": interrupted, resumable. Reads
     /// back as `Status::Running` with [`Phase::Stopped`].
     pub fn mark_stopped(&mut self, index: usize) -> Result<(), EnsembleError> {
+        self.open.remove(&index);
         let g = self.group(index)?;
         write_status(self.cx(), &g, &group_path(index), &Status::Running, Phase::Stopped)
     }
@@ -890,14 +1021,39 @@ impl PartWriter {
         Ok((rows, hops))
     }
 
+    /// Rows, hop attempts and warnings written for trajectory `index` (the
+    /// lengths of `time`, `hops/step` and `warnings/step`).
+    pub fn all_counts(&self, index: usize) -> Result<Counts, EnsembleError> {
+        let (rows, hops) = self.counts(index)?;
+        let cx = self.cx();
+        let object = group_path(index);
+        let g = self.group(index)?;
+        let warnings = if g.link_exists("warnings") {
+            let wg = g.group("warnings").map_err(cx.h5(&format!("{object}/warnings"), "opening group"))?;
+            n_rows(&open_ds(cx, &wg, &format!("{object}/warnings"), WARN_STEP.name)?)
+        } else {
+            0
+        };
+        Ok(Counts { rows, hops, warnings })
+    }
+
     /// Writes everything to disk (H5Fflush): after it returns, the file is
     /// consistent and readable even if the process dies.
     pub fn flush(&mut self) -> Result<(), EnsembleError> {
         self.file.flush().map_err(self.cx().h5("/", "flushing"))
     }
 
+    /// Makes what [`PartWriter::flush`] wrote durable (fsync of the file),
+    /// so that checkpoints written afterwards never claim rows a power cut
+    /// could lose.
+    pub fn sync(&mut self) -> Result<(), EnsembleError> {
+        let f = std::fs::File::open(&self.path).map_err(|source| EnsembleError::Io { file: self.path.clone(), what: "opening to sync".into(), source })?;
+        f.sync_data().map_err(|source| EnsembleError::Io { file: self.path.clone(), what: "syncing to disk".into(), source })
+    }
+
     /// Sets `writer_state` = "closed", flushes and closes the file.
-    pub fn close(self) -> Result<(), EnsembleError> {
+    pub fn close(mut self) -> Result<(), EnsembleError> {
+        self.open.clear();
         let cx = Ctx(&self.path);
         put_str(cx, &self.file, "/", "writer_state", CLOSED)?;
         self.file.flush().map_err(cx.h5("/", "flushing"))?;
@@ -913,6 +1069,7 @@ fn create_trajectory(cx: Ctx, traj: &Group, h: &TrajectoryHeader, n_dof: usize, 
     put_attr(cx, &g, &object, "initial_state", &(h.initial_state as u64))?;
     put_attr(cx, &g, &object, "steps_written", &0u64)?;
     put_attr(cx, &g, &object, "hops_written", &0u64)?;
+    put_attr(cx, &g, &object, "warnings_written", &0u64)?;
     let q0 = Spec { name: "initial_positions", width: Width::Dof, units: MODEL_COORDS, description: "Initial nuclear coordinates (the sampled initial condition). Cartesian coordinates in bohr for molecules; for model Hamiltonians the model's own coordinates as defined in config_toml." };
     let v0 = Spec { name: "initial_velocities", width: Width::Dof, units: MODEL_VELOCITIES, description: "Initial nuclear velocities (the sampled initial condition)." };
     create_fixed(cx, &g, &object, &q0, &h.q0)?;
@@ -922,6 +1079,7 @@ fn create_trajectory(cx: Ctx, traj: &Group, h: &TrajectoryHeader, n_dof: usize, 
         match spec.name {
             "step" => create_series::<u64>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
             "active_state" => create_series::<u32>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
+            "solver_iterations" | "response_iterations" => create_series::<i32>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
             "amplitudes" => create_series::<Complex64>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
             _ => create_series::<f64>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
         };
@@ -937,6 +1095,11 @@ fn create_trajectory(cx: Ctx, traj: &Group, h: &TrajectoryHeader, n_dof: usize, 
             _ => create_series::<f64>(cx, &hg, &hobject, spec, 1, HOP_CHUNK_ROWS)?,
         };
     }
+    let wobject = format!("{object}/warnings");
+    let wg = g.create_group("warnings").map_err(cx.h5(&wobject, "creating group"))?;
+    put_str(cx, &wg, &wobject, "description", "Non-fatal warnings of the back end, one row per warning, from every step (not only the recorded ones).")?;
+    create_series::<u64>(cx, &wg, &wobject, &WARN_STEP, 1, WARN_CHUNK_ROWS)?;
+    create_series::<VarLenUnicode>(cx, &wg, &wobject, &WARN_TEXT, 1, WARN_CHUNK_ROWS)?;
     Ok(g)
 }
 
@@ -953,26 +1116,105 @@ fn check_rows(cx: Ctx, object: &str, rows: &[StepRow], n_dof: usize, n_states: u
     Ok(())
 }
 
-fn write_row_columns(cx: Ctx, g: &Group, object: &str, start: usize, rows: &[StepRow], n_dof: usize, n_states: usize) -> Result<(), EnsembleError> {
-    let col = |f: fn(&StepRow) -> f64| rows.iter().map(f).collect::<Vec<f64>>();
-    let flat = |f: fn(&StepRow) -> &[f64]| rows.iter().flat_map(|r| f(r).iter().copied()).collect::<Vec<f64>>();
-    let put_f64 = |spec: &Spec, w: usize, data: Vec<f64>| -> Result<(), EnsembleError> {
+/// Counts dataset writes and fails the Nth one on request (a test hook for
+/// a full disk: `FLIPSWARM_INJECT_WRITE_FAILURE=N` makes the Nth dataset
+/// write of a writer fail as if the disk were full).
+#[derive(Debug, Default)]
+struct FaultInjector {
+    remaining: Option<u64>,
+}
+
+/// The environment variable read by [`FaultInjector`].
+pub const INJECT_WRITE_FAILURE: &str = "FLIPSWARM_INJECT_WRITE_FAILURE";
+
+impl FaultInjector {
+    fn from_env() -> Self {
+        Self { remaining: std::env::var(INJECT_WRITE_FAILURE).ok().and_then(|v| v.trim().parse().ok()) }
+    }
+
+    fn charge(&mut self, cx: Ctx, object: &str) -> Result<(), EnsembleError> {
+        match &mut self.remaining {
+            Some(0) => Err(EnsembleError::Io {
+                file: cx.0.to_path_buf(),
+                what: format!("{object}: writing rows (failure injected by {INJECT_WRITE_FAILURE})"),
+                source: std::io::Error::from_raw_os_error(libc::ENOSPC),
+            }),
+            Some(n) => {
+                *n -= 1;
+                Ok(())
+            }
+            None => Ok(()),
+        }
+    }
+}
+
+/// The per-step datasets of a trajectory, opened (in [`ROW_SPECS`] order).
+fn open_row_sets(cx: Ctx, g: &Group, object: &str) -> Result<Vec<Dataset>, EnsembleError> {
+    ROW_SPECS.iter().map(|spec| open_ds(cx, g, object, spec.name)).collect()
+}
+
+fn write_block(cx: Ctx, sets: &[Dataset], object: &str, start: usize, b: &RowBlock, fault: &mut FaultInjector) -> Result<(), EnsembleError> {
+    let (n_dof, n_states) = (b.n_dof, b.n_states);
+    let mut k = 0;
+    let mut put = |spec: &Spec, _w: usize, write: &dyn Fn(&Dataset, &str) -> Result<(), EnsembleError>| -> Result<(), EnsembleError> {
         let o = format!("{object}/{}", spec.name);
-        append_rows(cx, &open_ds(cx, g, object, spec.name)?, &o, start, w, &data)
+        fault.charge(cx, &o)?;
+        debug_assert_eq!(ROW_SPECS[k].name, spec.name);
+        k += 1;
+        write(&sets[k - 1], &o)
     };
-    put_f64(&TIME, 1, col(|r| r.time))?;
-    let steps: Vec<u64> = rows.iter().map(|r| r.step).collect();
-    append_rows(cx, &open_ds(cx, g, object, STEP.name)?, &format!("{object}/step"), start, 1, &steps)?;
-    put_f64(&POSITIONS, n_dof, flat(|r| &r.q))?;
-    put_f64(&VELOCITIES, n_dof, flat(|r| &r.v))?;
-    put_f64(&ENERGIES, n_states, flat(|r| &r.energies))?;
-    let active: Vec<u32> = rows.iter().map(|r| r.active).collect();
-    append_rows(cx, &open_ds(cx, g, object, ACTIVE.name)?, &format!("{object}/active_state"), start, 1, &active)?;
-    let amps: Vec<Complex64> = rows.iter().flat_map(|r| r.amplitudes.iter().copied()).collect();
-    append_rows(cx, &open_ds(cx, g, object, AMPLITUDES.name)?, &format!("{object}/amplitudes"), start, n_states, &amps)?;
-    put_f64(&KINETIC, 1, col(|r| r.kinetic))?;
-    put_f64(&POTENTIAL, 1, col(|r| r.potential))?;
-    put_f64(&TOTAL, 1, col(|r| r.total))
+    put(&TIME, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.time))?;
+    put(&STEP, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.step))?;
+    put(&POSITIONS, n_dof, &|ds, o| append_rows(cx, ds, o, start, n_dof, &b.q))?;
+    put(&VELOCITIES, n_dof, &|ds, o| append_rows(cx, ds, o, start, n_dof, &b.v))?;
+    put(&ENERGIES, n_states, &|ds, o| append_rows(cx, ds, o, start, n_states, &b.energies))?;
+    put(&ACTIVE, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.active))?;
+    put(&AMPLITUDES, n_states, &|ds, o| append_rows(cx, ds, o, start, n_states, &b.amplitudes))?;
+    put(&KINETIC, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.kinetic))?;
+    put(&POTENTIAL, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.potential))?;
+    put(&TOTAL, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.total))?;
+    put(&SOLVER_ITERATIONS, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.iterations))?;
+    put(&RESPONSE_ITERATIONS, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.response_iterations))?;
+    put(&SPIN_SQUARED, n_states, &|ds, o| append_rows(cx, ds, o, start, n_states, &b.spin_squared))
+}
+
+fn check_block(cx: Ctx, object: &str, b: &RowBlock, n_dof: usize, n_states: usize) -> Result<(), EnsembleError> {
+    let n = b.len();
+    if b.n_dof != n_dof || b.n_states != n_states {
+        return Err(cx.input(object, format!("row block of {} coordinates and {} states for n_dof = {n_dof}, n_states = {n_states}", b.n_dof, b.n_states)));
+    }
+    let lens = [
+        ("times", b.time.len(), n),
+        ("coordinates", b.q.len(), n * n_dof),
+        ("velocities", b.v.len(), n * n_dof),
+        ("energies", b.energies.len(), n * n_states),
+        ("active states", b.active.len(), n),
+        ("amplitudes", b.amplitudes.len(), n * n_states),
+        ("kinetic energies", b.kinetic.len(), n),
+        ("potential energies", b.potential.len(), n),
+        ("total energies", b.total.len(), n),
+        ("solver iterations", b.iterations.len(), n),
+        ("response iterations", b.response_iterations.len(), n),
+        ("<S^2> values", b.spin_squared.len(), n * n_states),
+    ];
+    if let Some((what, got, want)) = lens.into_iter().find(|(_, got, want)| got != want) {
+        return Err(cx.input(object, format!("row block of {n} rows: {got} {what}, expected {want}")));
+    }
+    if let Some(k) = b.active.iter().position(|&a| a as usize >= n_states) {
+        return Err(cx.input(object, format!("row {k} of the batch (step {}): active state {} for n_states = {n_states}", b.step[k], b.active[k])));
+    }
+    Ok(())
+}
+
+fn write_warnings(cx: Ctx, g: &Group, object: &str, start: usize, warnings: &[WarningRow], fault: &mut FaultInjector) -> Result<(), EnsembleError> {
+    let wobject = format!("{object}/warnings");
+    let wg = g.group("warnings").map_err(|_| cx.layout(&wobject, "group is missing"))?;
+    let steps: Vec<u64> = warnings.iter().map(|w| w.step).collect();
+    let texts = warnings.iter().map(|w| vlen(cx, &wobject, "text", &w.text)).collect::<Result<Vec<_>, _>>()?;
+    fault.charge(cx, &format!("{wobject}/step"))?;
+    append_rows(cx, &open_ds(cx, &wg, &wobject, "step")?, &format!("{wobject}/step"), start, 1, &steps)?;
+    fault.charge(cx, &format!("{wobject}/text"))?;
+    append_rows(cx, &open_ds(cx, &wg, &wobject, "text")?, &format!("{wobject}/text"), start, 1, &texts)
 }
 
 /// Hop attempts as columns, checked.
@@ -1147,6 +1389,13 @@ impl PartReader {
             Status::Failed { reason, .. } => Some(reason.clone()),
             _ => None,
         };
+        let warnings = get_opt_usize(cx, &g, &object, "warnings_written")? as u64;
+        let max_solver_iterations = if g.link_exists(SOLVER_ITERATIONS.name) {
+            let it = read_rows::<i32>(cx, &open_ds(cx, &g, &object, SOLVER_ITERATIONS.name)?, &format!("{object}/{}", SOLVER_ITERATIONS.name), rows, None)?;
+            it.into_iter().filter(|&i| i >= 0).max()
+        } else {
+            None
+        };
         Ok(TrajectorySummary {
             index,
             status,
@@ -1157,6 +1406,8 @@ impl PartReader {
             active_state: active.last().copied(),
             max_energy_drift,
             failure_reason,
+            warnings,
+            max_solver_iterations,
         })
     }
 
@@ -1168,9 +1419,12 @@ impl PartReader {
         let header = read_header(cx, &g, &object, index, self.meta.n_dof)?;
         let (status, phase) = read_status(cx, &g, &object)?;
         let (rows, hops) = self.counts(&g, &object)?;
+        let warnings = get_opt_usize(cx, &g, &object, "warnings_written")?;
+        let diagnostics = read_diagnostics(cx, &g, &object, rows, self.meta.n_states, false)?;
         let rows = read_step_rows(cx, &g, &object, rows, self.meta.n_dof, self.meta.n_states, false)?;
         let hops = read_hops(cx, &g, &object, hops, false)?;
-        Ok(TrajectoryData { header, rows, hops, status, phase })
+        let warnings = read_warnings(cx, &g, &object, warnings, false)?;
+        Ok(TrajectoryData { header, rows, hops, diagnostics, warnings, status, phase })
     }
 
     /// The status attributes of trajectory `index` only (no datasets read).
@@ -1185,15 +1439,59 @@ impl PartReader {
     /// between two flushes can leave behind. Resume uses it to keep exactly
     /// the rows a checkpoint vouches for.
     pub fn read_prefix(&self, index: usize, rows: u64, hops: u64) -> Result<TrajectoryData, EnsembleError> {
+        self.read_prefix_all(index, Counts { rows, hops, warnings: 0 })
+    }
+
+    /// As [`PartReader::read_prefix`], with the first `keep.warnings` warnings too.
+    pub fn read_prefix_all(&self, index: usize, keep: Counts) -> Result<TrajectoryData, EnsembleError> {
         let cx = Ctx(&self.path);
         let object = group_path(index);
         let g = self.group(index)?;
         let header = read_header(cx, &g, &object, index, self.meta.n_dof)?;
         let (status, phase) = read_status(cx, &g, &object)?;
-        let rows = read_step_rows(cx, &g, &object, rows as usize, self.meta.n_dof, self.meta.n_states, true)?;
-        let hops = read_hops(cx, &g, &object, hops as usize, true)?;
-        Ok(TrajectoryData { header, rows, hops, status, phase })
+        let diagnostics = read_diagnostics(cx, &g, &object, keep.rows as usize, self.meta.n_states, true)?;
+        let rows = read_step_rows(cx, &g, &object, keep.rows as usize, self.meta.n_dof, self.meta.n_states, true)?;
+        let hops = read_hops(cx, &g, &object, keep.hops as usize, true)?;
+        let warnings = read_warnings(cx, &g, &object, keep.warnings as usize, true)?;
+        Ok(TrajectoryData { header, rows, hops, diagnostics, warnings, status, phase })
     }
+}
+
+/// Reads `path` completely in a forked child process first (root layout,
+/// every trajectory's status and, with `everything`, all its data) and
+/// reports a crash of that child as a damaged file. The HDF5 C library
+/// (1.10) can crash on some damaged files instead of returning an error —
+/// found by fuzzing: a flipped byte in the global heap that holds the
+/// variable-length string attributes makes `H5HG_read` copy out of bounds.
+/// The command-line tools probe a file before reading it so that such a
+/// file gets a message, not a segmentation fault.
+///
+/// Only for single-threaded callers (the child inherits no other thread, and
+/// a lock another thread held at the fork would never be released in it).
+pub fn probe_in_child(path: &Path, everything: bool) -> Result<(), EnsembleError> {
+    // SAFETY: the child only reads the file and leaves with `_exit`, running
+    // no destructors and flushing nothing of the parent's.
+    let pid = unsafe { libc::fork() };
+    if pid < 0 {
+        return Ok(()); // cannot fork: read directly
+    }
+    if pid == 0 {
+        let ok = PartReader::open(path).is_ok_and(|r| {
+            r.trajectory_indices().into_iter().all(|i| if everything { r.read(i).is_ok() } else { r.summary(i).is_ok() })
+        });
+        // SAFETY: ends the child at once.
+        unsafe { libc::_exit(if ok { 0 } else { 1 }) };
+    }
+    let mut status = 0;
+    // SAFETY: waiting for our own child.
+    let rc = unsafe { libc::waitpid(pid, &mut status, 0) };
+    if rc == pid && libc::WIFSIGNALED(status) {
+        return Err(Ctx(path).layout(
+            "/",
+            format!("the file is damaged: reading it crashed the HDF5 library (signal {}); restore it from a copy, or resume/rerun the slice that wrote it", libc::WTERMSIG(status)),
+        ));
+    }
+    Ok(())
 }
 
 fn read_step_rows(cx: Ctx, g: &Group, object: &str, n: usize, n_dof: usize, n_states: usize, prefix: bool) -> Result<Vec<StepRow>, EnsembleError> {
@@ -1222,6 +1520,30 @@ fn read_step_rows(cx: Ctx, g: &Group, object: &str, n: usize, n_dof: usize, n_st
             total: tot[k],
         })
         .collect())
+}
+
+/// The diagnostics of the first `n` rows; "none" for files that predate them.
+fn read_diagnostics(cx: Ctx, g: &Group, object: &str, n: usize, n_states: usize, prefix: bool) -> Result<Vec<RowDiagnostics>, EnsembleError> {
+    if !g.link_exists(SOLVER_ITERATIONS.name) {
+        return Ok(vec![RowDiagnostics::none(n_states); n]);
+    }
+    let o = |spec: &Spec| format!("{object}/{}", spec.name);
+    let it = read_rows_from::<i32>(cx, &open_ds(cx, g, object, SOLVER_ITERATIONS.name)?, &o(&SOLVER_ITERATIONS), n, None, prefix)?;
+    let rit = read_rows_from::<i32>(cx, &open_ds(cx, g, object, RESPONSE_ITERATIONS.name)?, &o(&RESPONSE_ITERATIONS), n, None, prefix)?;
+    let s2 = read_rows_from::<f64>(cx, &open_ds(cx, g, object, SPIN_SQUARED.name)?, &o(&SPIN_SQUARED), n, Some(n_states), prefix)?;
+    Ok((0..n).map(|k| RowDiagnostics { iterations: it[k], response_iterations: rit[k], spin_squared: s2[k * n_states..(k + 1) * n_states].to_vec() }).collect())
+}
+
+/// The first `n` warnings; none for files that predate them.
+fn read_warnings(cx: Ctx, g: &Group, object: &str, n: usize, prefix: bool) -> Result<Vec<WarningRow>, EnsembleError> {
+    if !g.link_exists("warnings") {
+        return if n == 0 { Ok(vec![]) } else { Err(cx.layout(&format!("{object}/warnings"), "group is missing")) };
+    }
+    let wobject = format!("{object}/warnings");
+    let wg = g.group("warnings").map_err(cx.h5(&wobject, "opening group"))?;
+    let steps = read_rows_from::<u64>(cx, &open_ds(cx, &wg, &wobject, "step")?, &format!("{wobject}/step"), n, None, prefix)?;
+    let texts = read_rows_from::<VarLenUnicode>(cx, &open_ds(cx, &wg, &wobject, "text")?, &format!("{wobject}/text"), n, None, prefix)?;
+    Ok(steps.into_iter().zip(texts).map(|(step, t)| WarningRow { step, text: t.as_str().to_string() }).collect())
 }
 
 fn read_hops(cx: Ctx, g: &Group, object: &str, n: usize, prefix: bool) -> Result<Vec<Hop>, EnsembleError> {
@@ -1264,6 +1586,20 @@ fn read_hops(cx: Ctx, g: &Group, object: &str, n: usize, prefix: bool) -> Result
 pub fn merge(parts: &[PathBuf], out: &Path) -> Result<MergeReport, EnsembleError> {
     if out.exists() {
         return Err(EnsembleError::Exists { file: out.to_path_buf() });
+    }
+    merge_checked(parts, out, false)
+}
+
+/// [`merge`], probing every part in a child process first when `probe`
+/// (see [`probe_in_child`]; for single-threaded callers such as the CLI).
+pub fn merge_checked(parts: &[PathBuf], out: &Path, probe: bool) -> Result<MergeReport, EnsembleError> {
+    if out.exists() {
+        return Err(EnsembleError::Exists { file: out.to_path_buf() });
+    }
+    if probe {
+        for p in parts {
+            probe_in_child(p, true)?;
+        }
     }
     let readers = open_parts(parts)?;
     let owner = check_disjoint(&readers)?;
@@ -1348,7 +1684,7 @@ fn write_merged(readers: &[PartReader], meta: &PartMeta, out: &Path) -> Result<M
         for &index in &r.indices {
             let data = r.read(index)?;
             w.begin(&data.header)?;
-            w.append(index, &data.rows, &data.hops)?;
+            w.append_all(index, &data.rows, &data.diagnostics, &data.hops, &data.warnings)?;
             let g = w.group(index)?;
             write_status(Ctx(out), &g, &group_path(index), &data.status, data.phase)?;
             report.trajectories += 1;

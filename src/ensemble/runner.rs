@@ -9,14 +9,21 @@
 //! ```
 //!
 //! One writer thread owns the part file; the trajectories, run in parallel
-//! by rayon, send it their rows. A trajectory checkpoints by sending its rows
-//! with an acknowledgement request (the writer appends and flushes, then
-//! answers) and only then writing its checkpoint file, so a checkpoint never
-//! claims rows that are not on disk. On resume, rows beyond a checkpoint are
+//! by rayon, buffer their rows in columns ([`RowBlock`]) and send them in
+//! blocks (at each checkpoint, and whenever a block passes
+//! [`BLOCK_BYTES`]). A trajectory checkpoints by handing its rows together
+//! with its state to the writer and going on at once: the writer appends
+//! the rows, and at its next commit — as soon as its queue is empty —
+//! flushes the part file, syncs it to disk and only then writes the
+//! checkpoint files (newest per trajectory; older ones still queued are
+//! superseded), so a checkpoint never claims rows that are not on disk and
+//! the trajectories never wait for the disk. A killed process loses at most
+//! the steps after the last checkpoint that reached the disk. On resume, rows beyond a checkpoint are
 //! truncated and recomputed; because every trajectory is deterministic given
 //! its state, generator and snapshot, the continued trajectory is bit-for-bit
 //! the one that never stopped.
 
+use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{self, RecvTimeoutError, SyncSender};
@@ -26,11 +33,11 @@ use std::time::{Duration, Instant};
 use rayon::prelude::*;
 
 use super::checkpoint::{self, with_suffix, Checkpoint, Source};
-use super::h5::{now_rfc3339, EnsembleError, PartReader, PartWriter, WriterState};
-use super::record::{PartMeta, StepRow, TrajectoryHeader};
+use super::h5::{now_rfc3339, Counts, EnsembleError, PartReader, PartWriter, WriterState};
+use super::record::{PartMeta, RowBlock, TrajectoryHeader, WarningRow};
 use crate::config::RunConfig;
 use crate::dynamics::{Flow, Hop, Observer, RecordKind, Status, StepRecord, Trajectory, TrajectoryState};
-use crate::electronic::Backend;
+use crate::electronic::{Backend, Snapshot};
 use crate::swarm::{self, Progress};
 
 /// Creates the back end of trajectory `index` (tests inject faults here).
@@ -90,101 +97,253 @@ fn checkpoint_dir(dir: &Path, k: usize) -> PathBuf {
     dir.join("checkpoints").join(format!("part-{k:04}"))
 }
 
+/// A trajectory sends its buffered rows to the writer every this many rows,
+/// checkpoint or not (bounds the memory of long checkpoint intervals). A
+/// multiple of the datasets' chunk length (256 rows), so that the writer
+/// fills whole chunks and never reads a partial one back.
+pub const BLOCK_ROWS: usize = 1024;
+
+/// … or once they pass this size (very wide rows).
+pub const BLOCK_BYTES: usize = 8 << 20;
+
+/// The writer commits (flush, sync, checkpoint files) at the latest after
+/// this many queued checkpoints, even if its queue never empties.
+const COMMIT_AFTER_CHECKPOINTS: usize = 256;
+
+/// A checkpoint handed to the writer: written once its rows are on disk.
+struct PendingCheckpoint {
+    path: PathBuf,
+    state: TrajectoryState,
+    snapshot: Snapshot,
+}
+
+/// What a trajectory hands the writer in one message.
+struct Batch {
+    index: usize,
+    rows: RowBlock,
+    hops: Vec<Hop>,
+    warnings: Vec<WarningRow>,
+}
+
 /// Messages to the writer thread.
 enum ToWriter {
     Begin(TrajectoryHeader),
-    /// Append rows; with `ack`, flush and answer with the counts on disk.
-    Append { index: usize, rows: Vec<StepRow>, hops: Vec<Hop>, ack: Option<SyncSender<Result<(u64, u64), String>>> },
-    /// Final rows and status; the checkpoint files are removed after the next flush.
-    Finish { index: usize, rows: Vec<StepRow>, hops: Vec<Hop>, status: Status, checkpoint: PathBuf },
-    /// Final rows of a stopped trajectory, with acknowledgement.
-    Stop { index: usize, rows: Vec<StepRow>, hops: Vec<Hop>, ack: SyncSender<Result<(u64, u64), String>> },
+    /// Append rows; with a checkpoint, write it at the next commit.
+    Append { batch: Batch, checkpoint: Option<Box<PendingCheckpoint>> },
+    /// Final rows and status; the checkpoint files are removed after the next commit.
+    Finish { batch: Batch, status: Status, checkpoint: PathBuf },
+    /// Final rows and checkpoint of a stopped trajectory: commit at once and answer.
+    Stop { batch: Batch, checkpoint: Box<PendingCheckpoint>, ack: SyncSender<Result<(), String>> },
 }
 
-fn writer_loop(mut w: PartWriter, rx: mpsc::Receiver<ToWriter>) -> Result<(), String> {
-    let mut dirty = false;
-    let mut last_flush = Instant::now();
-    let mut to_remove: Vec<PathBuf> = Vec::new();
-    let mut failure: Option<String> = None;
-    let flush = |w: &mut PartWriter, to_remove: &mut Vec<PathBuf>, dirty: &mut bool| -> Result<(), String> {
-        w.flush().map_err(|e| e.to_string())?;
-        for p in to_remove.drain(..) {
+/// Emptied row blocks, handed back by the writer so that trajectories
+/// reuse their buffers (no allocation and page faults per block).
+type BlockPool = Arc<Mutex<Vec<RowBlock>>>;
+
+/// Blocks kept in the pool at most.
+const POOL_BLOCKS: usize = 64;
+
+/// The writer thread's state.
+struct WriterLoop {
+    pool: BlockPool,
+    w: PartWriter,
+    /// Rows, hops and warnings in the file per trajectory (after the appends so far).
+    counts: HashMap<usize, Counts>,
+    /// The newest checkpoint per trajectory not yet written, with the counts it covers.
+    pending: BTreeMap<usize, (Box<PendingCheckpoint>, Counts)>,
+    /// Checkpoints of ended trajectories, removed at the next commit.
+    to_remove: Vec<PathBuf>,
+    dirty: bool,
+    queued_checkpoints: usize,
+    failure: Option<String>,
+    stop: Arc<AtomicBool>,
+    last_flush: Instant,
+}
+
+impl WriterLoop {
+    fn append(&mut self, b: &Batch) -> Result<Counts, String> {
+        let c = match self.counts.get(&b.index) {
+            Some(c) => *c,
+            None => self.w.all_counts(b.index).map_err(|e| e.to_string())?,
+        };
+        self.dirty = true;
+        if !(b.rows.is_empty() && b.hops.is_empty() && b.warnings.is_empty()) {
+            self.w.append_block(b.index, &b.rows, &b.hops, &b.warnings).map_err(|e| e.to_string())?;
+        }
+        let c = Counts { rows: c.rows + b.rows.len() as u64, hops: c.hops + b.hops.len() as u64, warnings: c.warnings + b.warnings.len() as u64 };
+        self.counts.insert(b.index, c);
+        Ok(c)
+    }
+
+    /// Return a written block's buffers to the pool.
+    fn recycle(&self, mut rows: RowBlock) {
+        if rows.q.capacity() == 0 {
+            return;
+        }
+        rows.clear();
+        let mut pool = self.pool.lock().unwrap_or_else(|p| p.into_inner());
+        if pool.len() < POOL_BLOCKS {
+            pool.push(rows);
+        }
+    }
+
+    fn handle(&mut self, msg: ToWriter) -> Result<(), String> {
+        let msg = match msg {
+            ToWriter::Append { batch, checkpoint } => {
+                let r = self.handle_append(&batch, checkpoint);
+                self.recycle(batch.rows);
+                return r;
+            }
+            other => other,
+        };
+        match msg {
+            ToWriter::Begin(h) => {
+                self.dirty = true;
+                self.counts.remove(&h.index);
+                self.w.begin(&h).map_err(|e| e.to_string())
+            }
+            ToWriter::Append { .. } => unreachable!("handled above"),
+            ToWriter::Finish { batch, status, checkpoint } => {
+                self.append(&batch)?;
+                self.w.set_status(batch.index, &status).map_err(|e| e.to_string())?;
+                // A checkpoint still queued is superseded by the end itself.
+                self.pending.remove(&batch.index);
+                self.to_remove.push(checkpoint);
+                Ok(())
+            }
+            ToWriter::Stop { batch, checkpoint, ack } => {
+                let result = (|| {
+                    let c = self.append(&batch)?;
+                    self.w.mark_stopped(batch.index).map_err(|e| e.to_string())?;
+                    self.pending.insert(batch.index, (checkpoint, c));
+                    self.commit()
+                })();
+                let _ = ack.send(result.clone());
+                result
+            }
+        }
+    }
+
+    fn handle_append(&mut self, batch: &Batch, checkpoint: Option<Box<PendingCheckpoint>>) -> Result<(), String> {
+        let c = self.append(batch)?;
+        if let Some(ck) = checkpoint {
+            self.pending.insert(batch.index, (ck, c));
+            self.queued_checkpoints += 1;
+        }
+        Ok(())
+    }
+
+    /// Flush the part file; when checkpoints are queued, sync it to disk and
+    /// write them; remove the checkpoints of ended trajectories.
+    fn commit(&mut self) -> Result<(), String> {
+        self.commit_if(false)
+    }
+
+    /// [`WriterLoop::commit`]; unless `force`, only when checkpoints are
+    /// queued or the last flush is 2 s old (removing the checkpoints of
+    /// ended trajectories can wait: until then a resume recomputes them from
+    /// the checkpoint, to the same result).
+    fn commit_if(&mut self, force: bool) -> Result<(), String> {
+        if let Some(e) = &self.failure {
+            return Err(e.clone());
+        }
+        if !self.dirty && self.pending.is_empty() && self.to_remove.is_empty() {
+            return Ok(());
+        }
+        if !force && self.pending.is_empty() && self.last_flush.elapsed() < Duration::from_secs(2) {
+            // Rows that no checkpoint vouches for need no flush yet.
+            return Ok(());
+        }
+        self.last_flush = Instant::now();
+        self.w.flush().map_err(|e| e.to_string())?;
+        if !self.pending.is_empty() {
+            self.w.sync().map_err(|e| e.to_string())?;
+            let batch: Vec<(PathBuf, Checkpoint)> = std::mem::take(&mut self.pending)
+                .into_iter()
+                .map(|(index, (ck, c))| {
+                    let PendingCheckpoint { path, state, snapshot } = *ck;
+                    let ckpt = Checkpoint {
+                        format: checkpoint::FORMAT.into(),
+                        version: 1,
+                        index,
+                        rows_written: c.rows,
+                        hops_written: c.hops,
+                        warnings_written: c.warnings,
+                        state,
+                        snapshot,
+                    };
+                    (path, ckpt)
+                })
+                .collect();
+            checkpoint::write_batch(&batch).map_err(|e| e.to_string())?;
+        }
+        for p in self.to_remove.drain(..) {
             checkpoint::remove(&p);
         }
-        *dirty = false;
+        self.dirty = false;
+        self.queued_checkpoints = 0;
         Ok(())
-    };
+    }
+
+    fn fail(&mut self, e: String) {
+        if self.failure.is_none() {
+            tracing::error!("writing {} failed: {e}; stopping every trajectory (resumable from its last checkpoint)", self.w.path().display());
+            self.failure = Some(e);
+            self.pending.clear();
+            self.to_remove.clear();
+        }
+        // Nothing more can be saved: every trajectory stops at its next step.
+        self.stop.store(true, Ordering::Relaxed);
+    }
+}
+
+fn writer_loop(w: PartWriter, rx: mpsc::Receiver<ToWriter>, stop: Arc<AtomicBool>, pool: BlockPool) -> Result<(), String> {
+    let mut st = WriterLoop { pool, w, counts: HashMap::new(), pending: BTreeMap::new(), to_remove: Vec::new(), dirty: false, queued_checkpoints: 0, failure: None, stop, last_flush: Instant::now() };
     loop {
-        let msg = match rx.recv_timeout(Duration::from_millis(500)) {
+        let msg = match rx.try_recv() {
             Ok(m) => m,
-            Err(RecvTimeoutError::Timeout) => {
-                if dirty && failure.is_none() {
-                    if let Err(e) = flush(&mut w, &mut to_remove, &mut dirty) {
-                        failure = Some(e);
+            Err(mpsc::TryRecvError::Disconnected) => break,
+            Err(mpsc::TryRecvError::Empty) => {
+                // Idle: commit what came so far, then wait.
+                if st.failure.is_none() {
+                    if let Err(e) = st.commit() {
+                        st.fail(e);
                     }
-                    last_flush = Instant::now();
                 }
-                continue;
+                match rx.recv_timeout(Duration::from_millis(500)) {
+                    Ok(m) => m,
+                    Err(RecvTimeoutError::Timeout) => continue,
+                    Err(RecvTimeoutError::Disconnected) => break,
+                }
             }
-            Err(RecvTimeoutError::Disconnected) => break,
         };
-        let result: Result<Option<(SyncSender<_>, usize)>, String> = (|| match msg {
-            ToWriter::Begin(h) => {
-                w.begin(&h).map_err(|e| e.to_string())?;
-                Ok(None)
+        if st.failure.is_some() {
+            // Write nothing more; answer stops with the failure.
+            if let ToWriter::Stop { ack, .. } = msg {
+                let _ = ack.send(Err(st.failure.clone().unwrap_or_default()));
             }
-            ToWriter::Append { index, rows, hops, ack } => {
-                w.append(index, &rows, &hops).map_err(|e| e.to_string())?;
-                Ok(ack.map(|a| (a, index)))
-            }
-            ToWriter::Finish { index, rows, hops, status, checkpoint } => {
-                w.append(index, &rows, &hops).map_err(|e| e.to_string())?;
-                w.set_status(index, &status).map_err(|e| e.to_string())?;
-                to_remove.push(checkpoint);
-                Ok(None)
-            }
-            ToWriter::Stop { index, rows, hops, ack } => {
-                w.append(index, &rows, &hops).map_err(|e| e.to_string())?;
-                w.mark_stopped(index).map_err(|e| e.to_string())?;
-                Ok(Some((ack, index)))
-            }
-        })();
-        dirty = true;
-        match result {
-            Err(e) => {
-                failure.get_or_insert(e);
-            }
-            Ok(Some((ack, index))) => {
-                let answer = match &failure {
-                    Some(e) => Err(e.clone()),
-                    None => flush(&mut w, &mut to_remove, &mut dirty)
-                        .and_then(|_| w.counts(index).map_err(|e| e.to_string())),
-                };
-                last_flush = Instant::now();
-                if let Err(e) = &answer {
-                    failure.get_or_insert(e.clone());
-                }
-                let _ = ack.send(answer);
-            }
-            Ok(None) => {
-                if last_flush.elapsed() > Duration::from_secs(2) && failure.is_none() {
-                    if let Err(e) = flush(&mut w, &mut to_remove, &mut dirty) {
-                        failure = Some(e);
-                    }
-                    last_flush = Instant::now();
-                }
+            continue;
+        }
+        if let Err(e) = st.handle(msg) {
+            st.fail(e);
+            continue;
+        }
+        if st.queued_checkpoints >= COMMIT_AFTER_CHECKPOINTS {
+            if let Err(e) = st.commit() {
+                st.fail(e);
             }
         }
     }
-    if failure.is_none() {
-        if let Err(e) = flush(&mut w, &mut to_remove, &mut dirty) {
-            failure = Some(e);
+    if st.failure.is_none() {
+        if let Err(e) = st.commit_if(true) {
+            st.fail(e);
         }
     }
-    let closed = w.close().map_err(|e| e.to_string());
-    match failure {
+    match st.failure {
+        // Not closed: `writer_state` stays "open", so resume rebuilds the
+        // file from what the checkpoints vouch for.
         Some(e) => Err(e),
-        None => closed,
+        None => st.w.close().map_err(|e| e.to_string()),
     }
 }
 
@@ -196,61 +355,51 @@ struct Recorder<'a> {
     checkpoint_interval: Duration,
     last_checkpoint: Instant,
     last_checkpoint_step: u64,
-    rows: Vec<StepRow>,
+    rows: RowBlock,
     hops: Vec<Hop>,
+    warnings: Vec<WarningRow>,
     last_recorded_step: Option<u64>,
     resumed: bool,
     writer: SyncSender<ToWriter>,
     checkpoint_path: PathBuf,
     stop: &'a AtomicBool,
     stopped: bool,
-}
-
-fn row_of(s: &TrajectoryState, masses: &[f64]) -> StepRow {
-    let kinetic = s.kinetic(masses);
-    let potential = s.potential();
-    StepRow {
-        step: s.step,
-        time: s.time,
-        q: s.q.clone(),
-        v: s.v.clone(),
-        energies: s.energies.clone(),
-        active: s.active as u32,
-        amplitudes: s.amplitudes.clone(),
-        kinetic,
-        potential,
-        total: kinetic + potential,
-    }
+    row_bytes: usize,
+    pool: BlockPool,
 }
 
 impl Recorder<'_> {
     fn record(&mut self, rec: &StepRecord) {
-        if self.last_recorded_step != Some(rec.state.step) {
-            self.rows.push(row_of(rec.state, rec.masses));
-            self.last_recorded_step = Some(rec.state.step);
+        let s = rec.state;
+        if self.last_recorded_step != Some(s.step) {
+            let kinetic = s.kinetic(rec.masses);
+            self.rows.push(s.step, s.time, &s.q, &s.v, &s.energies, s.active as u32, &s.amplitudes, kinetic, s.potential(), &s.diagnostics);
+            self.last_recorded_step = Some(s.step);
         }
     }
 
+    fn take_batch(&mut self) -> Batch {
+        let recycled = self.pool.lock().unwrap_or_else(|p| p.into_inner()).pop();
+        let fresh = match recycled {
+            Some(b) if (b.n_dof, b.n_states) == (self.rows.n_dof, self.rows.n_states) => b,
+            _ => RowBlock::with_capacity(self.rows.n_dof, self.rows.n_states, self.rows.len().clamp(16, BLOCK_ROWS)),
+        };
+        let rows = std::mem::replace(&mut self.rows, fresh);
+        Batch { index: self.index, rows, hops: std::mem::take(&mut self.hops), warnings: std::mem::take(&mut self.warnings) }
+    }
+
+    fn send(&self, msg: ToWriter) -> Result<(), String> {
+        self.writer.send(msg).map_err(|_| "the writer has stopped".to_string())
+    }
+
+    fn pending_checkpoint(&self, rec: &StepRecord) -> Box<PendingCheckpoint> {
+        Box::new(PendingCheckpoint { path: self.checkpoint_path.clone(), state: rec.state.clone(), snapshot: rec.backend.snapshot() })
+    }
+
     fn checkpoint(&mut self, rec: &StepRecord) -> Result<(), String> {
-        let (ack, answer) = mpsc::sync_channel(1);
-        let msg = ToWriter::Append {
-            index: self.index,
-            rows: std::mem::take(&mut self.rows),
-            hops: std::mem::take(&mut self.hops),
-            ack: Some(ack),
-        };
-        self.writer.send(msg).map_err(|_| "the writer has stopped".to_string())?;
-        let (rows_written, hops_written) = answer.recv().map_err(|_| "the writer has stopped".to_string())??;
-        let ckpt = Checkpoint {
-            format: checkpoint::FORMAT.into(),
-            version: 1,
-            index: self.index,
-            rows_written,
-            hops_written,
-            state: rec.state.clone(),
-            snapshot: rec.backend.snapshot(),
-        };
-        checkpoint::write(&self.checkpoint_path, &ckpt).map_err(|e| e.to_string())?;
+        let checkpoint = Some(self.pending_checkpoint(rec));
+        let batch = self.take_batch();
+        self.send(ToWriter::Append { batch, checkpoint })?;
         self.last_checkpoint = Instant::now();
         self.last_checkpoint_step = rec.state.step;
         Ok(())
@@ -263,6 +412,9 @@ impl Observer for Recorder<'_> {
             RecordKind::Start => {
                 if !self.resumed {
                     self.record(rec);
+                    for w in &rec.state.diagnostics.warnings {
+                        self.warnings.push(WarningRow { step: rec.state.step, text: w.clone() });
+                    }
                 }
                 Ok(Flow::Continue)
             }
@@ -273,16 +425,18 @@ impl Observer for Recorder<'_> {
                 if let Some(h) = rec.hop {
                     self.hops.push(h.clone());
                 }
+                for w in &rec.state.diagnostics.warnings {
+                    self.warnings.push(WarningRow { step: rec.state.step, text: w.clone() });
+                }
                 // Checkpoints and stops add no rows of their own: the rows
                 // follow the `record_every` cadence whatever happens, so a
                 // stopped and resumed trajectory writes exactly the rows of
                 // one that never stopped.
                 if self.stop.load(Ordering::Relaxed) {
-                    self.checkpoint(rec)?;
                     let (ack, answer) = mpsc::sync_channel(1);
-                    self.writer
-                        .send(ToWriter::Stop { index: self.index, rows: vec![], hops: vec![], ack })
-                        .map_err(|_| "the writer has stopped".to_string())?;
+                    let checkpoint = self.pending_checkpoint(rec);
+                    let batch = self.take_batch();
+                    self.send(ToWriter::Stop { batch, checkpoint, ack })?;
                     answer.recv().map_err(|_| "the writer has stopped".to_string())??;
                     self.stopped = true;
                     return Ok(Flow::Stop);
@@ -291,19 +445,19 @@ impl Observer for Recorder<'_> {
                 let by_time = self.last_checkpoint.elapsed() >= self.checkpoint_interval;
                 if by_steps || by_time {
                     self.checkpoint(rec)?;
+                } else if self.rows.len() >= BLOCK_ROWS || self.rows.len() * self.row_bytes >= BLOCK_BYTES {
+                    // A block of rows without a checkpoint: written, but only
+                    // vouched for by the next checkpoint.
+                    let batch = self.take_batch();
+                    self.send(ToWriter::Append { batch, checkpoint: None })?;
                 }
                 Ok(Flow::Continue)
             }
             RecordKind::End => {
                 self.record(rec);
-                let msg = ToWriter::Finish {
-                    index: self.index,
-                    rows: std::mem::take(&mut self.rows),
-                    hops: std::mem::take(&mut self.hops),
-                    status: rec.state.status.clone(),
-                    checkpoint: self.checkpoint_path.clone(),
-                };
-                self.writer.send(msg).map_err(|_| "the writer has stopped".to_string())?;
+                let batch = self.take_batch();
+                let msg = ToWriter::Finish { batch, status: rec.state.status.clone(), checkpoint: self.checkpoint_path.clone() };
+                self.send(msg)?;
                 Ok(Flow::Continue)
             }
         }
@@ -323,6 +477,7 @@ enum Ended {
 }
 
 struct Session<'a> {
+    pool: BlockPool,
     cfg: &'a RunConfig,
     factory: &'a BackendFactory<'a>,
     ckpt_dir: PathBuf,
@@ -337,6 +492,7 @@ impl Session<'_> {
         let mut backend = (self.factory)(index);
         let path = checkpoint::path_for(&self.ckpt_dir, index);
         let out = &self.cfg.output;
+        let (n_dof, n_states) = (self.cfg.model.n_dof(), self.cfg.model.n_states());
         let mut rec = Recorder {
             index,
             every: out.record_every,
@@ -344,14 +500,22 @@ impl Session<'_> {
             checkpoint_interval: Duration::from_secs_f64(out.checkpoint_interval_s),
             last_checkpoint: Instant::now(),
             last_checkpoint_step: 0,
-            rows: Vec::new(),
+            // A block from the pool, or one with room for a whole block: no
+            // growth (reallocation, copying, page faults) while recording.
+            rows: match self.pool.lock().unwrap_or_else(|p| p.into_inner()).pop() {
+                Some(b) if (b.n_dof, b.n_states) == (n_dof, n_states) => b,
+                _ => RowBlock::with_capacity(n_dof, n_states, BLOCK_ROWS.min(BLOCK_BYTES / (8 * (2 * n_dof + 2 * n_states + 6) + 16 * n_states).max(1))),
+            },
             hops: Vec::new(),
+            warnings: Vec::new(),
             last_recorded_step: None,
             resumed: false,
             writer: writer.clone(),
             checkpoint_path: path.clone(),
             stop: self.stop,
             stopped: false,
+            row_bytes: 8 * (2 * n_dof + 2 * n_states + 6) + 16 * n_states,
+            pool: self.pool.clone(),
         };
         let masses = backend.info().masses;
         let mut traj = match plan {
@@ -364,9 +528,8 @@ impl Session<'_> {
                     Ok(t) => t,
                     Err(e) => {
                         let status = Status::Failed { step: 0, reason: e.to_string() };
-                        writer
-                            .send(ToWriter::Finish { index, rows: vec![], hops: vec![], status, checkpoint: path })
-                            .map_err(|_| "the writer has stopped".to_string())?;
+                        let batch = Batch { index, rows: RowBlock::new(n_dof, n_states), hops: vec![], warnings: vec![] };
+                        writer.send(ToWriter::Finish { batch, status, checkpoint: path }).map_err(|_| "the writer has stopped".to_string())?;
                         return Ok(Ended::Done);
                     }
                 }
@@ -411,14 +574,20 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
     if dir.join(part_name(k, n)).exists() {
         return Err(derr(format!("already holds a run of slice {k}/{n}; use `flipswarm resume` to continue it, or choose another directory")));
     }
-    let estimate = estimated_bytes(cfg, slice);
+    let est = disk_estimate(cfg, slice);
     if let Some(free) = free_bytes(dir) {
-        tracing::info!("expected size of the part file: {}, free on its file system: {}", human(estimate), human(free));
-        if estimate > free {
+        tracing::info!("expected size of the part file: {}, of the checkpoints: {}, free on its file system: {}", human(est.part_bytes), human(est.checkpoint_bytes), human(free));
+        if est.total() > free {
             return Err(derr(format!(
-                "the part file would need about {} but only {} are free; raise output.record_every_steps or free space",
-                human(estimate),
-                human(free)
+                "the run would need about {} but only {} are free: the part file {} trajectories × {} rows × {} datasets ({} bytes per row) ≈ {}, checkpoints ≈ {}; raise output.record_every_steps, run fewer trajectories per slice or free space",
+                human(est.total()),
+                human(free),
+                est.trajectories,
+                est.rows_per_trajectory,
+                est.datasets,
+                est.row_bytes,
+                human(est.part_bytes),
+                human(est.checkpoint_bytes)
             )));
         }
     }
@@ -505,17 +674,56 @@ pub fn load_run_config(dir: &Path) -> Result<RunConfig, RunError> {
     Ok(cfg)
 }
 
-/// Upper estimate of the part file's size for slice (k, n): every
-/// trajectory running to the time limit, one row every `record_every`
-/// steps (coordinates, velocities, energies, amplitudes, four scalars and the
-/// step), plus 25 % for HDF5 structure.
-pub fn estimated_bytes(cfg: &RunConfig, slice: (usize, usize)) -> u64 {
+/// What a run of one slice will write at most, before it starts.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct DiskEstimate {
+    /// Trajectories of the slice.
+    pub trajectories: u64,
+    /// Rows per trajectory if it runs to the time limit (steps / record_every + 2).
+    pub rows_per_trajectory: u64,
+    /// Per-step datasets of a trajectory.
+    pub datasets: u64,
+    /// Bytes of one row over all those datasets.
+    pub row_bytes: u64,
+    /// The part file: trajectories × rows × row bytes, plus 25 % for HDF5 structure.
+    pub part_bytes: u64,
+    /// Checkpoint files at their peak (newest, previous and temporary copy of every trajectory).
+    pub checkpoint_bytes: u64,
+}
+
+impl DiskEstimate {
+    /// Everything together.
+    pub fn total(&self) -> u64 {
+        self.part_bytes.saturating_add(self.checkpoint_bytes)
+    }
+}
+
+/// Upper estimate of what slice (k, n) writes: every trajectory running to
+/// the time limit, one row every `record_every` steps in each of the 13
+/// per-step datasets (time, step, coordinates, velocities, energies, active
+/// state, amplitudes, three energies, two solver counts, <S²>), in whole
+/// chunks, plus 25 % and 64 KiB per trajectory for HDF5 structure; and its checkpoint files (JSON, about 26 bytes per
+/// number, three files per trajectory at the peak).
+pub fn disk_estimate(cfg: &RunConfig, slice: (usize, usize)) -> DiskEstimate {
     let (n_dof, n_states) = (cfg.model.n_dof() as u64, cfg.model.n_states() as u64);
-    let steps = (cfg.settings.max_time / cfg.settings.dt).ceil() as u64;
+    let steps = (cfg.settings.max_time / cfg.settings.dt).ceil().min(1e18) as u64;
     let rows = steps / cfg.output.record_every + 2;
-    let row_bytes = 8 * (2 * n_dof + n_states + 5) + 4 + 16 * n_states;
+    let row_bytes = 8 * (2 * n_dof + n_states + 5) + 4 + 16 * n_states + 8 + 8 * n_states;
     let trajectories = slice_indices(cfg.trajectories, slice.0, slice.1).len() as u64;
-    trajectories * rows * row_bytes * 5 / 4
+    // Chunks are allocated whole (256 rows), and every trajectory has its
+    // group, 25 dataset headers and the first chunks of its hop and warning
+    // tables (about 64 KiB whatever its length).
+    let rows_allocated = rows.div_ceil(256).saturating_mul(256);
+    let per_trajectory = rows_allocated.saturating_mul(row_bytes) / 4 * 5 + 64 * 1024;
+    let part_bytes = trajectories.saturating_mul(per_trajectory).saturating_add(64 * 1024);
+    let numbers = 5 * n_dof + 6 * n_states + n_states * n_states + 64;
+    let checkpoint_bytes = trajectories.saturating_mul(3 * (26 * numbers + 1024));
+    DiskEstimate { trajectories, rows_per_trajectory: rows, datasets: 13, row_bytes, part_bytes, checkpoint_bytes }
+}
+
+/// Upper estimate of the part file's size for slice (k, n) (see [`disk_estimate`]).
+pub fn estimated_bytes(cfg: &RunConfig, slice: (usize, usize)) -> u64 {
+    disk_estimate(cfg, slice).part_bytes
 }
 
 /// Free space (bytes) on the file system that will hold `dir`.
@@ -673,12 +881,12 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
                     from_prev += 1;
                 }
                 from_ckpt += 1;
-                keep.push((index, Keep::Prefix(c.rows_written, c.hops_written)));
+                keep.push((index, Keep::Prefix(Counts { rows: c.rows_written, hops: c.hops_written, warnings: c.warnings_written })));
                 plans.push((index, Plan::FromCheckpoint(Box::new(c))));
             }
             None => {
                 if status.is_some() {
-                    keep.push((index, Keep::Prefix(0, 0)));
+                    keep.push((index, Keep::Prefix(Counts::default())));
                     if !problems.is_empty() {
                         tracing::warn!("trajectory {index}: no usable checkpoint; recomputing it from its start");
                     }
@@ -695,8 +903,8 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
         drop(reader);
         let (mut w, _) = PartWriter::open_existing(&part)?;
         for (index, what) in &keep {
-            if let Keep::Prefix(rows, hops) = what {
-                w.truncate(*index, *rows, *hops)?;
+            if let Keep::Prefix(c) = what {
+                w.truncate_all(*index, *c)?;
             }
         }
         w.flush()?;
@@ -715,8 +923,8 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
 enum Keep {
     /// Everything (it ended and reads back completely).
     Whole,
-    /// The first rows and hops (what its checkpoint covers; (0, 0) to recompute).
-    Prefix(u64, u64),
+    /// The first rows, hops and warnings (what its checkpoint covers; zero to recompute).
+    Prefix(Counts),
 }
 
 /// Write the trustworthy content of a killed writer's part file into a new
@@ -729,11 +937,11 @@ fn rebuild(reader: &PartReader, part: &Path, keep: &[(usize, Keep)]) -> Result<(
     for (index, what) in keep {
         let data = match what {
             Keep::Whole => reader.read(*index)?,
-            Keep::Prefix(0, 0) => continue,
-            Keep::Prefix(rows, hops) => reader.read_prefix(*index, *rows, *hops)?,
+            Keep::Prefix(c) if *c == Counts::default() => continue,
+            Keep::Prefix(c) => reader.read_prefix_all(*index, *c)?,
         };
         w.begin(&data.header)?;
-        w.append(*index, &data.rows, &data.hops)?;
+        w.append_all(*index, &data.rows, &data.diagnostics, &data.hops, &data.warnings)?;
         if let Keep::Whole = what {
             w.set_status(*index, &data.status)?;
         }
@@ -769,8 +977,11 @@ fn execute(cfg: &RunConfig, dir: &Path, k: usize, writer: PartWriter, plans: Vec
     // Bounded: when the writer falls behind, trajectories wait for it instead
     // of piling rows up in memory.
     let (tx, rx) = mpsc::sync_channel(256);
-    let writer_thread = std::thread::spawn(move || writer_loop(writer, rx));
-    let session = Session { cfg, factory: opts.factory, ckpt_dir: checkpoint_dir(dir, k), stop: &opts.stop };
+    let stop = opts.stop.clone();
+    let pool: BlockPool = Arc::new(Mutex::new(Vec::new()));
+    let writer_pool = pool.clone();
+    let writer_thread = std::thread::spawn(move || writer_loop(writer, rx, stop, writer_pool));
+    let session = Session { pool, cfg, factory: opts.factory, ckpt_dir: checkpoint_dir(dir, k), stop: &opts.stop };
     let pool = rayon::ThreadPoolBuilder::new().num_threads(opts.threads).build().map_err(|e| RunError::Threads(e.to_string()))?;
     let progress = Progress::new(plans.len(), opts.progress_bar);
     let errors: Mutex<Vec<String>> = Mutex::new(Vec::new());

@@ -89,7 +89,15 @@ def check_trajectory(g, n_states, n_dof):
         "hops/energy_gap": (np.float64, (h,)),
         "hops/kinetic_before": (np.float64, (h,)),
         "hops/kinetic_after": (np.float64, (h,)),
+        "solver_iterations": (np.int32, (n,)),
+        "response_iterations": (np.int32, (n,)),
+        "spin_squared": (np.float64, (n, n_states)),
     }
+    w = int(g.attrs["warnings_written"])
+    check(g["warnings/step"].dtype == np.uint64 and g["warnings/step"].shape == (w,), "warnings/step dtype or shape")
+    check(h5py.check_string_dtype(g["warnings/text"].dtype) is not None, f"warnings/text is not a string dataset ({g['warnings/text'].dtype})")
+    check(g["warnings/text"].shape == (w,), "warnings/text shape")
+    check(isinstance(g["warnings"].attrs.get("description"), str), "warnings group has no description")
     for name, (dtype, shape) in expected.items():
         ds = g[name]
         check(ds.dtype == np.dtype(dtype), f"{ds.name}: dtype {ds.dtype}, expected {np.dtype(dtype)}")
@@ -97,6 +105,11 @@ def check_trajectory(g, n_states, n_dof):
     check(g["energies"].attrs["units"] == "hartree", "energies are not in hartree")
     check(g["time"].attrs["units"] == "a.u. of time", "time units")
     check(g["positions"].attrs["units"].startswith("bohr"), "positions units")
+    check(g["spin_squared"].attrs["units"] == "hbar^2", "spin_squared units")
+    for name in ["solver_iterations", "response_iterations"]:
+        check(g[name].attrs["units"] == "1", f"{name} units")
+        check("-1" in g[name].attrs["description"], f"{name} description does not say what -1 means")
+    check("NaN" in g["spin_squared"].attrs["description"], "spin_squared description does not say what NaN means")
 
 
 def main():
@@ -127,6 +140,9 @@ def main():
             "last_amplitudes_re_im": [float(x) for z in amplitudes[-1] for x in (z.real, z.imag)],
             "active_state": [int(x) for x in g["active_state"][...]],
             "accepted": [int(x) for x in g["hops/accepted"][...]],
+            "solver_iterations": [int(x) for x in g["solver_iterations"][...]],
+            "spin_squared_nan": int(np.isnan(g["spin_squared"][...]).sum()),
+            "warnings": [[int(s), t.decode() if isinstance(t, bytes) else t] for s, t in zip(g["warnings/step"][...], g["warnings/text"][...])],
         }
     print(json.dumps(summary))
 
