@@ -809,6 +809,23 @@ fn write_new(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
 /// for, into a new file that replaces it. A cleanly closed file is
 /// continued in place, truncated to the checkpoints.
 pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
+    let report = resume_slice(cfg, dir, slice, opts)?;
+    if report.stopped == 0 && report.pending == 0 {
+        // The slice is complete, so copies of an unreadable part file moved
+        // aside by earlier resumes hold nothing the new file lacks.
+        let prefix = format!("{}.unreadable-", report.part.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default());
+        if let Ok(entries) = std::fs::read_dir(dir) {
+            for e in entries.flatten() {
+                if e.file_name().to_string_lossy().starts_with(&prefix) {
+                    let _ = std::fs::remove_file(e.path());
+                }
+            }
+        }
+    }
+    Ok(report)
+}
+
+fn resume_slice(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
     let (k, n) = slice;
     let part = dir.join(part_name(k, n));
     let killed_copy = with_suffix(&part, ".killed");
@@ -829,7 +846,8 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
         Err(e) => {
             // Unreadable (e.g. killed while being created): nothing in it can
             // be trusted, and the checkpoints' rows were in it. Keep it aside,
-            // say so, and compute the slice again (deterministically the same).
+            // say so, and compute the slice again (deterministically the same;
+            // the copy is removed once the slice is complete).
             let aside = with_suffix(&part, &format!(".unreadable-{}", std::process::id()));
             tracing::warn!("{e}; moving it to {} and computing slice {k}/{n} again from the start", aside.display());
             std::fs::rename(&part, &aside).map_err(|e| RunError::Directory { path: part.clone(), message: e.to_string() })?;
