@@ -10,7 +10,9 @@
 //! * Exact invariances: Σ_A ∂E/∂R_A = 0 (translation) and g(QR) = Q g(R)
 //!   (rotation).
 
-use flipswarm::chem::{Element, Molecule};
+mod common;
+
+use common::qc::{molecule_z, test_atoms};
 use flipswarm::electronic::qc::basis::BasisSetData;
 use flipswarm::electronic::qc::dft::grid::GridSpec;
 use flipswarm::electronic::qc::gradient::numerical::{ScfEnergy, Target};
@@ -28,27 +30,6 @@ fn fixture(name: &str) -> Value {
     serde_json::from_str(&text).unwrap()
 }
 
-/// Geometries (bohr) shared with scripts/reference/scf_energies.py and
-/// qc_integrals.py (generic, off-symmetry).
-fn atoms(name: &str) -> Vec<(u64, [f64; 3])> {
-    match name {
-        "h2o" => vec![(8, [0.0, 0.0, 0.1]), (1, [0.0, 1.43, -0.98]), (1, [0.05, -1.45, -0.95])],
-        "ch2" => vec![(6, [0.0, 0.0, 0.19]), (1, [0.0, 1.87, -0.57]), (1, [0.02, -1.86, -0.58])],
-        "ch2o" => vec![
-            (6, [0.0, 0.0, -1.0]),
-            (8, [0.0, 0.02, 1.28]),
-            (1, [0.0, 1.77, -2.08]),
-            (1, [0.03, -1.76, -2.1]),
-        ],
-        other => panic!("unknown molecule {other}"),
-    }
-}
-
-fn molecule(list: &[(u64, [f64; 3])]) -> Molecule {
-    let els: Vec<Element> = list.iter().map(|(z, _)| Element::from_atomic_number(*z).unwrap()).collect();
-    let pos: Vec<[f64; 3]> = list.iter().map(|(_, p)| *p).collect();
-    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
-}
 
 fn tight() -> ScfOptions {
     ScfOptions {
@@ -60,8 +41,8 @@ fn tight() -> ScfOptions {
 }
 
 fn setup(name: &str, multiplicity: usize, reference: Reference, potential: Potential) -> (ScfEnergy, Vec<[f64; 3]>) {
-    let list = atoms(name);
-    let mol = molecule(&list);
+    let list = test_atoms(name);
+    let mol = molecule_z(&list);
     let data = BasisSetData::builtin("6-31G*").unwrap();
     let z: usize = list.iter().map(|(z, _)| *z as usize).sum();
     let electrons = Electrons::from_charge_multiplicity(z, 0, multiplicity).unwrap();

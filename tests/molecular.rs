@@ -7,7 +7,10 @@
 //! classical mechanics (Newton's equations conserve the total energy;
 //! velocity Verlet does so to O(Δt²) without drift, common practice).
 
-use flipswarm::chem::{Element, Molecule};
+mod common;
+
+use common::qc::ethylene;
+use flipswarm::chem::Molecule;
 use flipswarm::electronic::qc::backend::{GradientMethod, MolecularSpec, MrsfBackend};
 use flipswarm::electronic::qc::basis::BasisSetData;
 use flipswarm::electronic::qc::dft::grid::GridSpec;
@@ -19,29 +22,7 @@ use flipswarm::electronic::qc::scf::{Electrons, Reference, ScfOptions};
 use flipswarm::electronic::{Backend, Request};
 use std::sync::Arc;
 
-fn molecule(atoms: &[(&str, [f64; 3])]) -> Molecule {
-    let els: Vec<Element> = atoms.iter().map(|(s, _)| Element::from_symbol(s).unwrap()).collect();
-    let pos: Vec<[f64; 3]> = atoms.iter().map(|(_, p)| *p).collect();
-    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
-}
 
-/// Ethylene with the second CH2 group twisted by `twist_deg` about the C–C
-/// axis (C=C 1.339 Å, C–H 1.086 Å, HCH 117.6°; common practice geometry).
-fn ethylene(twist_deg: f64) -> Molecule {
-    let cc = 2.5303;
-    let ch = 2.0522;
-    let half = (117.6f64 / 2.0).to_radians();
-    let (y, z) = (ch * half.sin(), ch * half.cos());
-    let t = twist_deg.to_radians();
-    molecule(&[
-        ("C", [0.0, 0.0, -cc / 2.0]),
-        ("C", [0.0, 0.0, cc / 2.0]),
-        ("H", [0.0, y, -cc / 2.0 - z]),
-        ("H", [0.0, -y, -cc / 2.0 - z]),
-        ("H", [-y * t.sin(), y * t.cos(), cc / 2.0 + z]),
-        ("H", [y * t.sin(), -y * t.cos(), cc / 2.0 + z]),
-    ])
-}
 
 fn spec(mol: Molecule, basis: &str, potential: Potential, singlets: usize) -> Arc<MolecularSpec> {
     let z: usize = mol.atoms.iter().map(|a| a.element.atomic_number() as usize).sum();
@@ -168,7 +149,6 @@ fn analytic_and_numerical_back_end_gradients_agree() {
 
 // ------------------------------------------------------------- whole runs
 
-mod common;
 
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};

@@ -20,7 +20,10 @@
 //!   observation, J. Chem. Phys. 118, 4807 (2003), from memory): states of
 //!   <S²> ≈ 1 on the same molecule where MRSF is pure.
 
-use flipswarm::chem::{Element, Molecule};
+mod common;
+
+use common::qc::{ethylene, molecule_of};
+use flipswarm::chem::Molecule;
 use flipswarm::electronic::qc::basis::BasisSet;
 use flipswarm::electronic::qc::dft::grid::GridSpec;
 use flipswarm::electronic::qc::dft::ks::{kohn_sham, KsOptions};
@@ -36,14 +39,9 @@ use std::collections::HashMap;
 
 // ---------------------------------------------------------------- set-up
 
-fn molecule(atoms: &[(&str, [f64; 3])]) -> Molecule {
-    let els: Vec<Element> = atoms.iter().map(|(s, _)| Element::from_symbol(s).unwrap()).collect();
-    let pos: Vec<[f64; 3]> = atoms.iter().map(|(_, p)| *p).collect();
-    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
-}
 
 fn water() -> Molecule {
-    molecule(&[
+    molecule_of(&[
         ("O", [0.0, 0.0, 0.2217]),
         ("H", [0.0, 1.4309, -0.8867]),
         ("H", [0.0, -1.4309, -0.8867]),
@@ -51,7 +49,7 @@ fn water() -> Molecule {
 }
 
 fn formaldehyde() -> Molecule {
-    molecule(&[
+    molecule_of(&[
         ("C", [0.0, 0.0, -1.0]),
         ("O", [0.0, 0.0, 1.28]),
         ("H", [0.0, 1.77, -2.1]),
@@ -60,7 +58,7 @@ fn formaldehyde() -> Molecule {
 }
 
 fn h2(r: f64) -> Molecule {
-    molecule(&[("H", [0.0, 0.0, 0.0]), ("H", [0.0, 0.0, r])])
+    molecule_of(&[("H", [0.0, 0.0, 0.0]), ("H", [0.0, 0.0, r])])
 }
 
 fn tight() -> ScfOptions {
@@ -801,7 +799,7 @@ fn mrsf_is_spin_pure_where_sf_is_contaminated() {
 // triplet's energy.
 #[test]
 fn carbon_atom_multiplets_are_degenerate() {
-    let basis = BasisSet::builtin(&molecule(&[("C", [0.0, 0.0, 0.0])]), "STO-3G").unwrap();
+    let basis = BasisSet::builtin(&molecule_of(&[("C", [0.0, 0.0, 0.0])]), "STO-3G").unwrap();
     let scf = rohf(&basis, triplet(&basis));
     let mut eng = engine(&basis);
     let m = Mrsf::new(&basis, &scf, 1.0, &mut eng).unwrap().solve(6, 4, &dense_opts()).unwrap();
@@ -956,23 +954,6 @@ fn bad_input_gives_clear_errors() {
     assert!(matches!(e, ResponseError::NotRestrictedOpen(Reference::Restricted)));
 }
 
-fn ethylene(twist_deg: f64) -> Molecule {
-    // C=C 1.339 Å, C–H 1.086 Å, HCH 117.6° (common practice geometry); the
-    // CH2 group on the second carbon is rotated about the C–C axis.
-    let cc = 2.5303;
-    let ch = 2.0522;
-    let half = (117.6f64 / 2.0).to_radians();
-    let (y, z) = (ch * half.sin(), ch * half.cos());
-    let t = twist_deg.to_radians();
-    molecule(&[
-        ("C", [0.0, 0.0, -cc / 2.0]),
-        ("C", [0.0, 0.0, cc / 2.0]),
-        ("H", [0.0, y, -cc / 2.0 - z]),
-        ("H", [0.0, -y, -cc / 2.0 - z]),
-        ("H", [-y * t.sin(), y * t.cos(), cc / 2.0 + z]),
-        ("H", [y * t.sin(), -y * t.cos(), cc / 2.0 + z]),
-    ])
-}
 
 // Sources: the torsion of ethylene, a trade-standard case — the ground state
 // rises smoothly to a maximum at 90° (barrier about 2.8 eV, 65 kcal/mol,

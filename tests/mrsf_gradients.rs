@@ -10,7 +10,9 @@
 //! * Exact invariances (common practice): Σ_A ∂E/∂R_A = 0 (translation) and
 //!   g(QR + t) = Q g(R) (rotation).
 
-use flipswarm::chem::{Element, Molecule};
+mod common;
+
+use common::qc::{molecule_z, test_atoms};
 use flipswarm::electronic::qc::basis::{BasisSet, BasisSetData};
 use flipswarm::electronic::qc::gradient::mrsf::{
     mrsf_state_gradients, mrsf_state_gradients_detailed, XcKernel, ZVectorOptions,
@@ -23,43 +25,12 @@ use flipswarm::electronic::qc::response::davidson::DavidsonOptions;
 use flipswarm::electronic::qc::response::ExcitedStates;
 use flipswarm::electronic::qc::scf::{Electrons, Guess, Reference, ScfOptions, ScfResult};
 
-/// Generic off-symmetry geometries (bohr), as in tests/gradients.rs.
-fn atoms(name: &str) -> Vec<(u64, [f64; 3])> {
-    match name {
-        "h2o" => vec![
-            (8, [0.0, 0.0, 0.1]),
-            (1, [0.0, 1.43, -0.98]),
-            (1, [0.05, -1.45, -0.95]),
-        ],
-        "ch2" => vec![
-            (6, [0.0, 0.0, 0.19]),
-            (1, [0.0, 1.87, -0.57]),
-            (1, [0.02, -1.86, -0.58]),
-        ],
-        "ch2o" => vec![
-            (6, [0.0, 0.0, -1.0]),
-            (8, [0.0, 0.02, 1.28]),
-            (1, [0.0, 1.77, -2.08]),
-            (1, [0.03, -1.76, -2.1]),
-        ],
-        other => panic!("unknown molecule {other}"),
-    }
-}
-
-fn molecule(list: &[(u64, [f64; 3])]) -> Molecule {
-    let els: Vec<Element> = list
-        .iter()
-        .map(|(z, _)| Element::from_atomic_number(*z).unwrap())
-        .collect();
-    let pos: Vec<[f64; 3]> = list.iter().map(|(_, p)| *p).collect();
-    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
-}
 
 fn setup(name: &str, basis: &str, potential: Potential) -> (ScfEnergy, Vec<[f64; 3]>) {
-    let list = atoms(name);
+    let list = test_atoms(name);
     let z: usize = list.iter().map(|(z, _)| *z as usize).sum();
     let calc = ScfEnergy {
-        molecule: molecule(&list),
+        molecule: molecule_z(&list),
         basis: BasisSetData::builtin(basis).unwrap(),
         harmonics: None,
         electrons: Electrons::from_charge_multiplicity(z, 0, 3).unwrap(),

@@ -36,3 +36,51 @@ pub fn molecule_from(atoms: &Value) -> Molecule {
     }
     Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
 }
+
+/// Generic off-symmetry test geometries (bohr), shared with
+/// scripts/reference/scf_energies.py and qc_integrals.py: (Z, position).
+pub fn test_atoms(name: &str) -> Vec<(u64, [f64; 3])> {
+    match name {
+        "h2o" => vec![(8, [0.0, 0.0, 0.1]), (1, [0.0, 1.43, -0.98]), (1, [0.05, -1.45, -0.95])],
+        "ch2" => vec![(6, [0.0, 0.0, 0.19]), (1, [0.0, 1.87, -0.57]), (1, [0.02, -1.86, -0.58])],
+        "ch2o" => vec![
+            (6, [0.0, 0.0, -1.0]),
+            (8, [0.0, 0.02, 1.28]),
+            (1, [0.0, 1.77, -2.08]),
+            (1, [0.03, -1.76, -2.1]),
+        ],
+        other => panic!("unknown molecule {other}"),
+    }
+}
+
+/// A molecule from (Z, position in bohr).
+pub fn molecule_z(list: &[(u64, [f64; 3])]) -> Molecule {
+    let els: Vec<Element> = list.iter().map(|(z, _)| Element::from_atomic_number(*z).unwrap()).collect();
+    let pos: Vec<[f64; 3]> = list.iter().map(|(_, p)| *p).collect();
+    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
+}
+
+/// A molecule from (symbol, position in bohr).
+pub fn molecule_of(atoms: &[(&str, [f64; 3])]) -> Molecule {
+    let els: Vec<Element> = atoms.iter().map(|(s, _)| Element::from_symbol(s).unwrap()).collect();
+    let pos: Vec<[f64; 3]> = atoms.iter().map(|(_, p)| *p).collect();
+    Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
+}
+
+/// Ethylene with the second CH2 group twisted by `twist_deg` about the C–C
+/// axis (C=C 1.339 Å, C–H 1.086 Å, HCH 117.6°; common practice geometry).
+pub fn ethylene(twist_deg: f64) -> Molecule {
+    let cc = 2.5303;
+    let ch = 2.0522;
+    let half = (117.6f64 / 2.0).to_radians();
+    let (y, z) = (ch * half.sin(), ch * half.cos());
+    let t = twist_deg.to_radians();
+    molecule_of(&[
+        ("C", [0.0, 0.0, -cc / 2.0]),
+        ("C", [0.0, 0.0, cc / 2.0]),
+        ("H", [0.0, y, -cc / 2.0 - z]),
+        ("H", [0.0, -y, -cc / 2.0 - z]),
+        ("H", [-y * t.sin(), y * t.cos(), cc / 2.0 + z]),
+        ("H", [y * t.sin(), -y * t.cos(), cc / 2.0 + z]),
+    ])
+}
