@@ -62,6 +62,15 @@ impl Drop for Scratch {
     }
 }
 
+/// The tests of this file run one at a time: HDF5 locks files with
+/// flock(2), and a child process spawned by one test inherits the
+/// descriptors another test has open in this process, keeping that file
+/// locked until the child exits.
+fn serial() -> std::sync::MutexGuard<'static, ()> {
+    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    LOCK.lock().unwrap_or_else(|e| e.into_inner())
+}
+
 fn part(dir: &Path) -> PathBuf {
     dir.join(runner::part_name(0, 1))
 }
@@ -121,6 +130,7 @@ fn read_all(p: &Path) -> Vec<TrajectoryData> {
 /// step — also for the steps a coarser `record_every` does not record.
 #[test]
 fn backend_diagnostics_and_warnings_are_recorded_per_step() {
+    let _serial = serial();
     let s = Scratch::new("diag", 4, 40.0, 1);
     let cfg = s.cfg();
     let model = cfg.model.clone();
@@ -206,6 +216,7 @@ impl Backend for Poison {
 /// at the initial geometry fails at step 0. The others finish.
 #[test]
 fn non_finite_numbers_fail_the_trajectory_with_its_step() {
+    let _serial = serial();
     for (what, at, step, needle) in [
         ("gradient-nan", 20, 19, "gradient component 1 = NaN"),
         ("gradient-inf", 10, 9, "gradient component 0 = -inf"),
@@ -289,6 +300,7 @@ fn assert_identical(got: &Path, want: &Path) {
 /// and late in the run.
 #[test]
 fn injected_write_failure_stops_resumably_and_resume_is_identical() {
+    let _serial = serial();
     let s = Scratch::new("diskfull", 6, 150.0, 2);
     let reference = s.0.join("reference");
     let (code, err) = spawn_run(&["-q", "run", &s.ens(), "-o", reference.to_str().unwrap(), "--threads", "2"], None);
@@ -310,12 +322,93 @@ fn injected_write_failure_stops_resumably_and_resume_is_identical() {
     }
 }
 
+/// A kill can leave a chunk half written: its Fletcher-32 checksum then
+/// fails on reading. Simulated deterministically: a run stopped after a
+/// fixed number of back-end calls (as by SIGTERM: checkpoints on disk), its
+/// file then marked "open" as a killed writer leaves it, and one byte of a
+/// trajectory's positions flipped inside the rows its checkpoint vouches
+/// for. Resume must not give up on the run: that trajectory is recomputed
+/// from its start, the others continue from their checkpoints, and the
+/// result equals the uninterrupted run bit for bit.
+#[test]
+fn a_chunk_with_a_bad_checksum_is_recomputed_on_resume() {
+    let _serial = serial();
+    let s = Scratch::new("checksum", 4, 150.0, 1);
+    let cfg = s.cfg();
+    let reference = s.0.join("reference");
+    let model = cfg.model.clone();
+    let plain = move |_: usize| -> Box<dyn Backend> { swarm::make_backend(&model) };
+    assert_eq!(run_in_process(&cfg, &reference, &plain).finished, 4);
+
+    let dir = s.0.join("damaged");
+    let stop = Arc::new(AtomicBool::new(false));
+    let calls = Arc::new(AtomicUsize::new(0));
+    let (model, st, n) = (cfg.model.clone(), stop.clone(), calls.clone());
+    let stopping = move |_: usize| -> Box<dyn Backend> { Box::new(StopAfter { inner: swarm::make_backend(&model), stop: st.clone(), calls: n.clone(), after: 6000 }) };
+    let opts = runner::Options { threads: 2, stop: stop.clone(), factory: &stopping, progress_bar: false };
+    let report = runner::start(&cfg, &dir, (0, 1), &opts).unwrap();
+    assert!(report.stopped > 0, "the run must stop part-way");
+    let file = part(&dir);
+    let victim = PartReader::open(&file).unwrap().trajectory_indices()[1];
+    {
+        let f = hdf5::File::open_rw(&file).unwrap();
+        let open: hdf5::types::VarLenUnicode = "open".parse().unwrap();
+        f.attr("writer_state").unwrap().write_scalar(&open).unwrap();
+    }
+    // The bytes of one early position value (unique to this trajectory and step).
+    let t = PartReader::open(&part(&reference)).unwrap().read(victim).unwrap();
+    let x = t.rows[3].q[0].to_le_bytes();
+    let mut bytes = std::fs::read(&file).unwrap();
+    let at: Vec<usize> = bytes.windows(8).enumerate().filter(|(_, w)| *w == x).map(|(i, _)| i).collect();
+    assert_eq!(at.len(), 1, "the value must occur once in the file");
+    bytes[at[0] + 3] ^= 0x10;
+    std::fs::write(&file, &bytes).unwrap();
+    let r = PartReader::open(&file).unwrap();
+    assert_eq!(r.writer_state(), WriterState::Open);
+    let e = r.read_prefix_all(victim, flipswarm::ensemble::h5::Counts { rows: 10, hops: 0, warnings: 0 }).unwrap_err().to_string();
+    assert!(e.contains("Fletcher32") || e.contains("checksum"), "{e}");
+    drop(r);
+    let (code, err) = spawn_run(&["resume", dir.to_str().unwrap()], None);
+    assert_eq!(code, Some(0), "resume: {err}");
+    assert!(err.contains(&format!("trajectory {victim}:")) && err.contains("recomputing it from its start"), "{err}");
+    assert!(err.contains("from checkpoints"), "{err}");
+    assert_identical(&file, &part(&reference));
+}
+
+/// Sets the stop flag after a fixed number of back-end calls (a
+/// deterministic stand-in for SIGTERM).
+struct StopAfter {
+    inner: Box<dyn Backend>,
+    stop: Arc<AtomicBool>,
+    calls: Arc<AtomicUsize>,
+    after: usize,
+}
+
+impl Backend for StopAfter {
+    fn info(&self) -> BackendInfo {
+        self.inner.info()
+    }
+    fn compute(&mut self, q: &[f64], request: &Request) -> Result<&Results, BackendError> {
+        if self.calls.fetch_add(1, Ordering::Relaxed) + 1 == self.after {
+            self.stop.store(true, Ordering::Relaxed);
+        }
+        self.inner.compute(q, request)
+    }
+    fn snapshot(&self) -> Snapshot {
+        self.inner.snapshot()
+    }
+    fn restore(&mut self, s: &Snapshot) -> Result<(), BackendError> {
+        self.inner.restore(s)
+    }
+}
+
 /// The disk estimate (steps × trajectories × datasets) bounds a real part
 /// file from above within a factor of 3, and a run that would not fit is
 /// refused before anything is written, with the estimate and its parts in
 /// the message.
 #[test]
 fn disk_estimate_bounds_the_file_and_refuses_what_cannot_fit() {
+    let _serial = serial();
     let s = Scratch::new("estimate", 5, 60.0, 1);
     let cfg = s.cfg();
     let est = runner::disk_estimate(&cfg, (0, 1));

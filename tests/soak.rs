@@ -219,7 +219,14 @@ fn soak_sigkill_and_resume_twenty_times_is_bit_identical() {
     }
     assert!(warnings > 0, "the scenario must produce warnings");
     // Complete: no checkpoints, no rebuild leftovers; the part file no larger than twice the uninterrupted one.
-    let left: Vec<_> = sizes(&dir).into_iter().filter(|(p, _)| p != &part && !p.ends_with("run.toml") && !p.ends_with("model.toml") && !p.ends_with(runner::MODEL_COPY)).collect();
+    // (Copies of a part file that could not be opened at all — killed while
+    // being created — are kept aside on purpose, never deleted; their size
+    // is bounded above.)
+    let left: Vec<_> = sizes(&dir)
+        .into_iter()
+        .filter(|(p, _)| p != &part && !p.ends_with("run.toml") && !p.ends_with("model.toml") && !p.ends_with(runner::MODEL_COPY))
+        .filter(|(p, _)| !p.file_name().unwrap().to_string_lossy().contains(".h5.unreadable-"))
+        .collect();
     assert!(left.is_empty(), "files left after completion: {left:?}");
     let size = std::fs::metadata(&part).unwrap().len();
     assert!(size <= 2 * ref_size, "part file {size} bytes, uninterrupted {ref_size}");

@@ -809,23 +809,6 @@ fn write_new(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
 /// for, into a new file that replaces it. A cleanly closed file is
 /// continued in place, truncated to the checkpoints.
 pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
-    let report = resume_slice(cfg, dir, slice, opts)?;
-    if report.stopped == 0 && report.pending == 0 {
-        // The slice is complete, so copies of an unreadable part file moved
-        // aside by earlier resumes hold nothing the new file lacks.
-        let prefix = format!("{}.unreadable-", report.part.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default());
-        if let Ok(entries) = std::fs::read_dir(dir) {
-            for e in entries.flatten() {
-                if e.file_name().to_string_lossy().starts_with(&prefix) {
-                    let _ = std::fs::remove_file(e.path());
-                }
-            }
-        }
-    }
-    Ok(report)
-}
-
-fn resume_slice(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
     let (k, n) = slice;
     let part = dir.join(part_name(k, n));
     let killed_copy = with_suffix(&part, ".killed");
@@ -846,8 +829,9 @@ fn resume_slice(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Optio
         Err(e) => {
             // Unreadable (e.g. killed while being created): nothing in it can
             // be trusted, and the checkpoints' rows were in it. Keep it aside,
-            // say so, and compute the slice again (deterministically the same;
-            // the copy is removed once the slice is complete).
+            // say so, and compute the slice again (deterministically the same).
+            // The copy is never deleted by the program: it may hold what
+            // a user wants to recover by other means.
             let aside = with_suffix(&part, &format!(".unreadable-{}", std::process::id()));
             tracing::warn!("{e}; moving it to {} and computing slice {k}/{n} again from the start", aside.display());
             std::fs::rename(&part, &aside).map_err(|e| RunError::Directory { path: part.clone(), message: e.to_string() })?;
@@ -871,7 +855,19 @@ fn resume_slice(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Optio
     let mut keep: Vec<(usize, Keep)> = Vec::new();
     let (mut from_prev, mut from_ckpt) = (0, 0);
     for &index in &meta.trajectories {
-        let status = if present.binary_search(&index).is_ok() { Some(reader.status(index)?.0) } else { None };
+        let status = if present.binary_search(&index).is_ok() {
+            match reader.status(index) {
+                Ok((s, _)) => Some(s),
+                // A killed writer can leave a damaged status: rely on the checkpoint.
+                Err(e) if killed => {
+                    tracing::warn!("trajectory {index}: {e}");
+                    Some(Status::Running)
+                }
+                Err(e) => return Err(e.into()),
+            }
+        } else {
+            None
+        };
         let ended = matches!(status, Some(Status::Finished(_) | Status::Failed { .. }));
         if ended && !killed {
             keep.push((index, Keep::Whole));
@@ -914,7 +910,21 @@ fn resume_slice(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Optio
         }
     }
     let writer = if killed {
-        rebuild(&reader, &part, &keep)?;
+        let damaged = rebuild(&reader, &part, &keep)?;
+        for index in damaged {
+            // Its rows did not read back whole (a chunk the kill left half
+            // written): recompute it from its start, deterministically the same.
+            checkpoint::remove(&checkpoint::path_for(&ckpt_dir, index));
+            if let Some(p) = plans.iter_mut().find(|(i, _)| *i == index) {
+                if matches!(p.1, Plan::FromCheckpoint(_)) {
+                    from_ckpt -= 1;
+                }
+                p.1 = Plan::Fresh;
+            } else {
+                plans.push((index, Plan::Fresh));
+            }
+        }
+        plans.sort_by_key(|(i, _)| *i);
         drop(reader);
         PartWriter::open_existing(&part)?.0
     } else {
@@ -947,16 +957,27 @@ enum Keep {
 
 /// Write the trustworthy content of a killed writer's part file into a new
 /// file and put it in the old one's place (the old one is kept as
-/// `*.killed` until the new one is in place).
-fn rebuild(reader: &PartReader, part: &Path, keep: &[(usize, Keep)]) -> Result<(), RunError> {
+/// `*.killed` until the new one is in place). Returns the trajectories whose
+/// kept data did not read back (checksum or layout errors); they are left
+/// out of the new file, to be recomputed.
+fn rebuild(reader: &PartReader, part: &Path, keep: &[(usize, Keep)]) -> Result<Vec<usize>, RunError> {
     let tmp = with_suffix(part, ".rebuild");
     let _ = std::fs::remove_file(&tmp);
     let mut w = PartWriter::create(&tmp, reader.meta())?;
+    let mut damaged = Vec::new();
     for (index, what) in keep {
         let data = match what {
-            Keep::Whole => reader.read(*index)?,
+            Keep::Whole => reader.read(*index),
             Keep::Prefix(c) if *c == Counts::default() => continue,
-            Keep::Prefix(c) => reader.read_prefix_all(*index, *c)?,
+            Keep::Prefix(c) => reader.read_prefix_all(*index, *c),
+        };
+        let data = match data {
+            Ok(d) => d,
+            Err(e) => {
+                tracing::warn!("trajectory {index}: {e}; recomputing it from its start");
+                damaged.push(*index);
+                continue;
+            }
         };
         w.begin(&data.header)?;
         w.append_all(*index, &data.rows, &data.diagnostics, &data.hops, &data.warnings)?;
@@ -970,7 +991,7 @@ fn rebuild(reader: &PartReader, part: &Path, keep: &[(usize, Keep)]) -> Result<(
     std::fs::rename(part, &killed_copy).map_err(io)?;
     std::fs::rename(&tmp, part).map_err(io)?;
     let _ = std::fs::remove_file(&killed_copy);
-    Ok(())
+    Ok(damaged)
 }
 
 fn finish_report(report: &mut RunReport) -> Result<(), RunError> {
