@@ -16,7 +16,7 @@ use std::sync::Arc;
 use flipswarm::config::{load_str, RunConfig};
 use flipswarm::dynamics::Status;
 use flipswarm::electronic::{Backend, BackendError, BackendInfo, Diagnostics, Request, Results, Snapshot};
-use flipswarm::ensemble::h5::{PartReader, TrajectoryData, WriterState, INJECT_WRITE_FAILURE};
+use flipswarm::ensemble::h5::{Counts, PartReader, PartWriter, TrajectoryData, WriterState, INJECT_WRITE_FAILURE};
 use flipswarm::ensemble::record::RowDiagnostics;
 use flipswarm::ensemble::runner;
 use flipswarm::swarm;
@@ -342,19 +342,15 @@ fn a_chunk_with_a_bad_checksum_is_recomputed_on_resume() {
 
     let dir = s.0.join("damaged");
     let stop = Arc::new(AtomicBool::new(false));
-    let calls = Arc::new(AtomicUsize::new(0));
-    let (model, st, n) = (cfg.model.clone(), stop.clone(), calls.clone());
+    let (model, st, n) = (cfg.model.clone(), stop.clone(), Arc::new(AtomicUsize::new(0)));
     let stopping = move |_: usize| -> Box<dyn Backend> { Box::new(StopAfter { inner: swarm::make_backend(&model), stop: st.clone(), calls: n.clone(), after: 6000 }) };
     let opts = runner::Options { threads: 2, stop: stop.clone(), factory: &stopping, progress_bar: false };
     let report = runner::start(&cfg, &dir, (0, 1), &opts).unwrap();
     assert!(report.stopped > 0, "the run must stop part-way");
     let file = part(&dir);
     let victim = PartReader::open(&file).unwrap().trajectory_indices()[1];
-    {
-        let f = hdf5::File::open_rw(&file).unwrap();
-        let open: hdf5::types::VarLenUnicode = "open".parse().unwrap();
-        f.attr("writer_state").unwrap().write_scalar(&open).unwrap();
-    }
+    // A writer that never closes leaves `writer_state` = "open", as a killed one does.
+    drop(PartWriter::open_existing(&file).unwrap());
     // The bytes of one early position value (unique to this trajectory and step).
     let t = PartReader::open(&part(&reference)).unwrap().read(victim).unwrap();
     let x = t.rows[3].q[0].to_le_bytes();
@@ -365,7 +361,7 @@ fn a_chunk_with_a_bad_checksum_is_recomputed_on_resume() {
     std::fs::write(&file, &bytes).unwrap();
     let r = PartReader::open(&file).unwrap();
     assert_eq!(r.writer_state(), WriterState::Open);
-    let e = r.read_prefix_all(victim, flipswarm::ensemble::h5::Counts { rows: 10, hops: 0, warnings: 0 }).unwrap_err().to_string();
+    let e = r.read_prefix_all(victim, Counts { rows: 10, hops: 0, warnings: 0 }).unwrap_err().to_string();
     assert!(e.contains("Fletcher32") || e.contains("checksum"), "{e}");
     drop(r);
     let (code, err) = spawn_run(&["resume", dir.to_str().unwrap()], None);

@@ -853,7 +853,7 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
     let present = reader.trajectory_indices();
     let mut plans = Vec::new();
     let mut keep: Vec<(usize, Keep)> = Vec::new();
-    let (mut from_prev, mut from_ckpt) = (0, 0);
+    let mut from_previous = Vec::new();
     for &index in &meta.trajectories {
         let status = if present.binary_search(&index).is_ok() {
             match reader.status(index) {
@@ -892,9 +892,8 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
             Some((c, source)) => {
                 if source == Source::Previous {
                     tracing::warn!("trajectory {index}: resuming from the previous checkpoint (step {}): the newest was missing or damaged", c.state.step);
-                    from_prev += 1;
+                    from_previous.push(index);
                 }
-                from_ckpt += 1;
                 keep.push((index, Keep::Prefix(Counts { rows: c.rows_written, hops: c.hops_written, warnings: c.warnings_written })));
                 plans.push((index, Plan::FromCheckpoint(Box::new(c))));
             }
@@ -916,9 +915,6 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
             // written): recompute it from its start, deterministically the same.
             checkpoint::remove(&checkpoint::path_for(&ckpt_dir, index));
             if let Some(p) = plans.iter_mut().find(|(i, _)| *i == index) {
-                if matches!(p.1, Plan::FromCheckpoint(_)) {
-                    from_ckpt -= 1;
-                }
                 p.1 = Plan::Fresh;
             } else {
                 plans.push((index, Plan::Fresh));
@@ -938,6 +934,9 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
         w.flush()?;
         w
     };
+    let from_checkpoint = |i: &usize| plans.iter().any(|(j, p)| j == i && matches!(p, Plan::FromCheckpoint(_)));
+    let from_prev = from_previous.iter().filter(|i| from_checkpoint(i)).count();
+    let from_ckpt = plans.iter().filter(|(_, p)| matches!(p, Plan::FromCheckpoint(_))).count();
     tracing::info!("resuming {} of {} trajectories ({} from checkpoints)", plans.len(), meta.trajectories.len(), from_ckpt);
     let mut report = execute(cfg, dir, k, writer, plans, opts)?;
     report.part = part;
