@@ -115,6 +115,15 @@ fn malformed_inputs_name_file_line_and_key() {
             key: Some("dynamics.substeps"),
             says: "between 1 and",
         },
+        Case {
+            name: "tracking floor of 1 or more",
+            text: GOOD.to_string(),
+            overrides: vec!["dynamics.min_overlap_determinant=1.5"],
+            origin: "--set",
+            line: None,
+            key: Some("dynamics.min_overlap_determinant"),
+            says: "at least 0 and below 1, found 1.5",
+        },
     ];
     assert!(cases.len() >= 15);
     for c in &cases {

@@ -17,6 +17,7 @@ fn settings(dt: f64, max_time: f64) -> Settings {
         frustrated: FrustratedHops::Keep,
         decoherence: DecoherenceScheme::None,
         energy_drift_limit: 1.0,
+        min_overlap_determinant: 0.3,
         exit_region: None,
     }
 }

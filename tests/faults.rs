@@ -196,6 +196,12 @@ impl Backend for Poison {
                 "gradient-inf" => self.results.gradients[0].1[0] = f64::NEG_INFINITY,
                 "energy-inf" => self.results.energies[2] = f64::INFINITY,
                 "gradient-huge" => self.results.gradients[0].1[0] = f64::MAX,
+                // State 2 leaves the tracked space: its overlap column keeps
+                // 20 % of its norm (an intruder state took the rest).
+                "overlap-lost" => {
+                    let s = self.results.overlaps.as_mut().expect("overlaps requested");
+                    s.column_mut(2).scale_mut(0.2);
+                }
                 _ => unreachable!(),
             }
         }
@@ -209,8 +215,9 @@ impl Backend for Poison {
     }
 }
 
-/// Numerical faults: NaN or infinite gradients and energies (and a finite
-/// gradient so large that the velocities overflow) fail exactly that
+/// Numerical faults: NaN or infinite gradients and energies (a finite
+/// gradient so large that the velocities overflow, and an overlap matrix
+/// whose |det| says a tracked state left the space) fail exactly that
 /// trajectory, typed as `Status::Failed` with the last good step and a
 /// reason naming the bad step; every stored number stays finite; the call
 /// at the initial geometry fails at step 0. The others finish.
@@ -222,6 +229,7 @@ fn non_finite_numbers_fail_the_trajectory_with_its_step() {
         ("gradient-inf", 10, 9, "gradient component 0 = -inf"),
         ("energy-inf", 30, 29, "energy of state 2 = inf"),
         ("gradient-huge", 15, 14, "non-finite velocity 0"),
+        ("overlap-lost", 25, 24, "state tracking lost: |det| of the overlap between steps is 0.200"),
         ("gradient-nan", 0, 0, "initial geometry"),
     ] {
         let s = Scratch::new("poison", 3, 10.0, 1);

@@ -393,3 +393,85 @@ fn scf_failure_ends_the_trajectory_cleanly() {
         other => panic!("status {other:?}"),
     }
 }
+
+/// Delegates to a normal MRSF back end for `good_steps` dynamics steps,
+/// then hands its snapshot to a second back end whose Davidson solver has
+/// one iteration and no dense shortcut (a stand-in for a solver that stalls).
+struct StallsAfter {
+    good: MrsfBackend,
+    starved: MrsfBackend,
+    good_steps: usize,
+    steps: usize,
+}
+
+impl Backend for StallsAfter {
+    fn info(&self) -> flipswarm::electronic::BackendInfo {
+        self.good.info()
+    }
+    fn compute(&mut self, q: &[f64], request: &Request) -> Result<&flipswarm::electronic::Results, flipswarm::electronic::BackendError> {
+        if request.overlaps {
+            self.steps += 1;
+            if self.steps == self.good_steps + 1 {
+                self.starved.restore(&self.good.snapshot())?;
+            }
+        }
+        if self.steps > self.good_steps {
+            self.starved.compute(q, request)
+        } else {
+            self.good.compute(q, request)
+        }
+    }
+    fn snapshot(&self) -> flipswarm::electronic::Snapshot {
+        if self.steps > self.good_steps { self.starved.snapshot() } else { self.good.snapshot() }
+    }
+    fn restore(&mut self, s: &flipswarm::electronic::Snapshot) -> Result<(), flipswarm::electronic::BackendError> {
+        self.good.restore(s)
+    }
+}
+
+// Source: the project's failure-isolation design (design §3; no outside
+// numbers). Numerical fault: the MRSF eigensolver of one trajectory cannot
+// converge at step 4 (Davidson left with one iteration after three good
+// steps). That trajectory is failed at its last good step (3) with the
+// solver's message naming the step; the other finishes; only finite rows of
+// the good steps are stored.
+#[test]
+fn a_stalled_eigensolver_fails_that_trajectory_at_its_step() {
+    use flipswarm::dynamics::Status;
+    use flipswarm::ensemble::{h5::PartReader, runner};
+    use std::sync::atomic::AtomicBool;
+    let dir = common::scratch("molecular", "stall");
+    let ens = methylene_ensemble(&dir, 1, 4.0, 2);
+    let cfg = flipswarm::config::load_str(&std::fs::read_to_string(&ens).unwrap(), "methylene.toml", &dir, &[]).unwrap();
+    let spec = match &cfg.model {
+        flipswarm::config::ModelSpec::Molecule { spec, .. } => spec.clone(),
+        other => panic!("{other:?}"),
+    };
+    let mut starved = (*spec).clone();
+    starved.calculation.davidson = DavidsonOptions { max_iterations: 1, dense_below: 0, ..starved.calculation.davidson.clone() };
+    let starved = Arc::new(starved);
+    let factory = move |i: usize| -> Box<dyn Backend> {
+        if i == 1 {
+            Box::new(StallsAfter { good: MrsfBackend::new(spec.clone()), starved: MrsfBackend::new(starved.clone()), good_steps: 3, steps: 0 })
+        } else {
+            Box::new(MrsfBackend::new(spec.clone()))
+        }
+    };
+    let out = dir.join("run");
+    let opts = runner::Options { threads: 2, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let report = runner::start(&cfg, &out, (0, 1), &opts).unwrap();
+    assert_eq!((report.finished, report.failed), (1, 1));
+    let r = PartReader::open(&part(&out)).unwrap();
+    assert!(matches!(r.read(0).unwrap().status, Status::Finished(_)));
+    let failed = r.read(1).unwrap();
+    match &failed.status {
+        Status::Failed { step, reason } => {
+            assert_eq!(*step, 3, "{reason}");
+            assert!(reason.contains("Davidson not converged after 1 iterations"), "{reason}");
+            assert!(reason.contains("step 4"), "{reason}");
+        }
+        other => panic!("status {other:?}"),
+    }
+    assert_eq!(failed.rows.last().map(|row| row.step), Some(3));
+    assert!(failed.rows.iter().all(|row| row.energies.iter().chain(&row.q).all(|x| x.is_finite())));
+}

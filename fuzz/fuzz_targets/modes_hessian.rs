@@ -1,8 +1,9 @@
-//! Modes files (`sampling::files::ModesFile::read`, TOML) from the input
+//! Modes files (`sampling::files::ModesFile::read`, TOML) and text
+//! Hessians (`sampling::files::parse_hessian`, for 1–4 atoms) from the input
 //! text, and normal modes of a Hessian built from the input bytes
 //! (`sampling::modes::normal_modes`: any shape, any values).
 #![no_main]
-use flipswarm::sampling::files::ModesFile;
+use flipswarm::sampling::files::{parse_hessian, ModesFile};
 use flipswarm::sampling::modes::normal_modes;
 use libfuzzer_sys::fuzz_target;
 use nalgebra::DMatrix;
@@ -12,6 +13,11 @@ fuzz_target!(|data: &[u8]| {
         let path = std::env::temp_dir().join(format!("flipswarm-fuzz-modes-{}.toml", std::process::id()));
         if std::fs::write(&path, text).is_ok() {
             let _ = ModesFile::read(&path);
+        }
+        for atoms in 1..=4 {
+            if let Ok(h) = parse_hessian(text, 3 * atoms) {
+                assert_eq!(h.shape(), (3 * atoms, 3 * atoms));
+            }
         }
     }
     // Hessian: first byte = atoms (1–4), second = extra columns, then f64s.

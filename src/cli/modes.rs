@@ -5,12 +5,11 @@
 use std::path::{Path, PathBuf};
 
 use clap::Args;
-use nalgebra::DMatrix;
 
 use super::exit;
 use crate::config::ModelSpec;
 use crate::electronic::Request;
-use crate::sampling::files::{ModeEntry, ModesFile, MODES_FORMAT};
+use crate::sampling::files::{read_hessian, ModeEntry, ModesFile, MODES_FORMAT};
 use crate::sampling::modes::{finite_difference_hessian, normal_modes, normal_modes_of_coordinates, NormalModes};
 use crate::units;
 
@@ -37,32 +36,6 @@ pub struct ModesArgs {
     /// Replace an existing output file.
     #[arg(long)]
     pub force: bool,
-}
-
-fn read_hessian(path: &Path, n: usize) -> Result<DMatrix<f64>, String> {
-    let text = std::fs::read_to_string(path).map_err(|e| format!("{}: {e}", path.display()))?;
-    let mut rows: Vec<Vec<f64>> = Vec::new();
-    for (k, line) in text.lines().enumerate() {
-        let line = line.split('#').next().unwrap_or("").trim();
-        if line.is_empty() {
-            continue;
-        }
-        let row: Result<Vec<f64>, String> = line
-            .split_whitespace()
-            .map(|t| t.parse::<f64>().map_err(|_| format!("{}: line {}: {t:?} is not a number", path.display(), k + 1)))
-            .collect();
-        let row = row?;
-        if let Some(x) = row.iter().find(|x| !x.is_finite()) {
-            return Err(format!("{}: line {}: non-finite entry {x}", path.display(), k + 1));
-        }
-        rows.push(row);
-    }
-    let cols = rows.first().map_or(0, |r| r.len());
-    if rows.len() != n || rows.iter().any(|r| r.len() != cols) || cols != n {
-        let shape = if rows.iter().all(|r| r.len() == cols) { format!("{}×{cols}", rows.len()) } else { format!("{} ragged rows", rows.len()) };
-        return Err(format!("{}: the Hessian is {shape} but the geometry's {} atoms need {n}×{n}", path.display(), n / 3));
-    }
-    Ok(DMatrix::from_fn(n, n, |i, j| rows[i][j]))
 }
 
 fn reference_of(model: &ModelSpec) -> Result<Vec<f64>, String> {
@@ -99,7 +72,7 @@ pub fn execute(args: &ModesArgs) -> i32 {
             }
         };
         let mol = frame.molecule;
-        let hess = match read_hessian(hpath, 3 * mol.len()) {
+        let hess = match read_hessian(hpath, 3 * mol.len()).map_err(|e| e.to_string()) {
             Ok(h) => h,
             Err(e) => {
                 eprintln!("error: --hessian {e}");

@@ -94,6 +94,7 @@ pub const SCHEMA: &[KeyDoc] = &[
     KeyDoc { path: "dynamics.decoherence", meaning: "none or energy-based", default: "energy-based" },
     KeyDoc { path: "dynamics.decoherence_constant_hartree", meaning: "C of the energy-based correction", default: "0.1" },
     KeyDoc { path: "dynamics.max_energy_drift_ev", meaning: "total-energy change that fails a trajectory, eV", default: "0.05" },
+    KeyDoc { path: "dynamics.min_overlap_determinant", meaning: "|det| of the overlap between consecutive steps' tracked states below which a trajectory fails (state tracking lost); 0 switches the check off", default: "0.3" },
     KeyDoc { path: "dynamics.exit_region_bohr", meaning: "[low, high]: 1D trajectories stop once outside, moving away", default: "none" },
     KeyDoc { path: "output.record_every_steps", meaning: "write one row of positions, energies, amplitudes every this many steps (hops are always written)", default: "1" },
     KeyDoc { path: "output.checkpoint_every_steps", meaning: "checkpoint each trajectory every this many steps (0: by wall-clock time only)", default: "0" },
@@ -593,6 +594,11 @@ fn build_settings(r: &Reader, model: &ModelSpec, sampling: &Sampling) -> Result<
         _ => DecoherenceScheme::EnergyBased { c },
     };
     let drift = units::ev_to_hartree(positive(r, "dynamics.max_energy_drift_ev")?.unwrap_or(0.05));
+    let min_overlap_determinant = match r.f64("dynamics.min_overlap_determinant")? {
+        None => 0.3,
+        Some(x) if (0.0..1.0).contains(&x) => x,
+        Some(x) => return Err(r.error("dynamics.min_overlap_determinant", format!("must be at least 0 and below 1, found {x}"))),
+    };
     let exit_region = r.pair("dynamics.exit_region_bohr")?;
     if let Some((lo, hi)) = exit_region {
         let key = "dynamics.exit_region_bohr";
@@ -618,6 +624,7 @@ fn build_settings(r: &Reader, model: &ModelSpec, sampling: &Sampling) -> Result<
         frustrated,
         decoherence,
         energy_drift_limit: drift,
+        min_overlap_determinant,
         exit_region,
     })
 }

@@ -44,6 +44,38 @@ pub enum OverlapError {
     /// Non-finite entries.
     #[error("overlap matrix contains non-finite entries")]
     NonFinite,
+    /// The tracked states lost part of their space over the step: |det S|
+    /// (the product of the overlap's singular values) fell below the floor,
+    /// so an untracked state crossed into the tracked set (or the step is
+    /// too long) and the couplings would be meaningless.
+    #[error(
+        "state tracking lost: |det| of the overlap between steps is {determinant:.3} (floor {floor}); \
+         the least-kept state is {state} (norm {norm:.3} within the tracked states) — track more states or shorten the time step"
+    )]
+    TrackingLost {
+        /// |det S| of the raw overlap.
+        determinant: f64,
+        /// The configured floor.
+        floor: f64,
+        /// The new state whose overlap column has the smallest norm.
+        state: usize,
+        /// That column norm.
+        norm: f64,
+    },
+}
+
+/// |det S| and the state (column) that keeps least of its norm within the
+/// tracked space; checked against `dynamics.min_overlap_determinant`.
+pub fn check_tracking(s: &DMatrix<f64>, floor: f64) -> Result<(), OverlapError> {
+    let determinant = s.determinant().abs();
+    if determinant >= floor || !determinant.is_finite() {
+        return Ok(());
+    }
+    let (state, norm) = (0..s.ncols())
+        .map(|j| (j, s.column(j).norm()))
+        .min_by(|a, b| a.1.total_cmp(&b.1))
+        .unwrap_or((0, 0.0));
+    Err(OverlapError::TrackingLost { determinant, floor, state, norm })
 }
 
 /// The coupling over one nuclear step, derived from the aligned overlaps.
@@ -288,6 +320,31 @@ mod tests {
         let p4 = &sc.propagator * &sc.propagator * &sc.propagator * &sc.propagator;
         assert!((p4 - s.transpose()).norm() < 1e-12);
         assert!((&sc.t + sc.t.transpose()).norm() < 1e-15);
+    }
+
+    /// Tracking check: a rotation (|det| = 1, any sign) passes; a state whose
+    /// column keeps 40 % of its norm gives |det| = 0.4 and names that state.
+    /// Reference: det of a rotation is ±1, det scales linearly in a column
+    /// (linear algebra, common practice).
+    #[test]
+    fn lost_tracking_is_detected_by_the_determinant() {
+        let r = rotation3(0.3, -0.2, 0.7);
+        assert!(check_tracking(&r, 0.3).is_ok());
+        let mut improper = r.clone();
+        improper.column_mut(0).neg_mut();
+        assert!(check_tracking(&improper, 0.3).is_ok());
+        let mut lost = r.clone();
+        lost.column_mut(1).scale_mut(0.4);
+        match check_tracking(&lost, 0.5) {
+            Err(OverlapError::TrackingLost { determinant, floor, state, norm }) => {
+                assert!((determinant - 0.4).abs() < 1e-12);
+                assert_eq!((floor, state), (0.5, 1));
+                assert!((norm - 0.4).abs() < 1e-12);
+            }
+            other => panic!("{other:?}"),
+        }
+        assert!(check_tracking(&lost, 0.3).is_ok());
+        assert!(check_tracking(&lost, 0.0).is_ok());
     }
 
     /// The two-state closed form agrees with the general path (fast vs reference).

@@ -12,7 +12,7 @@ use rand::Rng;
 use rand_chacha::ChaCha20Rng;
 use serde::{Deserialize, Serialize};
 
-use super::amplitudes::{align_phases, StepCoupling};
+use super::amplitudes::{align_phases, check_tracking, StepCoupling};
 use super::decoherence::{Decoherence, DecoherenceScheme};
 use super::hopping::{adjust_velocity, choose_target, kinetic_energy, reflect_velocity, FrustratedHops, HopDirection};
 use super::verlet;
@@ -35,9 +35,20 @@ pub struct Settings {
     pub decoherence: DecoherenceScheme,
     /// A total-energy change beyond this (hartree) fails the trajectory.
     pub energy_drift_limit: f64,
+    /// |det| of the overlap between consecutive steps' states below this
+    /// fails the trajectory (state tracking lost); 0 disables the check.
+    pub min_overlap_determinant: f64,
     /// For one-dimensional models: stop once the coordinate is outside
     /// [min, max] and moving away.
     pub exit_region: Option<(f64, f64)>,
+}
+
+/// A back-end failure during a step, with the step it happened at.
+fn at_step(e: BackendError, step: u64) -> BackendError {
+    match e {
+        BackendError::Failed(m) => BackendError::Failed(format!("{m}, at step {step}")),
+        other => BackendError::Failed(format!("{other}, at step {step}")),
+    }
 }
 
 /// Why a trajectory ended normally.
@@ -282,7 +293,7 @@ impl<'b> Trajectory<'b> {
         self.request.gradients.clear();
         self.request.gradients.push(s.active);
         self.request.overlaps = n > 1;
-        let res = self.backend.compute(&self.q_new, &self.request)?;
+        let res = self.backend.compute(&self.q_new, &self.request).map_err(|e| at_step(e, s.step + 1))?;
         let gradient = res.gradient(s.active).ok_or_else(|| BackendError::Failed(format!("the back end did not return the requested gradient of state {} at step {}", s.active, s.step + 1)))?;
         if let Some(bad) = non_finite(&res.energies, gradient) {
             return Err(BackendError::Failed(format!("the back end returned a non-finite {bad} at step {}", s.step + 1)));
@@ -302,6 +313,8 @@ impl<'b> Trajectory<'b> {
 
         let coupling = match (&res.overlaps, n > 1) {
             (Some(raw), true) => {
+                check_tracking(raw, self.settings.min_overlap_determinant)
+                    .map_err(|e| BackendError::Failed(format!("{e}, at step {}", s.step + 1)))?;
                 let (aligned, mut phases) = align_phases(raw, &s.phases);
                 let c = StepCoupling::from_overlaps(&aligned, &mut phases, dt, self.settings.substeps)
                     .map_err(|e| BackendError::Failed(e.to_string()))?;
@@ -344,14 +357,14 @@ impl<'b> Trajectory<'b> {
             HopDirection::Velocity => s.v.iter().zip(&self.masses).map(|(v, m)| m * v).collect(),
             HopDirection::Coupling => {
                 let req = Request { couplings: true, ..Request::default() };
-                let res = self.backend.compute(&s.q, &req)?;
+                let res = self.backend.compute(&s.q, &req).map_err(|e| at_step(e, s.step))?;
                 res.couplings.as_ref().expect("requested").get(from, target)
             }
         };
         let accepted = adjust_velocity(&mut s.v, &self.masses, &direction, gap);
         if accepted {
             s.active = target;
-            let res = self.backend.compute(&s.q, &Request::gradient_of(target))?;
+            let res = self.backend.compute(&s.q, &Request::gradient_of(target)).map_err(|e| at_step(e, s.step))?;
             s.gradient = res.gradient(target).expect("requested").to_vec();
         } else if self.settings.frustrated == FrustratedHops::Reflect {
             reflect_velocity(&mut s.v, &self.masses, &direction);

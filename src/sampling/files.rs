@@ -34,6 +34,7 @@ use std::path::{Path, PathBuf};
 use std::str::FromStr;
 
 use hdf5::types::VarLenUnicode;
+use nalgebra::DMatrix;
 use serde::{Deserialize, Serialize};
 
 /// Format tag of the modes file.
@@ -60,6 +61,52 @@ pub enum FileError {
         /// What is wrong (key or dataset named).
         message: String,
     },
+}
+
+/// Read a Cartesian Hessian (hartree/bohr²) for `n` = 3N coordinates from a
+/// text file: whitespace-separated numbers, one row per line, `#` starts a
+/// comment, blank lines are skipped.
+pub fn read_hessian(path: &Path, n: usize) -> Result<DMatrix<f64>, FileError> {
+    let text = std::fs::read_to_string(path).map_err(|e| FileError::Io { path: path.to_path_buf(), message: e.to_string() })?;
+    parse_hessian(&text, n).map_err(|message| FileError::Content { path: path.to_path_buf(), message })
+}
+
+/// The text form of [`read_hessian`]; the error names the line.
+pub fn parse_hessian(text: &str, n: usize) -> Result<DMatrix<f64>, String> {
+    let mut rows: Vec<Vec<f64>> = Vec::new();
+    for (k, line) in text.lines().enumerate() {
+        let line = line.split('#').next().unwrap_or("").trim();
+        if line.is_empty() {
+            continue;
+        }
+        // More rows than the geometry needs: stop collecting (the shape
+        // message below still counts them) instead of holding them all.
+        if rows.len() > n {
+            rows.push(Vec::new());
+            continue;
+        }
+        let mut row = Vec::with_capacity(n.min(4096));
+        for t in line.split_whitespace() {
+            let x = t.parse::<f64>().map_err(|_| format!("line {}: {t:?} is not a number", k + 1))?;
+            if !x.is_finite() {
+                return Err(format!("line {}: non-finite entry {x}", k + 1));
+            }
+            row.push(x);
+        }
+        rows.push(row);
+    }
+    let cols = rows.first().map_or(0, |r| r.len());
+    if rows.len() != n || rows.iter().any(|r| r.len() != cols) || cols != n {
+        let shape = if rows.len() > n {
+            format!("more than {n} rows")
+        } else if rows.iter().all(|r| r.len() == cols) {
+            format!("{}×{cols}", rows.len())
+        } else {
+            format!("{} ragged rows", rows.len())
+        };
+        return Err(format!("the Hessian is {shape} but the geometry's {} atoms need {n}×{n}", n / 3));
+    }
+    Ok(DMatrix::from_fn(n, n, |i, j| rows[i][j]))
 }
 
 /// One normal mode.
@@ -325,5 +372,30 @@ impl InitialConditions {
             modes_toml: get_str("modes_toml")?,
             excitation,
         })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::parse_hessian;
+
+    /// The text Hessian reader: comments and blank lines are skipped, and
+    /// every kind of bad text is refused with the line or the two shapes.
+    #[test]
+    fn hessian_text_is_read_and_bad_text_is_named() {
+        let h = parse_hessian("# water-free test\n1 0.5 0\n\n0.5 2 0 # row 2\n0 0 3\n", 3).unwrap();
+        assert_eq!(h.shape(), (3, 3));
+        assert_eq!((h[(0, 1)], h[(1, 1)], h[(2, 2)]), (0.5, 2.0, 3.0));
+        for (text, n, says) in [
+            ("1 0 0\n0 x 0\n0 0 1\n", 3, "line 2: \"x\" is not a number"),
+            ("1 0 0\n0 1 0\n0 0 nan\n", 3, "line 3: non-finite entry NaN"),
+            ("1 0 0\n0 1\n0 0 1\n", 3, "3 ragged rows"),
+            ("1 0\n0 1\n", 3, "2×2 but the geometry's 1 atoms need 3×3"),
+            ("1 0 0\n0 1 0\n0 0 1\n1 1 1\n1 1 1\n", 3, "more than 3 rows"),
+            ("", 3, "0×0"),
+        ] {
+            let err = parse_hessian(text, n).unwrap_err();
+            assert!(err.contains(says), "{text:?}: {err}");
+        }
     }
 }
