@@ -10,13 +10,17 @@
 //! a conical intersection with branching plane x, y); on it V̄ = ½k z² + c z
 //! is smallest at z* = −c/k, where E = −c²/2k (exact, elementary calculus).
 
+mod common;
+
+use std::sync::Arc;
+
 use flipswarm::chem::{Element, Molecule};
 use flipswarm::electronic::qc::basis::{BasisSet, BasisSetData};
 use flipswarm::electronic::qc::dft::grid::GridSpec;
 use flipswarm::electronic::qc::gradient::numerical::{orbital_guess, ScfEnergy, Target};
 use flipswarm::electronic::qc::gradient::scf::Potential;
 use flipswarm::electronic::qc::integrals::JkOptions;
-use flipswarm::electronic::qc::optimize::intersection::{minimize_crossing, CrossingOptions, StatePair};
+use flipswarm::electronic::qc::optimize::intersection::{minimize_crossing, Crossing, CrossingOptions, StatePair};
 use flipswarm::electronic::qc::optimize::{minimize_mrsf_crossing, GradientKind, OptimizeError, OptimizeOptions};
 use flipswarm::electronic::qc::response::davidson::DavidsonOptions;
 use flipswarm::electronic::qc::response::overlap::{state_overlaps, StateVectors};
@@ -155,14 +159,25 @@ fn loop_signs(calc: &ScfEnergy, points: &[Vec<[f64; 3]>]) -> ([f64; 2], f64) {
 // loop of radius 0.03 bohr in the branching plane (gradient difference and
 // a second direction from the coupling of the states) flips the sign of
 // both, and a loop of the same size centred 0.3 bohr away does not.
+/// The S1/S0 minimum-energy crossing of ethylene from the twisted, folded
+/// start, searched once and shared by the tests of this file.
+fn ethylene_crossing() -> &'static Crossing {
+    static FOUND: std::sync::OnceLock<Crossing> = std::sync::OnceLock::new();
+    FOUND.get_or_init(|| {
+        let calc = ethylene_calculation();
+        let start: Vec<[f64; 3]> = calc.molecule.atoms.iter().map(|a| a.position_bohr).collect();
+        let opts = CrossingOptions { stage: OptimizeOptions { max_steps: 80, ..OptimizeOptions::default() }, ..CrossingOptions::default() };
+        let t = std::time::Instant::now();
+        let found = minimize_mrsf_crossing(&calc, &start, "S0", "S1", 2, 0, GradientKind::Analytic, &opts).unwrap();
+        eprintln!("{found} in {:.1} s", t.elapsed().as_secs_f64());
+        found
+    })
+}
+
 #[test]
 fn ethylene_s1_s0_intersection_and_its_geometric_phase() {
     let calc = ethylene_calculation();
-    let start: Vec<[f64; 3]> = calc.molecule.atoms.iter().map(|a| a.position_bohr).collect();
-    let opts = CrossingOptions { stage: OptimizeOptions { max_steps: 80, ..OptimizeOptions::default() }, ..CrossingOptions::default() };
-    let t = std::time::Instant::now();
-    let found = minimize_mrsf_crossing(&calc, &start, "S0", "S1", 2, 0, GradientKind::Analytic, &opts).unwrap();
-    eprintln!("{found} in {:.1} s", t.elapsed().as_secs_f64());
+    let found = ethylene_crossing();
     assert!(found.gap < 1e-4, "gap {:e}", found.gap);
     let x = &found.positions;
     // The two CH2 planes: normals of (H2 C0 H3) and (H4 C1 H5).
@@ -209,4 +224,117 @@ fn ethylene_s1_s0_intersection_and_its_geometric_phase() {
     eprintln!("geometric phase: around the intersection {around:?} (smallest gap {gap_around:.2e} Eh), beside it {beside:?} (gap {gap_beside:.2e} Eh)");
     assert_eq!(around, [-1.0, -1.0], "no sign change around the intersection");
     assert_eq!(beside, [1.0, 1.0], "a sign change around a loop that encloses no intersection");
+}
+
+/// Internal coordinates of ethylene (atoms C0 C1 H2 H3 on C0, H4 H5 on C1):
+/// C–C (Å), twist (degrees, the mean of the two H–C–C–H dihedrals that are
+/// 0 in the planar molecule, folded into [0°, 90°]) and the pyramidalisation
+/// of each carbon (degrees: angle of the C–C bond out of its H–C–H plane).
+fn ethylene_internals(q: &[f64]) -> [f64; 4] {
+    use flipswarm::analysis::geometry::Param;
+    let cc = Param::Bond([0, 1]).value(q);
+    let fold = |d: f64| {
+        let a = d.abs() % 180.0;
+        if a > 90.0 { 180.0 - a } else { a }
+    };
+    let twist = 0.5 * (fold(Param::Dihedral([2, 0, 1, 4]).value(q)) + fold(Param::Dihedral([3, 0, 1, 5]).value(q)));
+    let r = |a: usize| nalgebra::Vector3::new(q[3 * a], q[3 * a + 1], q[3 * a + 2]);
+    let pyramid = |c: usize, o: usize, h1: usize, h2: usize| {
+        let n = (r(h1) - r(c)).cross(&(r(h2) - r(c))).normalize();
+        let b = (r(o) - r(c)).normalize();
+        n.dot(&b).abs().asin().to_degrees()
+    };
+    [cc, twist, pyramid(0, 1, 2, 3), pyramid(1, 0, 4, 5)]
+}
+
+// Sources: the twisted-pyramidalised S1/S0 intersection of ethylene as the
+// funnel of its S1 decay (trade-standard test case, common practice);
+// fewest-switches surface hopping (J. Chem. Phys. 93, 1061 (1990)); the
+// crossing from the optimiser of this file (same method). MRSF-TDDFT
+// BH&HLYP/6-31G (coarse grid), analytic gradients, 0.5 fs steps, energy-based
+// decoherence, velocity rescaling at hops (common practice; it spares the
+// coupling vectors' finite differences). Trajectories start on S1 at the
+// 90°-twisted geometry with 300 K Maxwell–Boltzmann
+// velocities (seeded; our own scenario), one CH2 folded by 25°. Shown: both
+// trajectories reach S0 by a hop from S1 within 30 fs; at each hop
+// S1 − S0 < 0.3 eV and the geometry is close, in internal coordinates
+// (C–C within 0.1 Å, twist within 10°, each pyramidalisation within 15°),
+// to the optimiser's crossing; the hop conserves energy and the total energy
+// stays within 2e-3 Eh.
+#[test]
+fn s1_trajectories_of_twisted_ethylene_decay_through_the_crossing() {
+    use flipswarm::dynamics::{DecoherenceScheme, FrustratedHops, HopDirection, Settings, Trajectory};
+    use flipswarm::electronic::qc::backend::{GradientMethod, MolecularSpec, MrsfBackend};
+    use flipswarm::electronic::qc::gradient::mrsf::ZVectorOptions;
+    use flipswarm::electronic::Backend;
+    use rand::{Rng, SeedableRng};
+    use rand_distr::StandardNormal;
+    let fs = 41.341373335;
+    let crossing = ethylene_crossing();
+    let meci: Vec<f64> = crossing.positions.iter().flatten().copied().collect();
+    let at_meci = ethylene_internals(&meci);
+    let mut calculation = ethylene_calculation();
+    calculation.molecule = common::qc::ethylene(90.0);
+    // Fold the C1H2 group by 25° (rotation of its hydrogens about the axis
+    // through C1 perpendicular to the C–C bond, in the CH2 plane).
+    let (c1, phi) = (calculation.molecule.atoms[1].position_bohr, 25f64.to_radians());
+    for a in &mut calculation.molecule.atoms[4..6] {
+        let r = [a.position_bohr[0] - c1[0], a.position_bohr[1] - c1[1], a.position_bohr[2] - c1[2]];
+        a.position_bohr = [c1[0] + r[0], c1[1] + r[1] * phi.cos() - r[2] * phi.sin(), c1[2] + r[1] * phi.sin() + r[2] * phi.cos()];
+    }
+    let q0: Vec<f64> = calculation.molecule.atoms.iter().flat_map(|a| a.position_bohr).collect();
+    let spec = Arc::new(MolecularSpec {
+        calculation,
+        singlets: 3,
+        gradients: GradientMethod::Analytic { zvector: ZVectorOptions::default(), coupling_step: 1e-3 },
+        label: "ethylene BH&HLYP/6-31G".into(),
+    });
+    let settings = Settings {
+        dt: 0.5 * fs,
+        substeps: 20,
+        max_time: 30.0 * fs,
+        hop_direction: HopDirection::Velocity,
+        frustrated: FrustratedHops::Keep,
+        decoherence: DecoherenceScheme::EnergyBased { c: 0.1 },
+        energy_drift_limit: 1e-3,
+        min_overlap_determinant: 0.3,
+        exit_region: None,
+    };
+    let kt = 300.0 * 3.166811563e-6;
+    for seed in 0..2u64 {
+        let mut backend = MrsfBackend::new(spec.clone());
+        let masses = backend.info().masses;
+        let mut rng = rand_chacha::ChaCha20Rng::seed_from_u64(1000 + seed);
+        let mut v: Vec<f64> = masses.iter().map(|m| rng.sample::<f64, _>(StandardNormal) * (kt / m).sqrt()).collect();
+        let total: f64 = masses.iter().step_by(3).sum();
+        for k in 0..3 {
+            let p: f64 = (0..masses.len() / 3).map(|a| masses[3 * a] * v[3 * a + k]).sum();
+            (0..masses.len() / 3).for_each(|a| v[3 * a + k] -= p / total);
+        }
+        let t = std::time::Instant::now();
+        let mut traj = Trajectory::start(&mut backend, settings.clone(), q0.clone(), v, 1, rng).unwrap();
+        let e0 = traj.state.kinetic(traj.masses()) + traj.state.potential();
+        let mut hop = None;
+        while hop.is_none() && traj.state.time < settings.max_time - 1e-9 {
+            let h = traj.step().unwrap_or_else(|e| panic!("trajectory {seed}: {e}"));
+            hop = h.filter(|h| h.accepted && h.from == 1 && h.to == 0);
+        }
+        let Some(h) = hop else { panic!("trajectory {seed} still on S{} after 30 fs", traj.state.active) };
+        let x = ethylene_internals(&traj.state.q);
+        let de = traj.state.kinetic(traj.masses()) + traj.state.potential() - e0;
+        eprintln!(
+            "trajectory {seed}: S1→S0 at {:.1} fs ({:.0} s), S1 − S0 = {:.3} eV; C–C {:.3} Å, twist {:.1}°, pyramidalisation {:.1}° / {:.1}° \
+             (crossing: {:.3} Å, {:.1}°, {:.1}° / {:.1}°); total energy change {de:.1e} Eh",
+            h.time / fs, t.elapsed().as_secs_f64(), -h.gap * 27.211386, x[0], x[1], x[2], x[3], at_meci[0], at_meci[1], at_meci[2], at_meci[3]
+        );
+        assert!(-h.gap > 0.0 && -h.gap < 0.3 / 27.211386, "trajectory {seed}: S1 − S0 at the hop {:.3} eV", -h.gap * 27.211386);
+        assert!((h.kinetic_after - h.kinetic_before + h.gap).abs() < 1e-10, "trajectory {seed}: the hop does not conserve energy");
+        assert!(de.abs() < 2e-3, "trajectory {seed}: total energy changed by {de:e} Eh");
+        assert!((x[0] - at_meci[0]).abs() < 0.1, "trajectory {seed}: C–C {:.3} Å vs {:.3} Å", x[0], at_meci[0]);
+        assert!((x[1] - at_meci[1]).abs() < 10.0, "trajectory {seed}: twist {:.1}° vs {:.1}°", x[1], at_meci[1]);
+        // The crossing folds one carbon: compare the more and the less folded one.
+        let (folded, flat) = (x[2].max(x[3]), x[2].min(x[3]));
+        let (folded_x, flat_x) = (at_meci[2].max(at_meci[3]), at_meci[2].min(at_meci[3]));
+        assert!((folded - folded_x).abs() < 15.0 && (flat - flat_x).abs() < 15.0, "trajectory {seed}: pyramidalisation {x:?} vs {at_meci:?}");
+    }
 }
