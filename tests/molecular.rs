@@ -475,3 +475,26 @@ fn a_stalled_eigensolver_fails_that_trajectory_at_its_step() {
     assert_eq!(failed.rows.last().map(|row| row.step), Some(3));
     assert!(failed.rows.iter().all(|row| row.energies.iter().chain(&row.q).all(|x| x.is_finite())));
 }
+
+// Source: state tracking by overlaps (common practice of surface hopping
+// with a truncated set of states); the numbers are this run's own. Methylene
+// on S0, MRSF BH&HLYP/STO-3G (coarse grid), three tracked singlets, 10 fs:
+// at step 12 the highest tracked state (S2) meets an untracked state of
+// another symmetry, so its overlap between steps is exactly zero (|det| = 0).
+// The trajectory does not fail (S2 is empty and not active): the step is
+// recorded with a warning naming the state, and the run finishes with the
+// total energy conserved to the Verlet fluctuation (2e-4 Eh).
+#[test]
+fn an_empty_state_exchanged_with_an_untracked_one_is_passed_over() {
+    let dir = common::scratch("molecular", "intruder");
+    let ens = methylene_ensemble(&dir, 0, 10.0, 1);
+    let run = dir.join("run");
+    run_ok(&["-q", "run", ens.to_str().unwrap(), "-o", run.to_str().unwrap(), "--set", "model.functional=\"bhhlyp\"", "--set", "model.grid=\"coarse\""]);
+    let t = &common::read_all(&part(&run))[0];
+    assert!(matches!(t.status, flipswarm::dynamics::Status::Finished(_)), "{:?}", t.status);
+    assert_eq!(t.rows.len(), 21);
+    let w: Vec<&str> = t.warnings.iter().filter(|w| w.text.contains("exchanged with untracked states")).map(|w| w.text.as_str()).collect();
+    assert!(!w.is_empty() && w[0].contains("states [2]") && w[0].contains("at step 12"), "{:?}", t.warnings);
+    let swing = t.rows.iter().map(|r| (r.total - t.rows[0].total).abs()).fold(0.0, f64::max);
+    assert!(swing < 2e-4, "total energy moved by {swing:e} Eh");
+}

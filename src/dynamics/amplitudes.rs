@@ -46,36 +46,71 @@ pub enum OverlapError {
     NonFinite,
     /// The tracked states lost part of their space over the step: |det S|
     /// (the product of the overlap's singular values) fell below the floor,
-    /// so an untracked state crossed into the tracked set (or the step is
-    /// too long) and the couplings would be meaningless.
+    /// and a state that left is active or populated, so its couplings and
+    /// amplitudes would be meaningless.
     #[error(
         "state tracking lost: |det| of the overlap between steps is {determinant:.3} (floor {floor}); \
-         the least-kept state is {state} (norm {norm:.3} within the tracked states) — track more states or shorten the time step"
+         state {state} (active or populated) keeps norm {norm:.3} within the tracked states — track more states or shorten the time step"
     )]
     TrackingLost {
         /// |det S| of the raw overlap.
         determinant: f64,
         /// The configured floor.
         floor: f64,
-        /// The new state whose overlap column has the smallest norm.
+        /// The state that left (active or populated, else the least kept).
         state: usize,
-        /// That column norm.
+        /// The smaller of its row and column norms.
         norm: f64,
     },
 }
 
-/// |det S| and the state (column) that keeps least of its norm within the
-/// tracked space; checked against `dynamics.min_overlap_determinant`.
-pub fn check_tracking(s: &DMatrix<f64>, floor: f64) -> Result<(), OverlapError> {
+/// What [`check_tracking`] found when the tracked space changed.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Exchanged {
+    /// Unpopulated, inactive states exchanged with untracked ones.
+    pub states: Vec<usize>,
+    /// |det S| of the raw overlap.
+    pub determinant: f64,
+}
+
+impl Exchanged {
+    /// The overlap with the exchanged states taken as continuing into
+    /// their successors (S_jj = 1, no overlap with the others): they get no
+    /// coupling over this step, and the newcomer takes over their slot.
+    pub fn patch(&self, s: &DMatrix<f64>) -> DMatrix<f64> {
+        let mut p = s.clone();
+        for &j in &self.states {
+            p.row_mut(j).fill(0.0);
+            p.column_mut(j).fill(0.0);
+            p[(j, j)] = 1.0;
+        }
+        p
+    }
+}
+
+/// Whether the tracked states kept their space over a step. When |det S|
+/// falls below `floor`, the states that kept less than half their weight in
+/// the other step's tracked set (row or column norm² < ½) were exchanged
+/// with untracked states. That is a typed failure when it touches the active
+/// state or a state holding more than 1 % of the population; when it
+/// touches only empty states — typically the highest tracked state meeting
+/// the first untracked one, harmless for the dynamics — they are returned
+/// for [`Exchanged::patch`] and a warning. Checked against
+/// `dynamics.min_overlap_determinant`.
+pub fn check_tracking(s: &DMatrix<f64>, floor: f64, active: usize, populations: &[f64]) -> Result<Option<Exchanged>, OverlapError> {
     let determinant = s.determinant().abs();
     if determinant >= floor || !determinant.is_finite() {
-        return Ok(());
+        return Ok(None);
     }
-    let (state, norm) = (0..s.ncols())
-        .map(|j| (j, s.column(j).norm()))
-        .min_by(|a, b| a.1.total_cmp(&b.1))
-        .unwrap_or((0, 0.0));
-    Err(OverlapError::TrackingLost { determinant, floor, state, norm })
+    let kept = |j: usize| s.row(j).norm().min(s.column(j).norm());
+    let lost: Vec<usize> = (0..s.ncols()).filter(|&j| kept(j).powi(2) < 0.5).collect();
+    let least = (0..s.ncols()).min_by(|&a, &b| kept(a).total_cmp(&kept(b))).unwrap_or(0);
+    let matters = |j: &usize| *j == active || populations.get(*j).is_some_and(|p| *p > 0.01);
+    if lost.is_empty() || lost.iter().any(matters) {
+        let state = lost.iter().copied().find(matters).unwrap_or(least);
+        return Err(OverlapError::TrackingLost { determinant, floor, state, norm: kept(state) });
+    }
+    Ok(Some(Exchanged { states: lost, determinant }))
 }
 
 /// The coupling over one nuclear step, derived from the aligned overlaps.
@@ -323,28 +358,37 @@ mod tests {
     }
 
     /// Tracking check: a rotation (|det| = 1, any sign) passes; a state whose
-    /// column keeps 40 % of its norm gives |det| = 0.4 and names that state.
+    /// column keeps 40 % of its norm gives |det| = 0.4: a failure naming it
+    /// when it is active or populated; when it is empty it is returned and
+    /// the patched overlap gives it no coupling.
     /// Reference: det of a rotation is ±1, det scales linearly in a column
     /// (linear algebra, common practice).
     #[test]
     fn lost_tracking_is_detected_by_the_determinant() {
         let r = rotation3(0.3, -0.2, 0.7);
-        assert!(check_tracking(&r, 0.3).is_ok());
+        let pops = [1.0, 0.0, 0.0];
+        assert_eq!(check_tracking(&r, 0.3, 0, &pops), Ok(None));
         let mut improper = r.clone();
         improper.column_mut(0).neg_mut();
-        assert!(check_tracking(&improper, 0.3).is_ok());
-        let mut lost = r.clone();
-        lost.column_mut(1).scale_mut(0.4);
-        match check_tracking(&lost, 0.5) {
-            Err(OverlapError::TrackingLost { determinant, floor, state, norm }) => {
-                assert!((determinant - 0.4).abs() < 1e-12);
-                assert_eq!((floor, state), (0.5, 1));
-                assert!((norm - 0.4).abs() < 1e-12);
+        assert_eq!(check_tracking(&improper, 0.3, 0, &pops), Ok(None));
+        let mut lost = DMatrix::identity(3, 3);
+        lost[(1, 1)] = 0.4;
+        for (active, p) in [(1, [0.0, 1.0, 0.0]), (0, [0.9, 0.1, 0.0])] {
+            match check_tracking(&lost, 0.5, active, &p) {
+                Err(OverlapError::TrackingLost { determinant, floor, state, norm }) => {
+                    assert!((determinant - 0.4).abs() < 1e-12);
+                    assert_eq!((floor, state), (0.5, 1));
+                    assert!((norm - 0.4).abs() < 1e-12);
+                }
+                other => panic!("{other:?}"),
             }
-            other => panic!("{other:?}"),
         }
-        assert!(check_tracking(&lost, 0.3).is_ok());
-        assert!(check_tracking(&lost, 0.0).is_ok());
+        let swapped = check_tracking(&lost, 0.5, 0, &pops).unwrap().expect("exchanged states");
+        assert_eq!(swapped.states, vec![1]);
+        assert!((swapped.determinant - 0.4).abs() < 1e-12);
+        assert_eq!(swapped.patch(&lost), DMatrix::identity(3, 3));
+        assert_eq!(check_tracking(&lost, 0.3, 1, &pops), Ok(None));
+        assert_eq!(check_tracking(&lost, 0.0, 1, &pops), Ok(None));
     }
 
     /// The two-state closed form agrees with the general path (fast vs reference).

@@ -311,11 +311,20 @@ impl<'b> Trajectory<'b> {
         self.new_energies.extend_from_slice(&res.energies);
         let new_energies = &self.new_energies;
 
+        let mut tracking_warning = None;
         let coupling = match (&res.overlaps, n > 1) {
             (Some(raw), true) => {
-                check_tracking(raw, self.settings.min_overlap_determinant)
+                let populations: Vec<f64> = s.amplitudes.iter().map(|c| c.norm_sqr()).collect();
+                let exchanged = check_tracking(raw, self.settings.min_overlap_determinant, s.active, &populations)
                     .map_err(|e| BackendError::Failed(format!("{e}, at step {}", s.step + 1)))?;
-                let (aligned, mut phases) = align_phases(raw, &s.phases);
+                let patched = exchanged.as_ref().map(|x| x.patch(raw));
+                if let Some(x) = exchanged {
+                    tracking_warning = Some(format!(
+                        "states {:?} (empty, not active) exchanged with untracked states (|det| of the overlap {:.3}); they get no coupling over this step",
+                        x.states, x.determinant
+                    ));
+                }
+                let (aligned, mut phases) = align_phases(patched.as_ref().unwrap_or(raw), &s.phases);
                 let c = StepCoupling::from_overlaps(&aligned, &mut phases, dt, self.settings.substeps)
                     .map_err(|e| BackendError::Failed(e.to_string()))?;
                 s.phases = phases;
@@ -324,6 +333,9 @@ impl<'b> Trajectory<'b> {
             _ => StepCoupling::none(n),
         };
         s.diagnostics.clone_from(&res.diagnostics);
+        if let Some(w) = tracking_warning {
+            s.diagnostics.warnings.push(format!("{w}, at step {}", s.step + 1));
+        }
         std::mem::swap(&mut s.q, &mut self.q_new);
         std::mem::swap(&mut s.v, &mut self.v_new);
         s.gradient.copy_from_slice(gradient);
