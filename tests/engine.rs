@@ -164,3 +164,71 @@ fn three_state_coupling_moves_population_only_between_coupled_states() {
     assert!(c[0].norm_sqr() < 1e-28);
     assert!((c[2].norm_sqr() - (40.0 * theta).sin().powi(2)).abs() < 1e-12);
 }
+
+/// Positions and velocities of one coordinate at every step, and the hops.
+struct Spectator {
+    k: usize,
+    qv: Vec<(f64, f64)>,
+    accepted_hops: usize,
+}
+impl Observer for Spectator {
+    fn observe(&mut self, r: &StepRecord) -> Result<Flow, String> {
+        if r.kind != RecordKind::End {
+            self.qv.push((r.state.q[self.k], r.state.v[self.k]));
+            if let Some(h) = r.hop.filter(|h| h.accepted) {
+                assert!((h.kinetic_after - h.kinetic_before + h.gap).abs() < 1e-12, "the hop does not conserve energy: {h:?}");
+                self.accepted_hops += 1;
+            }
+        }
+        Ok(Flow::Continue)
+    }
+}
+
+/// The momentum adjustment at a hop acts along the chosen direction only
+/// (FSSH, J. Chem. Phys. 93, 1061 (1990); the gradient-difference choice is
+/// common practice). A two-state LVC model of our own with three modes:
+/// mode 0 tunes the gap, mode 1 couples the states, mode 2 is a spectator
+/// (no state-dependent term), so ∇E₁ − ∇E₀ has no mode-2 component. With
+/// gradient-difference adjustment the spectator's path is the same as in a
+/// run whose states are uncoupled and far apart (no hop can happen) to 1e-12; with uniform
+/// velocity rescaling it is not (the test can tell the two apart). Every
+/// accepted hop conserves the total energy to 1e-12 Eh.
+#[test]
+fn gradient_difference_hops_leave_a_spectator_mode_alone() {
+    use flipswarm::electronic::models::Lvc;
+    let text = "frequencies_ev = [0.10, 0.15, 0.12]\nvertical_ev = [0.0, 0.25]\n\
+        [[gradient]]\nstate = 1\nmode = 0\nvalue_ev = -0.15\n[[coupling]]\nstates = [0, 1]\nmode = 1\nvalue_ev = 0.06\n";
+    // No coupling and states 100 eV apart: no hop, not even a trivial crossing.
+    let uncoupled = text.replace("value_ev = 0.06", "value_ev = 0.0").replace("[0.0, 0.25]", "[0.0, 100.0]");
+    let q0 = vec![0.0, 0.0, 9.0];
+    let v0 = vec![0.004, 0.002, -0.003];
+    let dt = 2.0;
+    let run = |model: &str, direction: HopDirection, seed: u64| {
+        let mut backend = DiabaticBackend::new(Lvc::from_toml(model, "test").unwrap());
+        let mut s = settings(dt, 3000.0);
+        s.hop_direction = direction;
+        s.substeps = 10;
+        let mut t = Trajectory::start(&mut backend, s, q0.clone(), v0.clone(), 1, ChaCha20Rng::seed_from_u64(seed)).unwrap();
+        let mut obs = Spectator { k: 2, qv: vec![], accepted_hops: 0 };
+        t.run(&mut obs).unwrap();
+        obs
+    };
+    let reference = run(&uncoupled, HopDirection::GradientDifference, 1);
+    assert_eq!(reference.accepted_hops, 0);
+    let mut tried = 0;
+    for seed in 1..6 {
+        let gd = run(text, HopDirection::GradientDifference, seed);
+        if gd.accepted_hops == 0 {
+            continue;
+        }
+        tried += 1;
+        let worst = gd.qv.iter().zip(&reference.qv).map(|(a, b)| (a.0 - b.0).abs().max((a.1 - b.1).abs())).fold(0.0, f64::max);
+        assert!(worst < 1e-12, "seed {seed}: {} hops moved the spectator by {worst:e}", gd.accepted_hops);
+        let vr = run(text, HopDirection::Velocity, seed);
+        if vr.accepted_hops > 0 {
+            let moved = vr.qv.iter().zip(&reference.qv).map(|(a, b)| (a.1 - b.1).abs()).fold(0.0, f64::max);
+            assert!(moved > 1e-8, "seed {seed}: velocity rescaling left the spectator alone");
+        }
+    }
+    assert!(tried >= 3, "only {tried} of 5 seeds hopped");
+}

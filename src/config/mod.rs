@@ -89,7 +89,7 @@ pub const SCHEMA: &[KeyDoc] = &[
     KeyDoc { path: "dynamics.duration_fs", meaning: "simulated time, fs (or duration_au)", default: "required (one of the two)" },
     KeyDoc { path: "dynamics.duration_au", meaning: "simulated time, atomic units", default: "required (one of the two)" },
     KeyDoc { path: "dynamics.substeps", meaning: "electronic substeps per nuclear step", default: "20" },
-    KeyDoc { path: "dynamics.hop_direction", meaning: "velocity adjustment at hops: coupling or velocity", default: "coupling" },
+    KeyDoc { path: "dynamics.hop_direction", meaning: "velocity adjustment at hops: coupling (along the coupling vector), velocity (uniform rescaling) or gradient-difference (along ∇E_to − ∇E_from)", default: "coupling" },
     KeyDoc { path: "dynamics.frustrated", meaning: "frustrated hops: keep or reflect", default: "keep" },
     KeyDoc { path: "dynamics.decoherence", meaning: "none or energy-based", default: "energy-based" },
     KeyDoc { path: "dynamics.decoherence_constant_hartree", meaning: "C of the energy-based correction", default: "0.1" },
@@ -580,8 +580,9 @@ fn build_settings(r: &Reader, model: &ModelSpec, sampling: &Sampling) -> Result<
     if !(1..=100_000).contains(&substeps) {
         return Err(r.error("dynamics.substeps", format!("must be between 1 and 100 000, found {substeps}")));
     }
-    let hop_direction = match r.choice("dynamics.hop_direction", &["coupling", "velocity"])?.as_deref() {
+    let hop_direction = match r.choice("dynamics.hop_direction", &["coupling", "velocity", "gradient-difference"])?.as_deref() {
         Some("velocity") => HopDirection::Velocity,
+        Some("gradient-difference") => HopDirection::GradientDifference,
         _ => HopDirection::Coupling,
     };
     let frustrated = match r.choice("dynamics.frustrated", &["keep", "reflect"])?.as_deref() {

@@ -18,6 +18,9 @@ pub enum HopDirection {
     Coupling,
     /// Uniform rescaling of the velocity.
     Velocity,
+    /// Along the difference of the two states' gradients, ∇E_to − ∇E_from
+    /// (one direction of the branching plane; needs no coupling vectors).
+    GradientDifference,
 }
 
 /// What to do when a hop is frustrated.

@@ -365,19 +365,34 @@ impl<'b> Trajectory<'b> {
         let from = s.active;
         let gap = s.energies[target] - s.energies[from];
         let kinetic_before = kinetic_energy(&s.v, &self.masses);
+        let missing = |what: &str| BackendError::Failed(format!("the back end did not return the {what} requested for a hop {from} → {target}, at step {}", s.step));
+        // The target's gradient at this geometry, when the direction needed it.
+        let mut target_gradient = None;
         let direction: Vec<f64> = match self.settings.hop_direction {
             HopDirection::Velocity => s.v.iter().zip(&self.masses).map(|(v, m)| m * v).collect(),
             HopDirection::Coupling => {
                 let req = Request { couplings: true, ..Request::default() };
                 let res = self.backend.compute(&s.q, &req).map_err(|e| at_step(e, s.step))?;
-                res.couplings.as_ref().expect("requested").get(from, target)
+                res.couplings.as_ref().ok_or_else(|| missing("coupling vectors"))?.get(from, target)
+            }
+            HopDirection::GradientDifference => {
+                let res = self.backend.compute(&s.q, &Request::gradient_of(target)).map_err(|e| at_step(e, s.step))?;
+                let g = res.gradient(target).ok_or_else(|| missing("target gradient"))?.to_vec();
+                let d = g.iter().zip(&s.gradient).map(|(t, f)| t - f).collect();
+                target_gradient = Some(g);
+                d
             }
         };
         let accepted = adjust_velocity(&mut s.v, &self.masses, &direction, gap);
         if accepted {
             s.active = target;
-            let res = self.backend.compute(&s.q, &Request::gradient_of(target)).map_err(|e| at_step(e, s.step))?;
-            s.gradient = res.gradient(target).expect("requested").to_vec();
+            s.gradient = match target_gradient {
+                Some(g) => g,
+                None => {
+                    let res = self.backend.compute(&s.q, &Request::gradient_of(target)).map_err(|e| at_step(e, s.step))?;
+                    res.gradient(target).ok_or_else(|| missing("target gradient"))?.to_vec()
+                }
+            };
         } else if self.settings.frustrated == FrustratedHops::Reflect {
             reflect_velocity(&mut s.v, &self.masses, &direction);
         }
