@@ -188,6 +188,13 @@ impl Backend for Poison {
         if step_call {
             self.steps += 1;
         }
+        if self.what == "no-couplings" {
+            self.results = self.inner.compute(q, request)?.clone();
+            if request.couplings {
+                self.results.couplings = None;
+            }
+            return Ok(&self.results);
+        }
         let hit = if self.at == 0 { std::mem::replace(&mut self.first, false) } else { step_call && self.steps == self.at };
         self.results = self.inner.compute(q, request)?.clone();
         if hit {
@@ -263,6 +270,32 @@ fn non_finite_numbers_fail_the_trajectory_with_its_step() {
         }
         assert_eq!(data.rows.last().map(|r| r.step), if step > 0 { Some(step) } else { None }, "{what}");
     }
+}
+
+/// A back end that answers a hop attempt without the coupling vectors it
+/// was asked for: that trajectory fails at the hop's step with a message
+/// naming the hop (formerly a panic of the engine); the others finish.
+#[test]
+fn missing_coupling_vectors_at_a_hop_fail_the_trajectory() {
+    let _serial = serial();
+    let s = Scratch::new("nocouplings", 3, 100.0, 10);
+    let cfg = s.cfg();
+    let model = cfg.model.clone();
+    let factory = move |i: usize| -> Box<dyn Backend> {
+        let inner = swarm::make_backend(&model);
+        if i == 1 {
+            Box::new(Poison { inner, steps: 0, first: true, at: 0, what: "no-couplings", results: Results::default() })
+        } else {
+            inner
+        }
+    };
+    let dir = s.0.join("run");
+    let report = run_in_process(&cfg, &dir, &factory);
+    assert_eq!((report.finished, report.failed), (2, 1));
+    let data = PartReader::open(&part(&dir)).unwrap().read(1).unwrap();
+    let Status::Failed { step, reason } = &data.status else { panic!("status {:?}", data.status) };
+    assert!(reason.contains("did not return the coupling vectors requested for a hop") && reason.contains(&format!("at step {step}")), "{reason}");
+    assert!(data.hops.is_empty() && *step > 0, "{reason}");
 }
 
 fn spawn_run(args: &[&str], inject: Option<u64>) -> (Option<i32>, String) {
