@@ -235,7 +235,26 @@ impl MrsfBackend {
             Some(prev) => guess_from(&prev.vectors, &spec.calculation),
             None => Guess::AtomicSuperposition,
         };
-        let (basis, scf, excited, [t_scf, t_response]) = Self::solve_timed(&spec, q, &guess)?;
+        // A warm start that does not converge (the previous reference can
+        // stop being a solution when two triplet solutions meet) is retried
+        // once from the atomic guess, with a warning: the state overlaps and
+        // the character check below say whether the states stayed continuous,
+        // and the engine's energy-drift limit catches a jump.
+        let mut restarted = None;
+        let solved = match Self::solve_timed(&spec, q, &guess) {
+            Err(BackendError::Failed(why)) if self.previous.is_some() && why.starts_with("SCF") => {
+                let first = why.lines().next().unwrap_or("").trim_end_matches(':').trim_end_matches("; last iterations").to_string();
+                match Self::solve_timed(&spec, q, &Guess::AtomicSuperposition) {
+                    Ok(x) => {
+                        restarted = Some(format!("the reference SCF started from the previous orbitals failed ({first}); converged from the atomic guess instead"));
+                        Ok(x)
+                    }
+                    Err(again) => Err(BackendError::Failed(format!("{why}\n(retried from the atomic guess: {again})"))),
+                }
+            }
+            other => other,
+        };
+        let (basis, scf, excited, [t_scf, t_response]) = solved?;
         self.timings.scf += t_scf;
         self.timings.response += t_response;
         self.timings.geometries += 1;
@@ -248,7 +267,7 @@ impl MrsfBackend {
             iterations: Some(scf_iterations as u32),
             response_iterations: excited.solver.first().map(|s| s.iterations as u32),
             spin_squared: Some(excited.states.iter().take(n).map(|s| s.s_squared).collect()),
-            warnings: Vec::new(),
+            warnings: restarted.into_iter().collect(),
         };
         if let Some(prev) = &self.previous {
             let nc = vectors.n_core;
