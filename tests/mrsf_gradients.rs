@@ -428,3 +428,28 @@ fn analytic_and_difference_xc_kernels_agree() {
         assert!(d < 1e-8, "{d:e}");
     }
 }
+
+// Source: finite-difference check (common practice) in 6-31G* with the
+// BH&HLYP ROKS reference for two more molecules (water, formaldehyde), so
+// that three molecules are checked with polarisation functions (methylene
+// with ROHF above).
+#[test]
+fn roks_bhhlyp_631gs_water_and_formaldehyde_gradients_match_finite_differences() {
+    check_fd("h2o", "6-31G*", bhhlyp(), &["S0", "S1", "T1"], 2, 1, 1e-6);
+    check_fd("ch2o", "6-31G*", bhhlyp(), &["S0", "S1", "S2", "T1"], 3, 1, 1e-6);
+}
+
+// Source: finite-difference check (common practice) near an S1/S0
+// intersection: twisted-pyramidalised ethylene, BH&HLYP/6-31G*, where S1 − S0
+// is 0.29 eV (asserted below 0.4 eV) and both states change
+// fast; S0, S1 and T1 gradients agree with central differences to 1e-6.
+#[test]
+fn gradients_near_the_ethylene_s1_s0_intersection_match_finite_differences() {
+    let (calc, pos) = setup("c2h4-tp", "6-31G*", bhhlyp());
+    let (_, _, x) = states(&calc, &pos, 2, 1);
+    let gap = x.states[index_of(&x, "S1")].energy - x.states[index_of(&x, "S0")].energy;
+    eprintln!("S1 − S0 = {:.3} eV", gap * 27.211386);
+    assert!(gap > 0.0 && gap < 0.4 / 27.211386, "not near the intersection: {gap} Eh");
+    check_fd("c2h4-tp", "6-31G*", bhhlyp(), &["S0", "S1", "T1"], 2, 1, 1e-6);
+}
+

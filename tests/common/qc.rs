@@ -49,6 +49,17 @@ pub fn test_atoms(name: &str) -> Vec<(u64, [f64; 3])> {
             (1, [0.0, 1.77, -2.08]),
             (1, [0.03, -1.76, -2.1]),
         ],
+        // Twisted-pyramidalised ethylene near its S1/S0 crossing: the start
+        // of the crossing search in tests/intersection.rs with the second
+        // CH2 folded 14° further (S1 − S0 = 0.29 eV with BH&HLYP/6-31G*).
+        "c2h4-tp" => vec![
+            (6, [0.0, 0.0, -1.322808]),
+            (6, [0.0, 0.0, 1.322808]),
+            (1, [0.0, 1.738797, -2.409329]),
+            (1, [0.0, -1.738797, -2.409329]),
+            (1, [1.738797, 1.352757, 1.777335]),
+            (1, [-1.738797, 1.352757, 1.777335]),
+        ],
         other => panic!("unknown molecule {other}"),
     }
 }
