@@ -453,3 +453,15 @@ fn gradients_near_the_ethylene_s1_s0_intersection_match_finite_differences() {
     check_fd("c2h4-tp", "6-31G*", bhhlyp(), &["S0", "S1", "T1"], 2, 1, 1e-6);
 }
 
+
+// Source: finite-difference check (common practice) with a hybrid LDA
+// functional (half exact exchange, Slater exchange, VWN correlation through
+// libxc), the LDA branch of the kernel and XC gradient terms.
+#[test]
+fn roks_hybrid_lda_methylene_mrsf_gradients_match_finite_differences() {
+    let lda = Potential::KohnSham {
+        functional: "0.5*HF+0.5*LDA_X+LDA_C_VWN".into(),
+        grid: flipswarm::electronic::qc::dft::grid::GridSpec::level("coarse").unwrap(),
+    };
+    check_fd("ch2", "6-31G", lda, &["S0", "S1", "T1"], 2, 1, 1e-6);
+}

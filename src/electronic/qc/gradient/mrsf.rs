@@ -156,12 +156,15 @@
 //! Other departures from the published scheme: none intended.
 //!
 //! # Scope and checks
-//! * Tested (`tests/mrsf_gradients.rs`): ROHF and ROKS BH&HLYP (GGA)
-//!   references, S0, S1, S2 and T1 of CH2, H2O, H2CO with 3-21G, 6-31G and
-//!   6-31G*, against central differences (1e−6 Eh/bohr at h = 1e−3 bohr;
-//!   ~1e−8 after Richardson extrapolation), translation and rotation.
+//! * Tested (`tests/mrsf_gradients.rs`): ROHF, ROKS BH&HLYP (GGA) and a
+//!   hybrid LDA reference, S0, S1, S2 and T1 of CH2, H2O, H2CO with 3-21G,
+//!   6-31G and 6-31G* and of twisted-pyramidalised ethylene 0.29 eV from its
+//!   S1/S0 crossing (6-31G*), against central differences (1e−6 Eh/bohr at
+//!   h = 1e−3 bohr, measured ≤ 5.5e−7; ~1e−8 after Richardson
+//!   extrapolation), translation and rotation.
 //! * Not tested: Ms = −1 references (handled by exchanging the spin labels,
-//!   as the response does), LDA functionals, [`crate::electronic::qc::response::Mrsf::with_singlet_cv`]`(false)`
+//!   as the response does; the SCF builds only Ms = +1 references, so no
+//!   caller reaches it), [`crate::electronic::qc::response::Mrsf::with_singlet_cv`]`(false)`
 //!   states and κ ≠ c_x (all go through the same code paths).
 //! * Cost: one pass over the bra-derivative ERIs for the reference and all
 //!   states ([`integrals::eri_gradient_pairs`]); Z-vector iterations cost
