@@ -221,3 +221,55 @@ fn job_array_with_time_limits_matches_a_local_run() {
     }
     assert_eq!(PartReader::open(&run.join("merged.h5")).unwrap().writer_state(), WriterState::Closed);
 }
+
+/// The task script's exit-code handling when the pre-timeout signal and the
+/// program's own exit coincide: the program (a stand-in script) signals the
+/// task shell with USR1 and exits with the "stopped, resumable" code 3 at
+/// once, so the shell's `wait` is interrupted by the trap just as the
+/// program ends. The task must still see code 3, requeue itself and report
+/// it (before the fix it reported 138, the signal, and did not requeue).
+/// Source: bash's documented `wait` semantics (a trapped signal makes `wait`
+/// return a status above 128); no Slurm needed (fake `scontrol`, `sleep`).
+#[test]
+fn task_script_keeps_the_exit_code_when_a_signal_coincides_with_the_exit() {
+    let d = scratch("race");
+    let ens = ensemble(&d, 8, 1.0);
+    let (c, _, err) = flipswarm(&d, &["submit", ens.to_str().unwrap(), "-o", "run", "--tasks", "2", "--dry-run"], &[]);
+    assert_eq!(c, 0, "{err}");
+    let array = std::fs::read_to_string(d.join("run/slurm/array.sbatch")).unwrap();
+    let bin = d.join("bin");
+    std::fs::create_dir_all(&bin).unwrap();
+    let write_exe = |name: &str, text: &str| {
+        use std::os::unix::fs::PermissionsExt;
+        let p = bin.join(name);
+        std::fs::write(&p, text).unwrap();
+        std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o755)).unwrap();
+        p
+    };
+    // Like the real program, the stand-in takes USR1 as "stop gracefully".
+    let fake = write_exe("program", "#!/bin/bash\ntrap '' USR1\nkill -USR1 $PPID\nexit 3\n");
+    write_exe("scontrol", &format!("#!/bin/bash\necho \"$@\" >> {}\n", d.join("scontrol.log").display()));
+    write_exe("sleep", "#!/bin/bash\nexit 0\n");
+    let script: String = array
+        .lines()
+        .map(|l| if l.starts_with("program=") { format!("program='{}'", fake.display()) } else { l.to_string() })
+        .collect::<Vec<_>>()
+        .join("\n");
+    let path = format!("{}:{}", bin.display(), std::env::var("PATH").unwrap_or_default());
+    for attempt in 0..20 {
+        let out = Command::new("bash")
+            .arg("-c")
+            .arg(&script)
+            .env("PATH", &path)
+            .env("SLURM_ARRAY_TASK_ID", "1")
+            .env("SLURM_ARRAY_JOB_ID", "77")
+            .env("SLURM_CPUS_PER_TASK", "1")
+            .output()
+            .unwrap();
+        let text = String::from_utf8_lossy(&out.stdout);
+        assert_eq!(out.status.code(), Some(3), "attempt {attempt}: {text}");
+        assert!(text.contains("requeueing it") && text.contains("ended with code 3"), "attempt {attempt}: {text}");
+    }
+    let requeued = std::fs::read_to_string(d.join("scontrol.log")).unwrap();
+    assert_eq!(requeued.lines().filter(|l| *l == "requeue 77_1").count(), 20, "{requeued}");
+}

@@ -149,7 +149,23 @@ code=0
 while true; do
     wait "$child"
     code=$?
-    kill -0 "$child" 2>/dev/null || break
+    # A trapped signal makes `wait` return early (128 + USR1 or TERM) while
+    # the program still runs: wait again.
+    kill -0 "$child" 2>/dev/null && continue
+    if [ "$code" -eq 138 ] || [ "$code" -eq 143 ]; then
+        # The program ended just as the signal came: collect its own code.
+        # bash can lose it in this race; then requeue and let `resume` decide
+        # (a finished slice ends at once, a stopped one continues).
+        wait "$child" 2>/dev/null
+        again=$?
+        if [ "$again" -ge 0 ] && [ "$again" -lt 127 ]; then
+            code=$again
+        else
+            echo "flipswarm: task $task: exit code lost in a signal race; treating it as stopped"
+            code=3
+        fi
+    fi
+    break
 done
 if [ "$code" -eq 3 ]; then
     echo "flipswarm: task $task stopped before its time limit; requeueing it"
