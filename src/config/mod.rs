@@ -94,7 +94,7 @@ pub const SCHEMA: &[KeyDoc] = &[
     KeyDoc { path: "dynamics.decoherence", meaning: "none or energy-based", default: "energy-based" },
     KeyDoc { path: "dynamics.decoherence_constant_hartree", meaning: "C of the energy-based correction", default: "0.1" },
     KeyDoc { path: "dynamics.max_energy_drift_ev", meaning: "total-energy change that fails a trajectory, eV", default: "0.05" },
-    KeyDoc { path: "dynamics.min_overlap_determinant", meaning: "|det| of the overlap between consecutive steps' tracked states below which a trajectory fails (state tracking lost); 0 switches the check off", default: "0.3" },
+    KeyDoc { path: "dynamics.min_overlap_determinant", meaning: "|det| of the overlap between consecutive steps' tracked states below which a state has left the tracked set: the trajectory fails if it is the active or a populated one (state tracking lost), an empty one is passed over with a warning; 0 switches the check off", default: "0.3" },
     KeyDoc { path: "dynamics.exit_region_bohr", meaning: "[low, high]: 1D trajectories stop once outside, moving away", default: "none" },
     KeyDoc { path: "output.record_every_steps", meaning: "write one row of positions, energies, amplitudes every this many steps (hops are always written)", default: "1" },
     KeyDoc { path: "output.checkpoint_every_steps", meaning: "checkpoint each trajectory every this many steps (0: by wall-clock time only)", default: "0" },

@@ -50,7 +50,8 @@ pub enum OverlapError {
     /// amplitudes would be meaningless.
     #[error(
         "state tracking lost: |det| of the overlap between steps is {determinant:.3} (floor {floor}); \
-         state {state} (active or populated) keeps norm {norm:.3} within the tracked states — track more states or shorten the time step"
+         state {state} keeps only {norm:.3} of its norm within the tracked states (it is active or populated, or no single state left) — \
+         track more states or shorten the time step"
     )]
     TrackingLost {
         /// |det S| of the raw overlap.

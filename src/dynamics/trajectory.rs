@@ -36,7 +36,9 @@ pub struct Settings {
     /// A total-energy change beyond this (hartree) fails the trajectory.
     pub energy_drift_limit: f64,
     /// |det| of the overlap between consecutive steps' states below this
-    /// fails the trajectory (state tracking lost); 0 disables the check.
+    /// means a state left the tracked set: the trajectory fails if it is the
+    /// active or a populated state, else the step is passed over with a
+    /// warning ([`check_tracking`]); 0 disables the check.
     pub min_overlap_determinant: f64,
     /// For one-dimensional models: stop once the coordinate is outside
     /// [min, max] and moving away.
