@@ -773,3 +773,33 @@ fn diagnostics_round_trip_truncate_and_prefix() {
     assert_eq!(bits(&prefix.diagnostics), bits(&d[..12]));
     assert_eq!(prefix.warnings, wr[..1].to_vec());
 }
+
+/// A part file open for writing in this process is not inherited by a
+/// program this process starts (its descriptor is close-on-exec), so the
+/// child cannot hold the writer's flock(2) lock after the writer closes.
+/// Source: POSIX `FD_CLOEXEC` semantics; the child lists its own open files
+/// through /proc/self/fd.
+#[test]
+fn part_files_open_for_writing_are_not_inherited_by_children() {
+    let _files = files();
+    let dir = scratch("cloexec");
+    let path = dir.join("part.h5");
+    let w = PartWriter::create(&path, &meta((0, 1), vec![0])).unwrap();
+    let listing = |p: &Path| {
+        let out = Command::new("sh").arg("-c").arg("for f in /proc/self/fd/*; do readlink \"$f\"; done").output().unwrap();
+        let text = String::from_utf8_lossy(&out.stdout).to_string();
+        let target = p.canonicalize().unwrap();
+        text.lines().any(|l| Path::new(l) == target)
+    };
+    assert!(!listing(&path), "a child inherited the writer's descriptor");
+    drop(w);
+    let (w, _) = PartWriter::open_existing(&path).unwrap();
+    assert!(!listing(&path), "a child inherited the reopened writer's descriptor");
+    drop(w);
+    // The check itself can see an inherited file: one opened without the flag.
+    let plain = std::fs::File::open(&path).unwrap();
+    let fd = std::os::fd::AsRawFd::as_raw_fd(&plain);
+    // SAFETY: clears close-on-exec on our own open descriptor.
+    unsafe { libc::fcntl(fd, libc::F_SETFD, 0) };
+    assert!(listing(&path), "the listing cannot see inherited descriptors");
+}

@@ -145,6 +145,29 @@ const CHUNK_BYTES: usize = 256 * 1024;
 /// Trajectories whose datasets a writer keeps open at most.
 const MAX_OPEN_TRAJECTORIES: usize = 256;
 
+/// Marks the descriptors this process holds on `path` close-on-exec. HDF5
+/// opens files without `O_CLOEXEC` and a writer locks its file with
+/// flock(2): a program started by this process (a library user's, or a
+/// test's) would otherwise inherit the descriptor and keep the file locked
+/// until it exits. Best effort: without /proc nothing happens.
+pub fn close_on_exec(path: &Path) {
+    let Ok(target) = std::fs::canonicalize(path) else { return };
+    let Ok(entries) = std::fs::read_dir("/proc/self/fd") else { return };
+    for entry in entries.flatten() {
+        let Ok(fd) = entry.file_name().to_string_lossy().parse::<i32>() else { continue };
+        if std::fs::read_link(entry.path()).is_ok_and(|p| p == target) {
+            // SAFETY: F_GETFD/F_SETFD on a descriptor number only change its
+            // close-on-exec flag; an fd closed meanwhile makes them fail harmlessly.
+            unsafe {
+                let flags = libc::fcntl(fd, libc::F_GETFD);
+                if flags >= 0 {
+                    libc::fcntl(fd, libc::F_SETFD, flags | libc::FD_CLOEXEC);
+                }
+            }
+        }
+    }
+}
+
 /// Names of the writer states.
 const OPEN: &str = "open";
 const CLOSED: &str = "closed";
@@ -832,6 +855,7 @@ impl PartWriter {
             .with_fapl(|p| p.libver_v18())
             .create_excl(path)
             .map_err(|e| if path.exists() { EnsembleError::Exists { file: path.to_path_buf() } } else { cx.h5("/", "creating the file")(e) })?;
+        close_on_exec(path);
         write_meta(cx, &file, meta)?;
         let writer = PartWriter { path: path.to_path_buf(), file, meta: meta.clone(), fault: FaultInjector::from_env(), open: Default::default() };
         writer.file.flush().map_err(cx.h5("/", "flushing"))?;
@@ -846,6 +870,7 @@ impl PartWriter {
             return Err(cx.input("/", "no such file"));
         }
         let file = File::open_rw(path).map_err(cx.h5("/", "opening for writing (is another process writing it?)"))?;
+        close_on_exec(path);
         let meta = read_meta(cx, &file)?;
         list_groups(cx, &file)?;
         put_str(cx, &file, "/", "writer_state", OPEN)?;

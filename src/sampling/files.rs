@@ -256,6 +256,7 @@ impl InitialConditions {
         let _ = std::fs::remove_file(&tmp);
         {
             let f = hdf5::File::create(&tmp).map_err(h5err(path, "cannot create"))?;
+            crate::ensemble::h5::close_on_exec(&tmp);
             let s = |v: &str| VarLenUnicode::from_str(v).map_err(|e| FileError::Content { path: path.into(), message: e.to_string() });
             let root_str = |name: &str, v: &str| -> Result<(), FileError> {
                 f.new_attr::<VarLenUnicode>().create(name).map_err(h5err(path, name))?.write_scalar(&s(v)?).map_err(h5err(path, name))
