@@ -219,6 +219,22 @@ fn slices_merge_into_the_unsliced_run() {
     let out = Command::new(BIN).args(["merge", two.to_str().unwrap(), "-o", merged.to_str().unwrap()]).output().unwrap();
     assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
     assert_eq!(all_rows(&merged), all_rows(&one.join("part-0000-of-0001.h5")));
+    // With the second slice's part left out, a merge says what is missing
+    // (a warning; with --require-complete a refusal that writes nothing).
+    let half = dir.join("half.h5");
+    let p0 = two.join("part-0000-of-0002.h5");
+    let out = Command::new(BIN).args(["merge", p0.to_str().unwrap(), "-o", half.to_str().unwrap()]).output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(0), "{err}");
+    assert!(err.contains("warning: the run is incomplete") && err.contains("slice(s) [1] of 2 have no part file"), "{err}");
+    let strict = dir.join("strict.h5");
+    let out = Command::new(BIN).args(["merge", "--require-complete", p0.to_str().unwrap(), "-o", strict.to_str().unwrap()]).output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(4), "{err}");
+    assert!(err.contains("error: the run is incomplete") && err.contains("nothing written"), "{err}");
+    assert!(!strict.exists());
+    let out = Command::new(BIN).args(["merge", "--require-complete", two.to_str().unwrap(), "-o", strict.to_str().unwrap()]).output().unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
     let _ = std::fs::remove_dir_all(&dir);
 }
 

@@ -168,6 +168,8 @@ fn job_array_with_time_limits_matches_a_local_run() {
     let run = d.join("cluster");
     let deadline = Instant::now() + Duration::from_secs(900);
     let mut signalled: Vec<String> = Vec::new();
+    // When each requeued task was first seen waiting for its begin time.
+    let mut waiting: std::collections::HashMap<String, Instant> = std::collections::HashMap::new();
     loop {
         let q = Command::new("squeue").args(["-h", "-r", "-o", "%i %T %r %M"]).env("SLURM_CONF", conf).output().unwrap();
         let q = String::from_utf8_lossy(&q.stdout).to_string();
@@ -175,8 +177,17 @@ fn job_array_with_time_limits_matches_a_local_run() {
             let f: Vec<&str> = line.split_whitespace().collect();
             // A requeued task waits for the scheduler's requeue delay (about
             // two minutes); the test moves its start time to now to stay short.
+            // Not at once: a task started within milliseconds of its requeue
+            // can be killed by Slurm ("job credential revoked") while the
+            // old instance is still being cleaned up.
             if f.len() >= 3 && f[1] == "PENDING" && f[2] == "BeginTime" {
-                let _ = Command::new("scontrol").args(["update", &format!("JobId={}", f[0]), "StartTime=now"]).env("SLURM_CONF", conf).output();
+                let since = *waiting.entry(f[0].to_string()).or_insert_with(Instant::now);
+                if since.elapsed() >= Duration::from_secs(3) {
+                    let _ = Command::new("scontrol").args(["update", &format!("JobId={}", f[0]), "StartTime=now"]).env("SLURM_CONF", conf).output();
+                    waiting.remove(f[0]);
+                }
+            } else if f.len() >= 2 && f[1] == "RUNNING" {
+                waiting.remove(f[0]);
             }
             // Slurm checks signal times on a coarse interval, so on a fast
             // machine a slice may end before its pre-timeout signal. To
@@ -191,7 +202,19 @@ fn job_array_with_time_limits_matches_a_local_run() {
                 }
             }
         }
-        if run.join("merged.h5").exists() && q.trim().is_empty() {
+        // Done when the queue is empty after the merge job has run (it
+        // refuses, writing nothing, if a slice did not finish).
+        let merge_log = run.join("slurm/merge.log");
+        if q.trim().is_empty() && (run.join("merged.h5").exists() || merge_log.exists()) {
+            let logs: String = (0..4)
+                .map(|k| std::fs::read_to_string(run.join(format!("slurm/task-{k}.log"))).unwrap_or_default())
+                .collect::<Vec<_>>()
+                .join("\n----\n");
+            assert!(
+                run.join("merged.h5").exists(),
+                "the merge job wrote nothing:\n{}\ntask logs:\n{logs}",
+                std::fs::read_to_string(&merge_log).unwrap_or_default()
+            );
             break;
         }
         assert!(Instant::now() < deadline, "the array did not finish in 15 minutes; queue:\n{q}");

@@ -195,7 +195,7 @@ exit "$code"
         mhead.push(format!("#SBATCH --account={a}"));
     }
     let merge = format!(
-        "{}\n\n# Written by `flipswarm submit`: gathers the part files once every task has ended.\nset -eu\n{} merge {} -o {}\n",
+        "{}\n\n# Written by `flipswarm submit`: gathers the part files once every task has ended\n# (and refuses, saying what is missing, if a slice did not finish).\nset -eu\n{} merge --require-complete {} -o {}\n",
         mhead.join("\n"),
         shell_quote(&program.display().to_string()),
         shell_quote(&dir.display().to_string()),
