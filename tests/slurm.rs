@@ -250,7 +250,8 @@ fn job_array_with_time_limits_matches_a_local_run() {
 /// task shell with USR1 and exits with the "stopped, resumable" code 3 at
 /// once, so the shell's `wait` is interrupted by the trap just as the
 /// program ends. The task must still see code 3, requeue itself and report
-/// it (before the fix it reported 138, the signal, and did not requeue).
+/// it (before the fix it reported 138, the signal, and did not requeue; and
+/// a signal that came before the shell had set its trap killed the task).
 /// Source: bash's documented `wait` semantics (a trapped signal makes `wait`
 /// return a status above 128); no Slurm needed (fake `scontrol`, `sleep`).
 #[test]

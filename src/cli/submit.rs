@@ -139,12 +139,16 @@ dir={dir}
 slice="${{SLURM_ARRAY_TASK_ID}}/{n}"
 task="${{SLURM_ARRAY_JOB_ID}}_${{SLURM_ARRAY_TASK_ID}}"
 echo "flipswarm: task $task (slice $slice) on $(hostname) at $(date -u +%Y-%m-%dT%H:%M:%SZ), restart ${{SLURM_RESTART_COUNT:-0}}"
+# Slurm signals only this shell (B:USR1): pass the request on. The program
+# finishes its current steps, checkpoints and exits with code 3. The trap is
+# set before the program starts, so an early signal is not lost either.
+child=
+stop=0
+forward() {{ stop=1; [ -n "$child" ] && kill -USR1 "$child" 2>/dev/null; }}
+trap forward USR1 TERM
 "$program" resume "$dir" --slice "$slice" --threads "${{SLURM_CPUS_PER_TASK:-1}}" &
 child=$!
-# Slurm signals only this shell (B:USR1): pass the request on. The program
-# finishes its current steps, checkpoints and exits with code 3.
-forward() {{ kill -USR1 "$child" 2>/dev/null; }}
-trap forward USR1 TERM
+[ "$stop" -eq 1 ] && kill -USR1 "$child" 2>/dev/null
 code=0
 while true; do
     wait "$child"
