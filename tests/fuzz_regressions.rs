@@ -216,3 +216,44 @@ fn fuzz_crash_global_heap_flip_is_reported_not_crashed() {
     assert!(!merged.exists(), "nothing may be written");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// The three part-file inputs that AddressSanitizer flagged in the
+/// 10-minute campaign of 2 Dec 2026 (fuzz target `part_file`, one flipped
+/// byte each): heap-buffer-overflow and overlapping memcpy inside HDF5 1.10's
+/// global-heap reader (`H5HG_read`) while reading a variable-length string
+/// attribute of the damaged file. The C library's bug cannot be fixed here;
+/// shown: `inspect` and `merge` (which read in a child first) are never
+/// killed, name the file, and `merge` writes nothing.
+#[test]
+fn asan_global_heap_findings_never_crash_inspect_or_merge() {
+    let bin = env!("CARGO_BIN_EXE_flipswarm");
+    let dir = scratch("asanheap");
+    let good = dir.join("good.h5");
+    fuzz_target_file(&good);
+    let original = std::fs::read(&good).unwrap();
+    for (k, (offset, xor)) in [(0xff31_68f1u32, 0x31u8), (0xd1fb_fff6, 0xf6), (0xcbf6_0b0f, 0xb0)].into_iter().enumerate() {
+        let mut bytes = original.clone();
+        let off = offset as usize % bytes.len();
+        bytes[off] ^= xor;
+        let case = dir.join(format!("case{k}"));
+        std::fs::create_dir_all(&case).unwrap();
+        let bad = case.join("part-0000-of-0001.h5");
+        std::fs::write(&bad, &bytes).unwrap();
+        let out = std::process::Command::new(bin).args(["inspect", bad.to_str().unwrap()]).output().unwrap();
+        let err = String::from_utf8_lossy(&out.stderr);
+        eprintln!("case {k} (byte {off:#x} ^ {xor:#04x}): inspect exit {:?}: {}", out.status.code(), err.lines().next().unwrap_or(""));
+        assert!(out.status.code().is_some(), "case {k}: inspect was killed by a signal: {err}");
+        if out.status.code() != Some(0) {
+            assert!(err.contains(bad.to_str().unwrap()), "case {k}: the message must name the file: {err}");
+        }
+        let merged = case.join("merged.h5");
+        let out = std::process::Command::new(bin).args(["merge", bad.to_str().unwrap(), "-o", merged.to_str().unwrap()]).output().unwrap();
+        let err = String::from_utf8_lossy(&out.stderr);
+        eprintln!("case {k}: merge exit {:?}: {}", out.status.code(), err.lines().next().unwrap_or(""));
+        assert!(out.status.code().is_some(), "case {k}: merge was killed by a signal: {err}");
+        if out.status.code() != Some(0) {
+            assert!(err.contains(bad.to_str().unwrap()) && !merged.exists(), "case {k}: {err}");
+        }
+    }
+    let _ = std::fs::remove_dir_all(&dir);
+}
