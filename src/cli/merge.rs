@@ -52,7 +52,8 @@ pub fn execute(args: &MergeArgs) -> i32 {
             }
         }
     }
-    match h5::merge_checked(&files, &args.output, true) {
+    // (Already probed above when completeness was checked.)
+    match h5::merge_checked(&files, &args.output, !args.require_complete) {
         Ok(r) => {
             println!("{}: {} trajectories, {} rows, {} hop attempts from {} part files", r.output.display(), r.trajectories, r.rows, r.hops, r.parts);
             if !args.require_complete {
