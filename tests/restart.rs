@@ -291,7 +291,8 @@ fn damaged_or_missing_checkpoints_fall_back_and_stay_identical() {
 /// by `merge`, never silently merged.
 #[test]
 fn half_written_part_is_detected_and_never_merged() {
-    let s = Scratch::new("half", 24, 60.0);
+    // Long enough (24 × 1000 fs) that the run is still writing when it is killed.
+    let s = Scratch::new("half", 24, 1000.0);
     let dir = s.run_dir("half");
     let mut child = spawn(&["-q", "run", s.ens().to_str().unwrap(), "-o", dir.to_str().unwrap(), "--threads", "2"]);
     let t = Instant::now();
