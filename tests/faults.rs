@@ -222,6 +222,19 @@ impl Backend for Poison {
     }
 }
 
+/// Back ends of the ensemble's model; trajectory `victim` gets a [`Poison`]
+/// wrapper doing `what` at step call `at`.
+fn poisoned(model: flipswarm::config::ModelSpec, victim: usize, at: usize, what: &'static str) -> impl Fn(usize) -> Box<dyn Backend> + Send + Sync {
+    move |i: usize| -> Box<dyn Backend> {
+        let inner = swarm::make_backend(&model);
+        if i == victim {
+            Box::new(Poison { inner, steps: 0, first: true, at, what, results: Results::default() })
+        } else {
+            inner
+        }
+    }
+}
+
 /// Numerical faults: NaN or infinite gradients and energies (a finite
 /// gradient so large that the velocities overflow, and an overlap matrix
 /// whose |det| says a tracked state left the space) fail exactly that
@@ -242,14 +255,7 @@ fn non_finite_numbers_fail_the_trajectory_with_its_step() {
         let s = Scratch::new("poison", 3, 10.0, 1);
         let cfg = s.cfg();
         let model = cfg.model.clone();
-        let factory = move |i: usize| -> Box<dyn Backend> {
-            let inner = swarm::make_backend(&model);
-            if i == 2 {
-                Box::new(Poison { inner, steps: 0, first: true, at, what, results: Results::default() })
-            } else {
-                inner
-            }
-        };
+        let factory = poisoned(model, 2, at, what);
         let dir = s.0.join("run");
         let report = run_in_process(&cfg, &dir, &factory);
         assert_eq!((report.finished, report.failed), (2, 1), "{what}");
@@ -281,14 +287,7 @@ fn missing_coupling_vectors_at_a_hop_fail_the_trajectory() {
     let s = Scratch::new("nocouplings", 3, 100.0, 10);
     let cfg = s.cfg();
     let model = cfg.model.clone();
-    let factory = move |i: usize| -> Box<dyn Backend> {
-        let inner = swarm::make_backend(&model);
-        if i == 1 {
-            Box::new(Poison { inner, steps: 0, first: true, at: 0, what: "no-couplings", results: Results::default() })
-        } else {
-            inner
-        }
-    };
+    let factory = poisoned(model, 1, 0, "no-couplings");
     let dir = s.0.join("run");
     let report = run_in_process(&cfg, &dir, &factory);
     assert_eq!((report.finished, report.failed), (2, 1));

@@ -198,11 +198,7 @@ fn fuzz_crash_global_heap_flip_is_reported_not_crashed() {
     let dir = scratch("heapflip");
     let good = dir.join("good.h5");
     fuzz_target_file(&good);
-    let mut bytes = std::fs::read(&good).unwrap();
-    let off = 0x2101_0400usize % bytes.len();
-    bytes[off] ^= 0xab;
-    let bad = dir.join("part-0000-of-0001.h5");
-    std::fs::write(&bad, &bytes).unwrap();
+    let bad = flipped_copy(&good, &dir, 0x2101_0400, 0xab);
     let out = std::process::Command::new(bin).args(["inspect", bad.to_str().unwrap()]).output().unwrap();
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(out.status.code().is_some(), "inspect was killed by a signal: {err}");
@@ -215,6 +211,17 @@ fn fuzz_crash_global_heap_flip_is_reported_not_crashed() {
     assert!(err.contains(bad.to_str().unwrap()), "{err}");
     assert!(!merged.exists(), "nothing may be written");
     let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// `dir/part-0000-of-0001.h5`: a copy of `good` with byte `offset` (modulo
+/// the length, as the `part_file` fuzz target does) xor-ed with `xor`.
+fn flipped_copy(good: &Path, dir: &Path, offset: u32, xor: u8) -> PathBuf {
+    let mut bytes = std::fs::read(good).unwrap();
+    let off = offset as usize % bytes.len();
+    bytes[off] ^= xor;
+    let bad = dir.join("part-0000-of-0001.h5");
+    std::fs::write(&bad, &bytes).unwrap();
+    bad
 }
 
 /// The three part-file inputs that AddressSanitizer flagged in the
@@ -230,15 +237,11 @@ fn asan_global_heap_findings_never_crash_inspect_or_merge() {
     let dir = scratch("asanheap");
     let good = dir.join("good.h5");
     fuzz_target_file(&good);
-    let original = std::fs::read(&good).unwrap();
     for (k, (offset, xor)) in [(0xff31_68f1u32, 0x31u8), (0xd1fb_fff6, 0xf6), (0xcbf6_0b0f, 0xb0)].into_iter().enumerate() {
-        let mut bytes = original.clone();
-        let off = offset as usize % bytes.len();
-        bytes[off] ^= xor;
         let case = dir.join(format!("case{k}"));
         std::fs::create_dir_all(&case).unwrap();
-        let bad = case.join("part-0000-of-0001.h5");
-        std::fs::write(&bad, &bytes).unwrap();
+        let bad = flipped_copy(&good, &case, offset, xor);
+        let off = offset as usize % std::fs::metadata(&good).unwrap().len() as usize;
         let out = std::process::Command::new(bin).args(["inspect", bad.to_str().unwrap()]).output().unwrap();
         let err = String::from_utf8_lossy(&out.stderr);
         eprintln!("case {k} (byte {off:#x} ^ {xor:#04x}): inspect exit {:?}: {}", out.status.code(), err.lines().next().unwrap_or(""));

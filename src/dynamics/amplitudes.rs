@@ -98,7 +98,7 @@ impl Exchanged {
 /// the first untracked one, harmless for the dynamics — they are returned
 /// for [`Exchanged::patch`] and a warning. Checked against
 /// `dynamics.min_overlap_determinant`.
-pub fn check_tracking(s: &DMatrix<f64>, floor: f64, active: usize, populations: &[f64]) -> Result<Option<Exchanged>, OverlapError> {
+pub fn check_tracking(s: &DMatrix<f64>, floor: f64, active: usize, amplitudes: &[Complex64]) -> Result<Option<Exchanged>, OverlapError> {
     // Every step: skip the LU when a cheap lower bound already clears the
     // floor. For a column diagonally dominant matrix
     // |det S| ≥ Π_j (|S_jj| − Σ_{i≠j} |S_ij|) (Ostrowski's bound), and a
@@ -118,7 +118,7 @@ pub fn check_tracking(s: &DMatrix<f64>, floor: f64, active: usize, populations: 
     let kept = |j: usize| s.row(j).norm().min(s.column(j).norm());
     let lost: Vec<usize> = (0..s.ncols()).filter(|&j| kept(j).powi(2) < 0.5).collect();
     let least = (0..s.ncols()).min_by(|&a, &b| kept(a).total_cmp(&kept(b))).unwrap_or(0);
-    let matters = |j: &usize| *j == active || populations.get(*j).is_some_and(|p| *p > 0.01);
+    let matters = |j: &usize| *j == active || amplitudes.get(*j).is_some_and(|c| c.norm_sqr() > 0.01);
     if lost.is_empty() || lost.iter().any(matters) {
         let state = lost.iter().copied().find(matters).unwrap_or(least);
         return Err(OverlapError::TrackingLost { determinant, floor, state, norm: kept(state) });
@@ -379,7 +379,9 @@ mod tests {
     #[test]
     fn lost_tracking_is_detected_by_the_determinant() {
         let r = rotation3(0.3, -0.2, 0.7);
-        let pops = [1.0, 0.0, 0.0];
+        // Amplitudes with these populations.
+        let amps = |p: &[f64]| -> Vec<Complex64> { p.iter().map(|x| Complex64::new(x.sqrt(), 0.0)).collect() };
+        let pops = amps(&[1.0, 0.0, 0.0]);
         assert_eq!(check_tracking(&r, 0.3, 0, &pops), Ok(None));
         let mut improper = r.clone();
         improper.column_mut(0).neg_mut();
@@ -387,7 +389,7 @@ mod tests {
         let mut lost = DMatrix::identity(3, 3);
         lost[(1, 1)] = 0.4;
         for (active, p) in [(1, [0.0, 1.0, 0.0]), (0, [0.9, 0.1, 0.0])] {
-            match check_tracking(&lost, 0.5, active, &p) {
+            match check_tracking(&lost, 0.5, active, &amps(&p)) {
                 Err(OverlapError::TrackingLost { determinant, floor, state, norm }) => {
                     assert!((determinant - 0.4).abs() < 1e-12);
                     assert_eq!((floor, state), (0.5, 1));
@@ -413,7 +415,7 @@ mod tests {
                 (if i == j { 1.0 } else { 0.0 }) + spread * (2.0 * x - 1.0)
             });
             let small = m.determinant().abs() < 0.3;
-            let flagged = !matches!(check_tracking(&m, 0.3, 0, &[1.0, 0.0, 0.0, 0.0]), Ok(None));
+            let flagged = !matches!(check_tracking(&m, 0.3, 0, &amps(&[1.0, 0.0, 0.0, 0.0])), Ok(None));
             assert_eq!(small, flagged, "{m}");
         }
     }

@@ -316,8 +316,7 @@ impl<'b> Trajectory<'b> {
         let mut tracking_warning = None;
         let coupling = match (&res.overlaps, n > 1) {
             (Some(raw), true) => {
-                let populations: Vec<f64> = s.amplitudes.iter().map(|c| c.norm_sqr()).collect();
-                let exchanged = check_tracking(raw, self.settings.min_overlap_determinant, s.active, &populations)
+                let exchanged = check_tracking(raw, self.settings.min_overlap_determinant, s.active, &s.amplitudes)
                     .map_err(|e| BackendError::Failed(format!("{e}, at step {}", s.step + 1)))?;
                 let patched = exchanged.as_ref().map(|x| x.patch(raw));
                 if let Some(x) = exchanged {
