@@ -53,7 +53,9 @@ fn rows(i: usize) -> (Vec<StepRow>, Vec<Hop>) {
                 v: vec![0.0; 3],
                 energies: (0..N_STATES).map(|j| 0.1 * j as f64).collect(),
                 active: a as u32,
-                amplitudes: (0..N_STATES).map(|j| Complex64::new(if j == a { 0.9 } else { 0.25 }, 0.0)).collect(),
+                amplitudes: (0..N_STATES)
+                    .map(|j| Complex64::new(if j == a { 0.9 } else { 0.25 }, 0.0))
+                    .collect(),
                 kinetic: 0.01,
                 potential: 0.1 * a as f64,
                 total: 0.5 + 1e-6 * (s % 7) as f64,
@@ -64,7 +66,16 @@ fn rows(i: usize) -> (Vec<StepRow>, Vec<Hop>) {
     let h = hops
         .iter()
         .map(|&(s, to)| {
-            let h = Hop { step: s, time: s as f64 * 20.0, from, to, accepted: true, gap: 0.1 * (to as f64 - from as f64), kinetic_before: 0.01, kinetic_after: 0.11 };
+            let h = Hop {
+                step: s,
+                time: s as f64 * 20.0,
+                from,
+                to,
+                accepted: true,
+                gap: 0.1 * (to as f64 - from as f64),
+                kinetic_before: 0.01,
+                kinetic_after: 0.11,
+            };
             from = to;
             h
         })
@@ -80,7 +91,10 @@ fn traj(i: usize) -> Traj {
         steps: r.iter().map(|x| x.step).collect(),
         times: r.iter().map(|x| x.time).collect(),
         active: r.iter().map(|x| x.active).collect(),
-        pops: r.iter().flat_map(|x| x.amplitudes.iter().map(|c| c.norm_sqr())).collect(),
+        pops: r
+            .iter()
+            .flat_map(|x| x.amplitudes.iter().map(|c| c.norm_sqr()))
+            .collect(),
         total: r.iter().map(|x| x.total).collect(),
         q: Vec::new(),
         energies: Vec::new(),
@@ -89,31 +103,69 @@ fn traj(i: usize) -> Traj {
 }
 
 fn ensemble(n: usize) -> Ensemble {
-    Ensemble { files: vec![], n_states: N_STATES, n_dof: 3, timestep_au: 20.0, record_every: 1, pending: 0, trajs: (0..n).map(traj).collect() }
+    Ensemble {
+        files: vec![],
+        n_states: N_STATES,
+        n_dof: 3,
+        timestep_au: 20.0,
+        record_every: 1,
+        pending: 0,
+        trajs: (0..n).map(traj).collect(),
+    }
 }
 
 fn main() {
     let t = Instant::now();
     let ens = ensemble(1000);
     let build = t.elapsed().as_secs_f64();
-    let fits = vec![Model::Decay { state: 3, delay: false }, Model::Sequential { a: 3, b: 2, c: 1 }];
+    let fits = vec![
+        Model::Decay {
+            state: 3,
+            delay: false,
+        },
+        Model::Sequential { a: 3, b: 2, c: 1 },
+    ];
     println!("flipswarm analysis benchmark: 1000 trajectories × {ROWS} rows × {N_STATES} states on {} threads (data built in memory in {build:.2} s)", rayon::current_num_threads());
-    let reference = Options { fits: fits.clone(), resamples: 0, ..Options::default() };
+    let reference = Options {
+        fits: fits.clone(),
+        resamples: 0,
+        ..Options::default()
+    };
     let t = Instant::now();
     let a0 = analyse(&ens, &reference).expect("analysis");
     let t_ref = t.elapsed().as_secs_f64();
-    let full = Options { fits, resamples: 1000, ..Options::default() };
+    let full = Options {
+        fits,
+        resamples: 1000,
+        ..Options::default()
+    };
     let t = Instant::now();
     let a1 = analyse(&ens, &full).expect("analysis");
     let t_full = t.elapsed().as_secs_f64();
     println!("  reference (populations, hops, energies, 2 point fits, no bootstrap): {t_ref:.3} s");
     println!("  with 1000 bootstrap resamples for each of the 2 fits:              {t_full:.3} s  (goal < 5 s; ratio {:.1})", t_full / t_ref.max(1e-9));
-    println!("    (true lifetimes of the synthetic data: τ1 = {:.2} fs, τ2 = {:.2} fs)", units::au_to_fs(60.0 * 20.0), units::au_to_fs(150.0 * 20.0));
+    println!(
+        "    (true lifetimes of the synthetic data: τ1 = {:.2} fs, τ2 = {:.2} fs)",
+        units::au_to_fs(60.0 * 20.0),
+        units::au_to_fs(150.0 * 20.0)
+    );
     for f in &a1.fits {
-        let ps: Vec<String> = f.parameters.iter().map(|p| format!("{} {:.2} [{:.2}, {:.2}]", p.name, p.value, p.lower95, p.upper95)).collect();
+        let ps: Vec<String> = f
+            .parameters
+            .iter()
+            .map(|p| {
+                format!(
+                    "{} {:.2} [{:.2}, {:.2}]",
+                    p.name, p.value, p.lower95, p.upper95
+                )
+            })
+            .collect();
         println!("    {}: {}", f.description, ps.join(", "));
     }
-    assert_eq!(a0.fits[0].parameters[0].value, a1.fits[0].parameters[0].value);
+    assert_eq!(
+        a0.fits[0].parameters[0].value,
+        a1.fits[0].parameters[0].value
+    );
 
     // Reading from a part file.
     let dir = std::env::temp_dir().join(format!("flipswarm-bench-analyze-{}", std::process::id()));
@@ -134,10 +186,18 @@ fn main() {
     };
     let mut w = PartWriter::create(&path, &meta).unwrap();
     for i in 0..n {
-        w.begin(&TrajectoryHeader { index: i, q0: vec![0.0; 3], v0: vec![0.0; 3], initial_state: 3, seed: 0 }).unwrap();
+        w.begin(&TrajectoryHeader {
+            index: i,
+            q0: vec![0.0; 3],
+            v0: vec![0.0; 3],
+            initial_state: 3,
+            seed: 0,
+        })
+        .unwrap();
         let (r, h) = rows(i);
         w.append(i, &r, &h).unwrap();
-        w.set_status(i, &Status::Finished(EndReason::TimeLimit)).unwrap();
+        w.set_status(i, &Status::Finished(EndReason::TimeLimit))
+            .unwrap();
     }
     w.close().unwrap();
     let t = Instant::now();

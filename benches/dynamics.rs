@@ -20,15 +20,32 @@ const STEPS: usize = 2;
 fn main() {
     let dir = std::env::temp_dir().join(format!("flipswarm-bench-dynamics-{}", std::process::id()));
     std::fs::create_dir_all(&dir).expect("temp dir");
-    std::fs::copy(Path::new(env!("CARGO_MANIFEST_DIR")).join("ensembles/molecules/ethylene.xyz"), dir.join("ethylene.xyz"))
-        .expect("ethylene geometry");
+    std::fs::copy(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("ensembles/molecules/ethylene.xyz"),
+        dir.join("ethylene.xyz"),
+    )
+    .expect("ethylene geometry");
     println!("MRSF-TDDFT dynamics step, ethylene BH&HLYP (coarse grid), 3 singlets, start + {STEPS} steps on S1");
     println!(
         "{:>15} {:>4} {:>10} {:>9} {:>9} {:>9} {:>10} {:>10} {:>12} {:>11}",
-        "basis/gradient", "nbf", "step (s)", "SCF", "response", "overlaps", "gradient", "engine", "engine share", "step/SCF"
+        "basis/gradient",
+        "nbf",
+        "step (s)",
+        "SCF",
+        "response",
+        "overlaps",
+        "gradient",
+        "engine",
+        "engine share",
+        "step/SCF"
     );
     let mut reference = None;
-    for (basis, gradients) in [("6-31G", "numerical"), ("STO-3G", "analytic"), ("6-31G", "analytic"), ("6-31G*", "analytic")] {
+    for (basis, gradients) in [
+        ("6-31G", "numerical"),
+        ("STO-3G", "analytic"),
+        ("6-31G", "analytic"),
+        ("6-31G*", "analytic"),
+    ] {
         let text = format!(
             r#"[model]
 kind = "molecule"
@@ -49,17 +66,24 @@ seed = 3
 "#
         );
         let cfg = load_str(&text, "bench", &dir, &[]).expect("valid bench config");
-        let ModelSpec::Molecule { spec, .. } = &cfg.model else { unreachable!() };
-        let nbf = flipswarm::electronic::qc::basis::BasisSet::new(&spec.calculation.molecule, &spec.calculation.basis, None)
-            .map(|b| b.nbf)
-            .unwrap_or(0);
+        let ModelSpec::Molecule { spec, .. } = &cfg.model else {
+            unreachable!()
+        };
+        let nbf = flipswarm::electronic::qc::basis::BasisSet::new(
+            &spec.calculation.molecule,
+            &spec.calculation.basis,
+            None,
+        )
+        .map(|b| b.nbf)
+        .unwrap_or(0);
         let mut backend = MrsfBackend::new(spec.clone());
         let masses = spec.masses();
         let (q, v, state) = swarm::initial_condition(&cfg, &masses, 0);
         let t = Instant::now();
         {
             let rng = swarm::trajectory_rng(cfg.seed, 0, 1);
-            let mut traj = Trajectory::start(&mut backend, cfg.settings.clone(), q, v, state, rng).expect("start");
+            let mut traj = Trajectory::start(&mut backend, cfg.settings.clone(), q, v, state, rng)
+                .expect("start");
             for _ in 0..STEPS {
                 traj.step().expect("step");
             }
@@ -84,7 +108,11 @@ seed = 3
         if basis == "6-31G" {
             match reference {
                 None => reference = Some(per(wall)),
-                Some(r) => println!("{:>15} 6-31G step: numerical / analytic gradients = {:.1}×", "", r / per(wall)),
+                Some(r) => println!(
+                    "{:>15} 6-31G step: numerical / analytic gradients = {:.1}×",
+                    "",
+                    r / per(wall)
+                ),
             }
         }
     }

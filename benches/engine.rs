@@ -40,12 +40,17 @@ fn lvc_config(trajectories: usize, dir: &Path) -> RunConfig {
     let mut m = String::from("frequencies_ev = [0.05, 0.07, 0.09, 0.11, 0.13, 0.15, 0.17, 0.19, 0.21, 0.23]\nvertical_ev = [0.0, 3.8, 4.2]\n");
     for mode in 0..5 {
         for (state, v) in [(1, -0.05), (2, 0.06)] {
-            m.push_str(&format!("[[gradient]]\nstate = {state}\nmode = {mode}\nvalue_ev = {}\n", v * (1.0 + 0.1 * mode as f64)));
+            m.push_str(&format!(
+                "[[gradient]]\nstate = {state}\nmode = {mode}\nvalue_ev = {}\n",
+                v * (1.0 + 0.1 * mode as f64)
+            ));
         }
     }
     for mode in 5..10 {
         for (pair, v) in [("[1, 2]", 0.05), ("[0, 1]", 0.01)] {
-            m.push_str(&format!("[[coupling]]\nstates = {pair}\nmode = {mode}\nvalue_ev = {v}\n"));
+            m.push_str(&format!(
+                "[[coupling]]\nstates = {pair}\nmode = {mode}\nvalue_ev = {v}\n"
+            ));
         }
     }
     std::fs::write(dir.join("bench-lvc.toml"), m).expect("temp dir writable");
@@ -69,18 +74,33 @@ seed = 2
 
 /// A made-up 20-atom-sized LVC model: 60 modes (3 × 20 coordinates), 5
 /// states; tuning modes 0–29, coupling modes 30–59 (invented numbers, a demo).
-fn lvc20_config(trajectories: usize, duration_fs: f64, dir: &Path, checkpoint_every: u64, record_every: u64) -> RunConfig {
-    let freqs: Vec<String> = (0..60).map(|k| format!("{:.4}", 0.02 + 0.006 * k as f64)).collect();
-    let mut m = format!("frequencies_ev = [{}]\nvertical_ev = [0.0, 3.6, 3.9, 4.2, 4.6]\n", freqs.join(", "));
+fn lvc20_config(
+    trajectories: usize,
+    duration_fs: f64,
+    dir: &Path,
+    checkpoint_every: u64,
+    record_every: u64,
+) -> RunConfig {
+    let freqs: Vec<String> = (0..60)
+        .map(|k| format!("{:.4}", 0.02 + 0.006 * k as f64))
+        .collect();
+    let mut m = format!(
+        "frequencies_ev = [{}]\nvertical_ev = [0.0, 3.6, 3.9, 4.2, 4.6]\n",
+        freqs.join(", ")
+    );
     for mode in 0..30 {
         for state in 1..5 {
             let v = if state % 2 == 0 { 0.04 } else { -0.05 } * (1.0 + 0.02 * mode as f64);
-            m.push_str(&format!("[[gradient]]\nstate = {state}\nmode = {mode}\nvalue_ev = {v:.5}\n"));
+            m.push_str(&format!(
+                "[[gradient]]\nstate = {state}\nmode = {mode}\nvalue_ev = {v:.5}\n"
+            ));
         }
     }
     for mode in 30..60 {
         for (a, b, v) in [(1, 2, 0.03), (2, 3, 0.03), (3, 4, 0.025), (0, 1, 0.005)] {
-            m.push_str(&format!("[[coupling]]\nstates = [{a}, {b}]\nmode = {mode}\nvalue_ev = {v}\n"));
+            m.push_str(&format!(
+                "[[coupling]]\nstates = [{a}, {b}]\nmode = {mode}\nvalue_ev = {v}\n"
+            ));
         }
     }
     std::fs::write(dir.join("bench-lvc20.toml"), m).expect("temp dir writable");
@@ -132,10 +152,21 @@ fn reference(cfg: &RunConfig, steps_each: &[u64]) -> (u64, f64) {
         let masses = backend.info().masses;
         let (mut q, mut v, _) = swarm::initial_condition(cfg, &masses, i);
         let req = Request::gradient_of(cfg.initial_state);
-        let mut g = backend.compute(&q, &req).expect("model").gradient(cfg.initial_state).unwrap().to_vec();
+        let mut g = backend
+            .compute(&q, &req)
+            .expect("model")
+            .gradient(cfg.initial_state)
+            .unwrap()
+            .to_vec();
         for _ in 0..n {
             verlet::kick_drift(&mut q, &mut v, &g, &masses, cfg.settings.dt);
-            g.copy_from_slice(backend.compute(&q, &req).expect("model").gradient(cfg.initial_state).unwrap());
+            g.copy_from_slice(
+                backend
+                    .compute(&q, &req)
+                    .expect("model")
+                    .gradient(cfg.initial_state)
+                    .unwrap(),
+            );
             verlet::kick(&mut v, &g, &masses, cfg.settings.dt);
         }
         total += n;
@@ -194,7 +225,14 @@ fn writer_throughput(dir: &Path) {
     let t = Instant::now();
     let mut w = PartWriter::create(&path, &meta).expect("create bench file");
     for i in 0..trajectories {
-        w.begin(&TrajectoryHeader { index: i, q0: vec![0.0; n_dof], v0: vec![0.0; n_dof], initial_state: 1, seed: 0 }).expect("begin");
+        w.begin(&TrajectoryHeader {
+            index: i,
+            q0: vec![0.0; n_dof],
+            v0: vec![0.0; n_dof],
+            initial_state: 1,
+            seed: 0,
+        })
+        .expect("begin");
     }
     for _ in 0..rows_each / 100 {
         for i in 0..trajectories {
@@ -234,27 +272,42 @@ fn output_overhead(name: &str, cfg: &RunConfig, dir: &Path, checkpoint_every: u6
     use std::sync::atomic::AtomicBool;
     use std::sync::Arc;
     let cfg = cfg.clone();
-    assert_eq!(cfg.output.checkpoint_every, checkpoint_every, "cadence in the TOML text");
+    assert_eq!(
+        cfg.output.checkpoint_every, checkpoint_every,
+        "cadence in the TOML text"
+    );
     let model = cfg.model.clone();
     let factory = move |_: usize| swarm::make_backend(&model);
-    let (mut plain, mut plain_cpu, mut with, mut with_cpu) = (f64::INFINITY, f64::INFINITY, f64::INFINITY, f64::INFINITY);
+    let (mut plain, mut plain_cpu, mut with, mut with_cpu) =
+        (f64::INFINITY, f64::INFINITY, f64::INFINITY, f64::INFINITY);
     let mut size = 0u64;
     for _ in 0..repeats {
         let (t, c) = (Instant::now(), cpu_seconds());
         swarm::run(&cfg, 1).expect("thread pool");
         plain = plain.min(t.elapsed().as_secs_f64());
         plain_cpu = plain_cpu.min(cpu_seconds() - c);
-        let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+        let opts = runner::Options {
+            threads: 1,
+            stop: Arc::new(AtomicBool::new(false)),
+            factory: &factory,
+            progress_bar: false,
+        };
         let run_dir = dir.join("overhead-run");
         let _ = std::fs::remove_dir_all(&run_dir);
         let (t, c) = (Instant::now(), cpu_seconds());
         runner::start(&cfg, &run_dir, (0, 1), &opts).expect("run into directory");
         with = with.min(t.elapsed().as_secs_f64());
         with_cpu = with_cpu.min(cpu_seconds() - c);
-        size = std::fs::metadata(run_dir.join(runner::part_name(0, 1))).map(|m| m.len()).unwrap_or(0);
+        size = std::fs::metadata(run_dir.join(runner::part_name(0, 1)))
+            .map(|m| m.len())
+            .unwrap_or(0);
         let _ = std::fs::remove_dir_all(&run_dir);
     }
-    let cadence = if checkpoint_every == 0 { "default checkpoints".to_string() } else { format!("checkpoint/{checkpoint_every} steps") };
+    let cadence = if checkpoint_every == 0 {
+        "default checkpoints".to_string()
+    } else {
+        format!("checkpoint/{checkpoint_every} steps")
+    };
     let cadence = format!("row/{} steps, {cadence}", cfg.output.record_every);
     println!(
         "{:<34} {with:>7.3} s ({with_cpu:.3} s CPU) with output, {cadence}, {:.1} MB | reference (no output) {plain:>7.3} s ({plain_cpu:.3} s CPU) | overhead wall {:>5.1} %, CPU {:>5.1} % (goal < 2 %)",
@@ -275,7 +328,12 @@ fn output_overhead_once(cfg: &RunConfig, dir: &Path, checkpoint_every: u64) {
     cfg.output.checkpoint_every = checkpoint_every;
     let model = cfg.model.clone();
     let factory = move |_: usize| swarm::make_backend(&model);
-    let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let opts = runner::Options {
+        threads: 1,
+        stop: Arc::new(AtomicBool::new(false)),
+        factory: &factory,
+        progress_bar: false,
+    };
     let run_dir = dir.join("overhead-run");
     let _ = std::fs::remove_dir_all(&run_dir);
     runner::start(&cfg, &run_dir, (0, 1), &opts).expect("run into directory");
@@ -284,7 +342,9 @@ fn output_overhead_once(cfg: &RunConfig, dir: &Path, checkpoint_every: u64) {
 
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
-    if let Some(which) = std::env::args().find_map(|a| a.strip_prefix("--profile=").map(str::to_string)) {
+    if let Some(which) =
+        std::env::args().find_map(|a| a.strip_prefix("--profile=").map(str::to_string))
+    {
         // For a profiler: only the plain run or only the run with output, five times.
         let dir = std::env::temp_dir().join(format!("flipswarm-bench-{}", std::process::id()));
         std::fs::create_dir_all(&dir).expect("temp dir");
@@ -293,7 +353,11 @@ fn main() {
             if which == "plain" {
                 swarm::run(&cfg, 1).expect("thread pool");
             } else {
-                let cfg = match which.as_str() { "runner0" => lvc20_config(20, 200.0, &dir, 0, 1), "runner20" => lvc20_config(20, 200.0, &dir, 0, 20), _ => cfg.clone() };
+                let cfg = match which.as_str() {
+                    "runner0" => lvc20_config(20, 200.0, &dir, 0, 1),
+                    "runner20" => lvc20_config(20, 200.0, &dir, 0, 20),
+                    _ => cfg.clone(),
+                };
                 output_overhead_once(&cfg, &dir, cfg.output.checkpoint_every);
             }
         }
@@ -330,5 +394,8 @@ fn main() {
     let cfg = tully_config(2000);
     let out = swarm::run(&cfg, 0).expect("thread pool");
     let steps: u64 = out.iter().map(|o| o.steps).sum();
-    println!("Tully 1, 2000 trajectories on all cores: {steps} steps in {:.3} s (goal: under 1 s)", t.elapsed().as_secs_f64());
+    println!(
+        "Tully 1, 2000 trajectories on all cores: {steps} steps in {:.3} s (goal: under 1 s)",
+        t.elapsed().as_secs_f64()
+    );
 }

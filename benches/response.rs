@@ -31,7 +31,10 @@ fn acrolein() -> Molecule {
         ("H", [1.89, -0.93]),
         ("H", [1.55, 2.19]),
     ];
-    let els: Vec<Element> = atoms.iter().map(|(s, _)| Element::from_symbol(s).unwrap()).collect();
+    let els: Vec<Element> = atoms
+        .iter()
+        .map(|(s, _)| Element::from_symbol(s).unwrap())
+        .collect();
     let pos: Vec<[f64; 3]> = atoms
         .iter()
         .map(|(_, p)| [angstrom_to_bohr(p[0]), angstrom_to_bohr(p[1]), 0.0])
@@ -48,8 +51,15 @@ fn main() {
         jk: JkOptions::default(),
     };
     let t = Instant::now();
-    let roks = kohn_sham(&basis, el, Reference::RestrictedOpen, &Guess::AtomicSuperposition, &ScfOptions::default(), &ks)
-        .expect("ROKS");
+    let roks = kohn_sham(
+        &basis,
+        el,
+        Reference::RestrictedOpen,
+        &Guess::AtomicSuperposition,
+        &ScfOptions::default(),
+        &ks,
+    )
+    .expect("ROKS");
     let t_roks = t.elapsed().as_secs_f64();
     println!(
         "acrolein 6-31G* ({} functions): ROKS BH&HLYP triplet {:.3} s, {} iterations, E = {:.8} Eh",
@@ -58,7 +68,10 @@ fn main() {
     let t = Instant::now();
     let mut engine = JkEngine::new(&basis, JkOptions::default());
     let t_store = t.elapsed().as_secs_f64();
-    println!("response integral store: {t_store:.3} s (in core: {})", engine.in_core());
+    println!(
+        "response integral store: {t_store:.3} s (in core: {})",
+        engine.in_core()
+    );
     let opts = DavidsonOptions::default();
     let t = Instant::now();
     let mut mrsf = Mrsf::new(&basis, &roks, 0.5, &mut engine).expect("MRSF set-up");

@@ -32,9 +32,17 @@ fn benzene() -> Molecule {
     for k in 0..6 {
         let t = std::f64::consts::PI / 3.0 * k as f64 + 0.1;
         els.push(c);
-        pos.push([angstrom_to_bohr(rc * t.cos()), angstrom_to_bohr(rc * t.sin()), 0.02 * k as f64]);
+        pos.push([
+            angstrom_to_bohr(rc * t.cos()),
+            angstrom_to_bohr(rc * t.sin()),
+            0.02 * k as f64,
+        ]);
         els.push(h);
-        pos.push([angstrom_to_bohr(rh * t.cos()), angstrom_to_bohr(rh * t.sin()), -0.01 * k as f64]);
+        pos.push([
+            angstrom_to_bohr(rh * t.cos()),
+            angstrom_to_bohr(rh * t.sin()),
+            -0.01 * k as f64,
+        ]);
     }
     Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
 }
@@ -43,7 +51,11 @@ fn displaced(m: &Molecule) -> Molecule {
     let mut m = m.clone();
     let mut q = m.positions_flat_bohr();
     for (a, atom) in m.atoms.iter().enumerate() {
-        let amp = if atom.element.atomic_number() == 1 { 0.005 } else { 0.0015 };
+        let amp = if atom.element.atomic_number() == 1 {
+            0.005
+        } else {
+            0.0015
+        };
         for k in 0..3 {
             q[3 * a + k] += amp * ((7 * a + 3 * k) as f64 * 0.9).sin();
         }
@@ -59,7 +71,11 @@ fn python() -> Option<String> {
     }
     cands.push("python3".into());
     cands.into_iter().find(|p| {
-        Command::new(p).args(["-c", "import pyscf"]).output().map(|o| o.status.success()).unwrap_or(false)
+        Command::new(p)
+            .args(["-c", "import pyscf"])
+            .output()
+            .map(|o| o.status.success())
+            .unwrap_or(false)
     })
 }
 
@@ -91,7 +107,11 @@ print(json.dumps({"energy": e, "cold": t_cold, "warm": t_warm, "points": int(npt
 "#;
 
 fn atoms_json(m: &Molecule) -> String {
-    let v: Vec<(u8, [f64; 3])> = m.atoms.iter().map(|a| (a.element.atomic_number(), a.position_bohr)).collect();
+    let v: Vec<(u8, [f64; 3])> = m
+        .atoms
+        .iter()
+        .map(|a| (a.element.atomic_number(), a.position_bohr))
+        .collect();
     serde_json::to_string(&v).unwrap()
 }
 
@@ -102,11 +122,30 @@ fn main() {
     let moved = displaced(&mol);
     let basis = BasisSet::builtin(&mol, "6-31G*").unwrap();
     let el = Electrons::from_charge_multiplicity(scf::nuclear_charge(&basis), 0, 3).unwrap();
-    let opts = ScfOptions { energy_tolerance: 1e-9, gradient_tolerance: 1e-6, ..ScfOptions::default() };
-    let ks = KsOptions { functional: "bhhlyp".into(), grid: spec.clone(), jk: JkOptions::default() };
-    println!("ROKS/BH&HLYP triplet benzene, 6-31G* ({} functions), grid level {level}", basis.nbf);
+    let opts = ScfOptions {
+        energy_tolerance: 1e-9,
+        gradient_tolerance: 1e-6,
+        ..ScfOptions::default()
+    };
+    let ks = KsOptions {
+        functional: "bhhlyp".into(),
+        grid: spec.clone(),
+        jk: JkOptions::default(),
+    };
+    println!(
+        "ROKS/BH&HLYP triplet benzene, 6-31G* ({} functions), grid level {level}",
+        basis.nbf
+    );
     let t = Instant::now();
-    let cold = kohn_sham(&basis, el, Reference::RestrictedOpen, &Guess::AtomicSuperposition, &opts, &ks).unwrap();
+    let cold = kohn_sham(
+        &basis,
+        el,
+        Reference::RestrictedOpen,
+        &Guess::AtomicSuperposition,
+        &opts,
+        &ks,
+    )
+    .unwrap();
     let t_cold = t.elapsed().as_secs_f64();
     let moved_basis = BasisSet::builtin(&moved, "6-31G*").unwrap();
     let t = Instant::now();
@@ -114,7 +153,10 @@ fn main() {
         &moved_basis,
         el,
         Reference::RestrictedOpen,
-        &Guess::Orbitals { alpha: cold.orbitals_alpha.clone(), beta: cold.orbitals_beta.clone() },
+        &Guess::Orbitals {
+            alpha: cold.orbitals_alpha.clone(),
+            beta: cold.orbitals_beta.clone(),
+        },
         &opts,
         &ks,
     )
@@ -128,7 +170,9 @@ fn main() {
         spec.radial_points(6),
         spec.angular
     );
-    let points = flipswarm::electronic::qc::dft::grid::MolecularGrid::build(&basis.nuclei, &spec).unwrap().len();
+    let points = flipswarm::electronic::qc::dft::grid::MolecularGrid::build(&basis.nuclei, &spec)
+        .unwrap()
+        .len();
     println!(
         "  flipswarm: E = {:.8} Eh, {} iterations, {:.2} s; warm start after a 0.5 fs-sized step: {} iterations, {:.2} s; {} grid points",
         cold.energy, cold.iterations, t_cold, warm.iterations, t_warm, points
@@ -138,11 +182,21 @@ fn main() {
         return;
     };
     let out = Command::new(&py)
-        .args(["-c", PYSCF_SCRIPT, env!("CARGO_MANIFEST_DIR"), &atoms_json(&mol), &atoms_json(&moved), &grid_json])
+        .args([
+            "-c",
+            PYSCF_SCRIPT,
+            env!("CARGO_MANIFEST_DIR"),
+            &atoms_json(&mol),
+            &atoms_json(&moved),
+            &grid_json,
+        ])
         .output()
         .unwrap();
     if !out.status.success() {
-        println!("  PySCF run failed: {}", String::from_utf8_lossy(&out.stderr));
+        println!(
+            "  PySCF run failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
         return;
     }
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
@@ -155,5 +209,9 @@ fn main() {
         pw,
         v["points"]
     );
-    println!("  ratio flipswarm/PySCF: SCF {:.2}, warm-start SCF {:.2} (goal <= 1.0)", t_cold / pc, t_warm / pw);
+    println!(
+        "  ratio flipswarm/PySCF: SCF {:.2}, warm-start SCF {:.2} (goal <= 1.0)",
+        t_cold / pc,
+        t_warm / pw
+    );
 }

@@ -10,10 +10,10 @@
 pub mod analysis;
 pub mod chem;
 pub mod cli;
-pub mod sampling;
 pub mod config;
 pub mod dynamics;
 pub mod electronic;
 pub mod ensemble;
+pub mod sampling;
 pub mod swarm;
 pub mod units;

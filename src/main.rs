@@ -8,7 +8,10 @@ use tracing_subscriber::EnvFilter;
 fn keys_help() -> String {
     let mut s = String::from("Configuration keys (unit in the name; also `flipswarm keys`):\n");
     for k in flipswarm::config::SCHEMA {
-        s.push_str(&format!("  {:<38} {} [default: {}]\n", k.path, k.meaning, k.default));
+        s.push_str(&format!(
+            "  {:<38} {} [default: {}]\n",
+            k.path, k.meaning, k.default
+        ));
     }
     s.push_str("\nExit codes: 0 success; 1 some trajectories failed; 2 bad usage or input (nothing was run);\n3 stopped on request, resumable with `flipswarm resume`; 4 runtime or I/O error.");
     s
@@ -22,10 +25,17 @@ fn main() {
         libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
     let command = Cli::command().mut_subcommand("run", |c| c.after_long_help(keys_help()));
-    let cli = match command.try_get_matches().and_then(|m| Cli::from_arg_matches(&m)) {
+    let cli = match command
+        .try_get_matches()
+        .and_then(|m| Cli::from_arg_matches(&m))
+    {
         Ok(c) => c,
         Err(e) => {
-            let code = if e.use_stderr() { exit::INPUT } else { exit::OK };
+            let code = if e.use_stderr() {
+                exit::INPUT
+            } else {
+                exit::OK
+            };
             let _ = e.print();
             std::process::exit(code);
         }
@@ -37,7 +47,11 @@ fn main() {
         _ => "trace",
     };
     let filter = EnvFilter::try_from_env("FLIPSWARM_LOG").unwrap_or_else(|_| EnvFilter::new(level));
-    tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).with_target(false).init();
+    tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .with_target(false)
+        .init();
     let code = match &cli.command {
         Command::Run(args) => cli::run::execute(args),
         Command::Resume(args) => cli::resume::execute(args),

@@ -48,7 +48,9 @@ fn spawning() -> RwLockWriteGuard<'static, ()> {
 }
 
 fn scratch(name: &str) -> PathBuf {
-    let dir = Path::new(env!("CARGO_TARGET_TMPDIR")).join("analysis").join(name);
+    let dir = Path::new(env!("CARGO_TARGET_TMPDIR"))
+        .join("analysis")
+        .join(name);
     let _ = std::fs::remove_dir_all(&dir);
     std::fs::create_dir_all(&dir).unwrap();
     dir
@@ -56,7 +58,10 @@ fn scratch(name: &str) -> PathBuf {
 
 fn run(args: &[&str]) -> Output {
     let _g = spawning();
-    Command::new(BIN).args(args).output().expect("start flipswarm")
+    Command::new(BIN)
+        .args(args)
+        .output()
+        .expect("start flipswarm")
 }
 
 fn stderr(o: &Output) -> String {
@@ -106,8 +111,16 @@ fn coords(s: u64) -> Vec<f64> {
     let ax = [1.0 - u[0] * u[0], -u[0] * u[1], 0.0]; // x minus its projection on u
     let na = (ax[0] * ax[0] + ax[1] * ax[1]).sqrt();
     let v = [ax[0] / na, ax[1] / na, 0.0]; // in-plane, perpendicular to u, on atom 0's side
-    let w = [u[1] * v[2] - u[2] * v[1], u[2] * v[0] - u[0] * v[2], u[0] * v[1] - u[1] * v[0]]; // u × v
-    let a3 = [a2[0] + p.cos() * v[0] + p.sin() * w[0], a2[1] + p.cos() * v[1] + p.sin() * w[1], a2[2] + p.cos() * v[2] + p.sin() * w[2]];
+    let w = [
+        u[1] * v[2] - u[2] * v[1],
+        u[2] * v[0] - u[0] * v[2],
+        u[0] * v[1] - u[1] * v[0],
+    ]; // u × v
+    let a3 = [
+        a2[0] + p.cos() * v[0] + p.sin() * w[0],
+        a2[1] + p.cos() * v[1] + p.sin() * w[1],
+        a2[2] + p.cos() * v[2] + p.sin() * w[2],
+    ];
     [a0, a1, a2, a3].concat()
 }
 
@@ -117,7 +130,13 @@ fn geometry_at(s: u64) -> (f64, f64, f64) {
     (1.0 + 0.001 * x, 100.0 + 0.05 * x, -170.0 + 0.9 * x)
 }
 
-fn rows_of(t: &Syn, n_states: usize, n_dof: usize, dt: f64, every: u64) -> (Vec<StepRow>, Vec<Hop>) {
+fn rows_of(
+    t: &Syn,
+    n_states: usize,
+    n_dof: usize,
+    dt: f64,
+    every: u64,
+) -> (Vec<StepRow>, Vec<Hop>) {
     let mut steps: Vec<u64> = (0..=t.last).step_by(every as usize).collect();
     if *steps.last().unwrap() != t.last {
         steps.push(t.last);
@@ -129,7 +148,11 @@ fn rows_of(t: &Syn, n_states: usize, n_dof: usize, dt: f64, every: u64) -> (Vec<
         .map(|&s| {
             let a = state_at(s);
             let energies: Vec<f64> = (0..n_states).map(|j| energy(j, s)).collect();
-            let q = if n_dof == 12 { coords(s) } else { vec![0.1 * s as f64; n_dof] };
+            let q = if n_dof == 12 {
+                coords(s)
+            } else {
+                vec![0.1 * s as f64; n_dof]
+            };
             StepRow {
                 step: s,
                 time: s as f64 * dt,
@@ -138,7 +161,9 @@ fn rows_of(t: &Syn, n_states: usize, n_dof: usize, dt: f64, every: u64) -> (Vec<
                 potential: energies[a],
                 energies,
                 active: a as u32,
-                amplitudes: (0..n_states).map(|j| Complex64::new(if j == a { 1.0 } else { 0.0 }, 0.0)).collect(),
+                amplitudes: (0..n_states)
+                    .map(|j| Complex64::new(if j == a { 1.0 } else { 0.0 }, 0.0))
+                    .collect(),
                 kinetic: 0.01,
                 total: e0 + t.drift * s as f64 / t.last.max(1) as f64,
             }
@@ -146,11 +171,25 @@ fn rows_of(t: &Syn, n_states: usize, n_dof: usize, dt: f64, every: u64) -> (Vec<
         .collect();
     let mut hops = Vec::new();
     let mut from = t.initial;
-    let mut all: Vec<(u64, usize, bool)> = t.hops.iter().map(|&(s, to)| (s, to, true)).chain(t.frustrated.iter().map(|&(s, to)| (s, to, false))).collect();
+    let mut all: Vec<(u64, usize, bool)> = t
+        .hops
+        .iter()
+        .map(|&(s, to)| (s, to, true))
+        .chain(t.frustrated.iter().map(|&(s, to)| (s, to, false)))
+        .collect();
     all.sort();
     for (s, to, accepted) in all {
         let f = if accepted { from } else { state_at(s) };
-        hops.push(Hop { step: s, time: s as f64 * dt, from: f, to, accepted, gap: energy(to, s) - energy(f, s), kinetic_before: 0.01, kinetic_after: 0.01 });
+        hops.push(Hop {
+            step: s,
+            time: s as f64 * dt,
+            from: f,
+            to,
+            accepted,
+            gap: energy(to, s) - energy(f, s),
+            kinetic_before: 0.01,
+            kinetic_after: 0.01,
+        });
         if accepted {
             from = to;
         }
@@ -174,9 +213,20 @@ fn meta(n_states: usize, n_dof: usize, indices: Vec<usize>, dt: f64) -> PartMeta
 
 fn write_part(path: &Path, trajs: &[Syn], n_states: usize, n_dof: usize, dt: f64, every: u64) {
     let _f = files();
-    let mut w = PartWriter::create(path, &meta(n_states, n_dof, trajs.iter().map(|t| t.index).collect(), dt)).unwrap();
+    let mut w = PartWriter::create(
+        path,
+        &meta(n_states, n_dof, trajs.iter().map(|t| t.index).collect(), dt),
+    )
+    .unwrap();
     for t in trajs {
-        w.begin(&TrajectoryHeader { index: t.index, q0: vec![0.0; n_dof], v0: vec![0.0; n_dof], initial_state: t.initial, seed: 1 }).unwrap();
+        w.begin(&TrajectoryHeader {
+            index: t.index,
+            q0: vec![0.0; n_dof],
+            v0: vec![0.0; n_dof],
+            initial_state: t.initial,
+            seed: 1,
+        })
+        .unwrap();
         let (rows, hops) = rows_of(t, n_states, n_dof, dt, every);
         w.append(t.index, &rows, &hops).unwrap();
         w.set_status(t.index, &t.status).unwrap();
@@ -197,7 +247,10 @@ fn in_memory(trajs: &[Syn], n_states: usize, dt: f64, every: u64) -> Ensemble {
                 steps: rows.iter().map(|r| r.step).collect(),
                 times: rows.iter().map(|r| r.time).collect(),
                 active: rows.iter().map(|r| r.active).collect(),
-                pops: rows.iter().flat_map(|r| r.amplitudes.iter().map(|c| c.norm_sqr())).collect(),
+                pops: rows
+                    .iter()
+                    .flat_map(|r| r.amplitudes.iter().map(|c| c.norm_sqr()))
+                    .collect(),
                 total: rows.iter().map(|r| r.total).collect(),
                 q: Vec::new(),
                 energies: Vec::new(),
@@ -205,7 +258,15 @@ fn in_memory(trajs: &[Syn], n_states: usize, dt: f64, every: u64) -> Ensemble {
             }
         })
         .collect();
-    Ensemble { files: vec![], n_states, n_dof: 1, timestep_au: dt, record_every: every, pending: 0, trajs: ts }
+    Ensemble {
+        files: vec![],
+        n_states,
+        n_dof: 1,
+        timestep_au: dt,
+        record_every: every,
+        pending: 0,
+        trajs: ts,
+    }
 }
 
 /// Time step: 0.5 fs in a.u.; rows every 4 steps (2 fs); 300 fs.
@@ -227,7 +288,15 @@ fn exponential_ensemble(n: usize, tau: f64, t0: f64, seed: u64) -> Vec<Syn> {
         .map(|i| {
             let u: f64 = rng.gen_range(f64::EPSILON..1.0);
             let s = hop_step(t0 - tau * u.ln());
-            Syn { index: i, initial: 1, hops: if s <= LAST { vec![(s, 0)] } else { vec![] }, frustrated: vec![], last: LAST, status: Status::Finished(EndReason::TimeLimit), drift: 0.0 }
+            Syn {
+                index: i,
+                initial: 1,
+                hops: if s <= LAST { vec![(s, 0)] } else { vec![] },
+                frustrated: vec![],
+                last: LAST,
+                status: Status::Finished(EndReason::TimeLimit),
+                drift: 0.0,
+            }
         })
         .collect()
 }
@@ -242,14 +311,29 @@ fn sequential_ensemble(n: usize, tau1: f64, tau2: f64, seed: u64) -> Vec<Syn> {
             let t1 = -tau1 * u1.ln();
             let t2 = t1 - tau2 * u2.ln();
             let (s1, s2) = (hop_step(t1), hop_step(t2).max(hop_step(t1) + 1));
-            let hops: Vec<(u64, usize)> = [(s1, 1), (s2, 0)].into_iter().filter(|h| h.0 <= LAST).collect();
-            Syn { index: i, initial: 2, hops, frustrated: vec![], last: LAST, status: Status::Finished(EndReason::TimeLimit), drift: 0.0 }
+            let hops: Vec<(u64, usize)> = [(s1, 1), (s2, 0)]
+                .into_iter()
+                .filter(|h| h.0 <= LAST)
+                .collect();
+            Syn {
+                index: i,
+                initial: 2,
+                hops,
+                frustrated: vec![],
+                last: LAST,
+                status: Status::Finished(EndReason::TimeLimit),
+                drift: 0.0,
+            }
         })
         .collect()
 }
 
 fn param(rep: &kinetics::FitReport, name: &str) -> (f64, f64, f64) {
-    let p = rep.parameters.iter().find(|p| p.name == name).unwrap_or_else(|| panic!("no {name}"));
+    let p = rep
+        .parameters
+        .iter()
+        .find(|p| p.name == name)
+        .unwrap_or_else(|| panic!("no {name}"));
     (p.value, p.lower95, p.upper95)
 }
 
@@ -279,7 +363,11 @@ fn levenberg_marquardt_recovers_exact_data() {
         200,
     );
     assert!(r.converged);
-    assert!((r.params[0].exp() - 37.0).abs() < 1e-6, "τ = {}", r.params[0].exp());
+    assert!(
+        (r.params[0].exp() - 37.0).abs() < 1e-6,
+        "τ = {}",
+        r.params[0].exp()
+    );
     assert!(r.cost < 1e-20);
 }
 
@@ -295,7 +383,11 @@ fn sequential_model_matches_textbook_solution() {
     let tmax = (k1 / k2).ln() / (k1 - k2);
     let mut out = [0.0; 3];
     m.eval(&[tau1, tau2], tmax, &mut out);
-    assert!((out[1] - (k1 / k2).powf(k2 / (k2 - k1))).abs() < 1e-12, "B(t_max) = {}", out[1]);
+    assert!(
+        (out[1] - (k1 / k2).powf(k2 / (k2 - k1))).abs() < 1e-12,
+        "B(t_max) = {}",
+        out[1]
+    );
     for t in [0.0, 5.0, 50.0, 400.0] {
         m.eval(&[tau1, tau2], t, &mut out);
         assert!((out.iter().sum::<f64>() - 1.0).abs() < 1e-12);
@@ -308,7 +400,11 @@ fn sequential_model_matches_textbook_solution() {
         assert!(side[1] < (k1 / k2).powf(k2 / (k2 - k1)));
     }
     m.eval(&[50.0, 50.0], 50.0, &mut out);
-    assert!((out[1] - (-1.0f64).exp()).abs() < 1e-12, "equal rates: B(τ) = {}", out[1]);
+    assert!(
+        (out[1] - (-1.0f64).exp()).abs() < 1e-12,
+        "equal rates: B(τ) = {}",
+        out[1]
+    );
 }
 
 /// A decay with τ = 40 fs written to a part file: `analyze --fit decay:1`
@@ -324,13 +420,29 @@ fn exponential_lifetime_recovered_from_part_files() {
     let trajs = exponential_ensemble(n, tau, 0.0, 7);
     let part = dir.join("part-0000-of-0001.h5");
     write_part(&part, &trajs, 2, 1, dt(), EVERY);
-    let o = run(&["analyze", dir.to_str().unwrap(), "--fit", "decay:1", "--resamples", "200", "--json", "-q"]);
+    let o = run(&[
+        "analyze",
+        dir.to_str().unwrap(),
+        "--fit",
+        "decay:1",
+        "--resamples",
+        "200",
+        "--json",
+        "-q",
+    ]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: Value = serde_json::from_str(&stdout(&o)).expect("JSON");
     let fit = &v["fits"][0]["parameters"][0];
-    let (est, lo, hi) = (fit["value"].as_f64().unwrap(), fit["lower95"].as_f64().unwrap(), fit["upper95"].as_f64().unwrap());
+    let (est, lo, hi) = (
+        fit["value"].as_f64().unwrap(),
+        fit["lower95"].as_f64().unwrap(),
+        fit["upper95"].as_f64().unwrap(),
+    );
     eprintln!("decay: τ fitted {est:.3} fs [{lo:.3}, {hi:.3}], true {tau}");
-    assert!((est - tau).abs() < 3.0 * tau / (n as f64).sqrt(), "τ = {est}");
+    assert!(
+        (est - tau).abs() < 3.0 * tau / (n as f64).sqrt(),
+        "τ = {est}"
+    );
     assert!(lo < tau && tau < hi, "[{lo}, {hi}]");
     assert!(v["fits"][0]["r_squared"].as_f64().unwrap() > 0.99);
     // Library on the same file gives the same numbers.
@@ -338,18 +450,47 @@ fn exponential_lifetime_recovered_from_part_files() {
         let _f = files();
         flipswarm::analysis::data::load(std::slice::from_ref(&dir), &Default::default()).unwrap()
     };
-    let a = analyse(&ens, &Options { fits: vec![Model::Decay { state: 1, delay: false }], resamples: 200, ..Options::default() }).unwrap();
+    let a = analyse(
+        &ens,
+        &Options {
+            fits: vec![Model::Decay {
+                state: 1,
+                delay: false,
+            }],
+            resamples: 200,
+            ..Options::default()
+        },
+    )
+    .unwrap();
     assert_eq!(param(&a.fits[0], "tau_fs"), (est, lo, hi));
 
     // With a delay.
     let dir2 = scratch("exp_delay");
     let trajs = exponential_ensemble(n, tau, 12.0, 8);
-    write_part(&dir2.join("part-0000-of-0001.h5"), &trajs, 2, 1, dt(), EVERY);
+    write_part(
+        &dir2.join("part-0000-of-0001.h5"),
+        &trajs,
+        2,
+        1,
+        dt(),
+        EVERY,
+    );
     let ens = {
         let _f = files();
         flipswarm::analysis::data::load(&[dir2], &Default::default()).unwrap()
     };
-    let a = analyse(&ens, &Options { fits: vec![Model::Decay { state: 1, delay: true }], resamples: 200, ..Options::default() }).unwrap();
+    let a = analyse(
+        &ens,
+        &Options {
+            fits: vec![Model::Decay {
+                state: 1,
+                delay: true,
+            }],
+            resamples: 200,
+            ..Options::default()
+        },
+    )
+    .unwrap();
     let (t_est, t_lo, t_hi) = param(&a.fits[0], "tau_fs");
     let (d_est, d_lo, d_hi) = param(&a.fits[0], "t0_fs");
     eprintln!("delayed decay: τ {t_est:.3} [{t_lo:.3}, {t_hi:.3}] (true 40), t0 {d_est:.3} [{d_lo:.3}, {d_hi:.3}] (true 12)");
@@ -369,9 +510,24 @@ fn exponential_bootstrap_interval_covers_truth() {
     let mut covered = 0;
     let mut mean = 0.0;
     for rep in 0..100u64 {
-        let ens = in_memory(&exponential_ensemble(200, tau, 0.0, 1000 + rep), 2, dt(), EVERY);
+        let ens = in_memory(
+            &exponential_ensemble(200, tau, 0.0, 1000 + rep),
+            2,
+            dt(),
+            EVERY,
+        );
         let g = Grid::new(&ens, Ended::Hold);
-        let f = kinetics::fit(&g, window_all(&g), &Model::Decay { state: 1, delay: false }, 200, rep).unwrap();
+        let f = kinetics::fit(
+            &g,
+            window_all(&g),
+            &Model::Decay {
+                state: 1,
+                delay: false,
+            },
+            200,
+            rep,
+        )
+        .unwrap();
         let (v, lo, hi) = param(&f, "tau_fs");
         mean += v / 100.0;
         if lo <= tau && tau <= hi {
@@ -392,8 +548,24 @@ fn exponential_bootstrap_interval_covers_truth() {
 fn sequential_lifetimes_recovered_and_covered() {
     let (tau1, tau2) = (30.0, 80.0);
     let dir = scratch("seq_recover");
-    write_part(&dir.join("part-0000-of-0001.h5"), &sequential_ensemble(400, tau1, tau2, 3), 3, 1, dt(), EVERY);
-    let o = run(&["analyze", dir.to_str().unwrap(), "--fit", "seq:2,1,0", "--resamples", "200", "--json", "-q"]);
+    write_part(
+        &dir.join("part-0000-of-0001.h5"),
+        &sequential_ensemble(400, tau1, tau2, 3),
+        3,
+        1,
+        dt(),
+        EVERY,
+    );
+    let o = run(&[
+        "analyze",
+        dir.to_str().unwrap(),
+        "--fit",
+        "seq:2,1,0",
+        "--resamples",
+        "200",
+        "--json",
+        "-q",
+    ]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: Value = serde_json::from_str(&stdout(&o)).expect("JSON");
     let ps = &v["fits"][0]["parameters"];
@@ -404,9 +576,21 @@ fn sequential_lifetimes_recovered_and_covered() {
     assert!((t2 - tau2).abs() < 3.0 * tau2 / 20.0, "τ2 = {t2}");
     let (mut c1, mut c2) = (0, 0);
     for rep in 0..100u64 {
-        let ens = in_memory(&sequential_ensemble(200, tau1, tau2, 5000 + rep), 3, dt(), EVERY);
+        let ens = in_memory(
+            &sequential_ensemble(200, tau1, tau2, 5000 + rep),
+            3,
+            dt(),
+            EVERY,
+        );
         let g = Grid::new(&ens, Ended::Hold);
-        let f = kinetics::fit(&g, window_all(&g), &Model::Sequential { a: 2, b: 1, c: 0 }, 200, rep).unwrap();
+        let f = kinetics::fit(
+            &g,
+            window_all(&g),
+            &Model::Sequential { a: 2, b: 1, c: 0 },
+            200,
+            rep,
+        )
+        .unwrap();
         let (_, l1, h1) = param(&f, "tau1_fs");
         let (_, l2, h2) = param(&f, "tau2_fs");
         c1 += usize::from(l1 <= tau1 && tau1 <= h1);
@@ -425,9 +609,17 @@ fn sequential_lifetimes_recovered_and_covered() {
 /// 15/148 → (0.0624, 0.1605), 0/20 → (0, 0.1611), 1/29 → (0.0061, 0.1718).
 #[test]
 fn wilson_intervals_match_published_examples() {
-    for (k, n, lo, hi) in [(81.0, 263.0, 0.2553, 0.3662), (15.0, 148.0, 0.0624, 0.1605), (0.0, 20.0, 0.0, 0.1611), (1.0, 29.0, 0.0061, 0.1718)] {
+    for (k, n, lo, hi) in [
+        (81.0, 263.0, 0.2553, 0.3662),
+        (15.0, 148.0, 0.0624, 0.1605),
+        (0.0, 20.0, 0.0, 0.1611),
+        (1.0, 29.0, 0.0061, 0.1718),
+    ] {
         let (l, h) = wilson(k, n, Z95);
-        assert!((l - lo).abs() < 6e-5 && (h - hi).abs() < 6e-5, "{k}/{n}: ({l:.5}, {h:.5})");
+        assert!(
+            (l - lo).abs() < 6e-5 && (h - hi).abs() < 6e-5,
+            "{k}/{n}: ({l:.5}, {h:.5})"
+        );
     }
 }
 
@@ -442,20 +634,69 @@ fn wilson_intervals_match_published_examples() {
 fn ended_and_failed_policies_count_as_documented() {
     let fin = Status::Finished(EndReason::TimeLimit);
     let trajs = vec![
-        Syn { index: 0, initial: 1, hops: vec![], frustrated: vec![], last: 12, status: fin.clone(), drift: 0.0 },
-        Syn { index: 1, initial: 1, hops: vec![(3, 0)], frustrated: vec![], last: 8, status: Status::Finished(EndReason::ExitLow), drift: 1e-4 },
-        Syn { index: 2, initial: 1, hops: vec![(6, 0)], frustrated: vec![(2, 0)], last: 12, status: fin, drift: 2e-4 },
-        Syn { index: 3, initial: 1, hops: vec![], frustrated: vec![], last: 4, status: Status::Failed { step: 4, reason: "invented failure".into() }, drift: 5.0 },
+        Syn {
+            index: 0,
+            initial: 1,
+            hops: vec![],
+            frustrated: vec![],
+            last: 12,
+            status: fin.clone(),
+            drift: 0.0,
+        },
+        Syn {
+            index: 1,
+            initial: 1,
+            hops: vec![(3, 0)],
+            frustrated: vec![],
+            last: 8,
+            status: Status::Finished(EndReason::ExitLow),
+            drift: 1e-4,
+        },
+        Syn {
+            index: 2,
+            initial: 1,
+            hops: vec![(6, 0)],
+            frustrated: vec![(2, 0)],
+            last: 12,
+            status: fin,
+            drift: 2e-4,
+        },
+        Syn {
+            index: 3,
+            initial: 1,
+            hops: vec![],
+            frustrated: vec![],
+            last: 4,
+            status: Status::Failed {
+                step: 4,
+                reason: "invented failure".into(),
+            },
+            drift: 5.0,
+        },
     ];
     let ens = in_memory(&trajs, 2, 1.0, 2);
     for (policy, n_end, f1) in [(Ended::Hold, 3, 1.0 / 3.0), (Ended::Drop, 2, 0.5)] {
-        let a = analyse(&ens, &Options { ended: policy, ..Options::default() }).unwrap();
+        let a = analyse(
+            &ens,
+            &Options {
+                ended: policy,
+                ..Options::default()
+            },
+        )
+        .unwrap();
         let p = &a.populations;
         assert_eq!(p.times_fs.len(), 7, "grid 0, 2, …, 12");
         assert_eq!(p.used, vec![3, 3, 3, 3, 3, n_end, n_end], "{policy:?}");
         assert_eq!(p.fraction[0], vec![0.0, 1.0]);
-        assert!((p.fraction[3][1] - 1.0 / 3.0).abs() < 1e-15, "step 6: C and B on 0, A on 1"); // B hopped at 3, C at 6
-        assert!((p.fraction[6][1] - f1).abs() < 1e-15, "{policy:?}: {:?}", p.fraction[6]);
+        assert!(
+            (p.fraction[3][1] - 1.0 / 3.0).abs() < 1e-15,
+            "step 6: C and B on 0, A on 1"
+        ); // B hopped at 3, C at 6
+        assert!(
+            (p.fraction[6][1] - f1).abs() < 1e-15,
+            "{policy:?}: {:?}",
+            p.fraction[6]
+        );
         assert_eq!(p.mean_population[6], p.fraction[6]);
         assert_eq!(a.failed.len(), 1);
         assert_eq!((a.failed[0].trajectory, a.failed[0].step), (3, 4));
@@ -467,7 +708,10 @@ fn ended_and_failed_policies_count_as_documented() {
         assert_eq!(a.energy.worst_trajectory, Some(2));
         // Hops: 2 accepted 1→0, one frustrated 1→0; the failed one not counted.
         assert_eq!(a.hops.pairs.len(), 1);
-        assert_eq!((a.hops.pairs[0].accepted, a.hops.pairs[0].frustrated), (2, 1));
+        assert_eq!(
+            (a.hops.pairs[0].accepted, a.hops.pairs[0].frustrated),
+            (2, 1)
+        );
         assert!((a.hops.pairs[0].mean_abs_gap_ev - units::hartree_to_ev(0.05)).abs() < 1e-12);
         assert_eq!(a.hops.histogram.counts.iter().sum::<usize>(), 2);
     }
@@ -511,7 +755,16 @@ seed = 4242
     )
     .unwrap();
     let out = dir.join("run");
-    let o = run(&["run", ens.to_str().unwrap(), "-o", out.to_str().unwrap(), "--json", "-q", "--threads", "1"]);
+    let o = run(&[
+        "run",
+        ens.to_str().unwrap(),
+        "-o",
+        out.to_str().unwrap(),
+        "--json",
+        "-q",
+        "--threads",
+        "1",
+    ]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let r: Value = serde_json::from_str(&stdout(&o)).unwrap();
     let s = &r["summary"];
@@ -527,14 +780,39 @@ seed = 4242
         let (g, w0) = (got["fraction"].as_f64().unwrap(), w[0].as_f64().unwrap());
         eprintln!("Tully 1 state {k}: analyze {g:.4}, run {w0:.4}");
         assert!((g - w0).abs() < 1e-12, "state {k}: analyze {g}, run {w0}");
-        let (gp, wp) = (got["mean_population"].as_f64().unwrap(), s["mean_populations"][k].as_f64().unwrap());
-        assert!((gp - wp).abs() < 1e-12, "state {k} |c|²: analyze {gp}, run {wp}");
+        let (gp, wp) = (
+            got["mean_population"].as_f64().unwrap(),
+            s["mean_populations"][k].as_f64().unwrap(),
+        );
+        assert!(
+            (gp - wp).abs() < 1e-12,
+            "state {k} |c|²: analyze {gp}, run {wp}"
+        );
         seen_both &= w0 > 0.0;
     }
-    assert!(seen_both, "the test ensemble should populate both states: {want:?}");
-    let acc: u64 = a["hops"]["pairs"].as_array().unwrap().iter().map(|p| p["accepted"].as_u64().unwrap()).sum();
-    let fru: u64 = a["hops"]["pairs"].as_array().unwrap().iter().map(|p| p["frustrated"].as_u64().unwrap()).sum();
-    assert_eq!((acc, fru), (s["hops_accepted"].as_u64().unwrap(), s["hops_frustrated"].as_u64().unwrap()));
+    assert!(
+        seen_both,
+        "the test ensemble should populate both states: {want:?}"
+    );
+    let acc: u64 = a["hops"]["pairs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| p["accepted"].as_u64().unwrap())
+        .sum();
+    let fru: u64 = a["hops"]["pairs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| p["frustrated"].as_u64().unwrap())
+        .sum();
+    assert_eq!(
+        (acc, fru),
+        (
+            s["hops_accepted"].as_u64().unwrap(),
+            s["hops_frustrated"].as_u64().unwrap()
+        )
+    );
 }
 
 // ----------------------------------------------------------------------------
@@ -569,26 +847,74 @@ fn geometry_at_hops_from_part_files() {
         let dir = scratch(&format!("geometry_{every}"));
         let fin = Status::Finished(EndReason::TimeLimit);
         let trajs = vec![
-            Syn { index: 0, initial: 2, hops: vec![(9, 1), (31, 0)], frustrated: vec![(5, 1)], last: 60, status: fin.clone(), drift: 0.0 },
-            Syn { index: 1, initial: 2, hops: vec![(21, 1)], frustrated: vec![], last: 60, status: fin, drift: 0.0 },
+            Syn {
+                index: 0,
+                initial: 2,
+                hops: vec![(9, 1), (31, 0)],
+                frustrated: vec![(5, 1)],
+                last: 60,
+                status: fin.clone(),
+                drift: 0.0,
+            },
+            Syn {
+                index: 1,
+                initial: 2,
+                hops: vec![(21, 1)],
+                frustrated: vec![],
+                last: 60,
+                status: fin,
+                drift: 0.0,
+            },
         ];
-        write_part(&dir.join("part-0000-of-0001.h5"), &trajs, 3, 12, dt(), every);
+        write_part(
+            &dir.join("part-0000-of-0001.h5"),
+            &trajs,
+            3,
+            12,
+            dt(),
+            every,
+        );
         let out = dir.join("out");
-        let o = run(&["analyze", dir.to_str().unwrap(), "--bond", "0,1", "--angle", "0,1,2", "--dihedral", "0,1,2,3", "--out", out.to_str().unwrap(), "--json", "-q"]);
+        let o = run(&[
+            "analyze",
+            dir.to_str().unwrap(),
+            "--bond",
+            "0,1",
+            "--angle",
+            "0,1,2",
+            "--dihedral",
+            "0,1,2,3",
+            "--out",
+            out.to_str().unwrap(),
+            "--json",
+            "-q",
+        ]);
         assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
         let csv = std::fs::read_to_string(out.join("hops.csv")).unwrap();
         let mut lines = csv.lines();
         assert_eq!(lines.next().unwrap(), "trajectory,time_fs,step,from,to,accepted,gap_ev,geometry_step,bond_0_1_angstrom,angle_0_1_2_deg,dihedral_0_1_2_3_deg");
-        let rows: Vec<Vec<String>> = lines.map(|l| l.split(',').map(String::from).collect()).collect();
+        let rows: Vec<Vec<String>> = lines
+            .map(|l| l.split(',').map(String::from).collect())
+            .collect();
         assert_eq!(rows.len(), 4);
         for r in &rows {
             let step: u64 = r[2].parse().unwrap();
-            let nearest = if every == 1 { step } else { ((step as f64 / every as f64).round() as u64) * every };
+            let nearest = if every == 1 {
+                step
+            } else {
+                ((step as f64 / every as f64).round() as u64) * every
+            };
             let used: u64 = r[7].parse().unwrap();
             assert_eq!(used, nearest, "row {r:?}");
             let (d, th, ph) = geometry_at(used);
             let got: Vec<f64> = r[8..11].iter().map(|x| x.parse().unwrap()).collect();
-            assert!((got[0] - d).abs() < 2e-6 && (got[1] - th).abs() < 2e-6 && (got[2] - ph).abs() < 2e-6, "{r:?} vs {:?}", (d, th, ph));
+            assert!(
+                (got[0] - d).abs() < 2e-6
+                    && (got[1] - th).abs() < 2e-6
+                    && (got[2] - ph).abs() < 2e-6,
+                "{r:?} vs {:?}",
+                (d, th, ph)
+            );
         }
     }
 }
@@ -600,7 +926,10 @@ fn geometry_at_hops_from_part_files() {
 fn png_size(bytes: &[u8]) -> (u32, u32) {
     assert_eq!(&bytes[..8], b"\x89PNG\r\n\x1a\n", "PNG signature");
     assert_eq!(&bytes[12..16], b"IHDR");
-    (u32::from_be_bytes(bytes[16..20].try_into().unwrap()), u32::from_be_bytes(bytes[20..24].try_into().unwrap()))
+    (
+        u32::from_be_bytes(bytes[16..20].try_into().unwrap()),
+        u32::from_be_bytes(bytes[20..24].try_into().unwrap()),
+    )
 }
 
 /// `--out` writes tables and figures: every SVG parses as XML with an `svg`
@@ -612,9 +941,30 @@ fn png_size(bytes: &[u8]) -> (u32, u32) {
 #[test]
 fn figures_and_tables_are_valid_files() {
     let dir = scratch("figures");
-    write_part(&dir.join("part-0000-of-0001.h5"), &exponential_ensemble(120, 40.0, 0.0, 11), 2, 1, dt(), EVERY);
+    write_part(
+        &dir.join("part-0000-of-0001.h5"),
+        &exponential_ensemble(120, 40.0, 0.0, 11),
+        2,
+        1,
+        dt(),
+        EVERY,
+    );
     let out = dir.join("out");
-    let args = ["analyze", dir.to_str().unwrap(), "--fit", "decay:1", "--resamples", "50", "--out", out.to_str().unwrap(), "--size", "800x500", "--trajectory", "3", "-q"];
+    let args = [
+        "analyze",
+        dir.to_str().unwrap(),
+        "--fit",
+        "decay:1",
+        "--resamples",
+        "50",
+        "--out",
+        out.to_str().unwrap(),
+        "--size",
+        "800x500",
+        "--trajectory",
+        "3",
+        "-q",
+    ];
     let o = run(&args);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     assert!(stdout(&o).contains("decay of state 1"), "{}", stdout(&o));
@@ -625,7 +975,11 @@ fn figures_and_tables_are_valid_files() {
         assert_eq!(root.tag_name().name(), "svg");
         assert_eq!(root.attribute("width"), Some("800"));
         assert_eq!(root.attribute("height"), Some("500"));
-        let text: String = doc.descendants().filter(|n| n.is_text()).map(|n| n.text().unwrap_or("")).collect();
+        let text: String = doc
+            .descendants()
+            .filter(|n| n.is_text())
+            .map(|n| n.text().unwrap_or(""))
+            .collect();
         assert!(text.contains("time (fs)"), "{name}.svg lacks the x label");
         let png = std::fs::read(out.join(format!("{name}.png"))).unwrap();
         assert_eq!(png_size(&png), (800, 500), "{name}.png");
@@ -635,12 +989,17 @@ fn figures_and_tables_are_valid_files() {
     let pops = std::fs::read_to_string(out.join("populations.csv")).unwrap();
     assert!(pops.starts_with("time_fs,trajectories,fraction_0,fraction_0_lower95,fraction_0_upper95,mean_population_0,fraction_1"));
     assert_eq!(pops.lines().count(), 1 + (LAST / EVERY) as usize + 1);
-    let summary: Value = serde_json::from_str(&std::fs::read_to_string(out.join("summary.json")).unwrap()).unwrap();
+    let summary: Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("summary.json")).unwrap()).unwrap();
     assert_eq!(summary["trajectories_used"], 120);
     let before = std::fs::read(out.join("populations.png")).unwrap();
     let o = run(&args);
     assert_eq!(o.status.code(), Some(2));
-    assert!(stderr(&o).contains("exists") && stderr(&o).contains("--force"), "{}", stderr(&o));
+    assert!(
+        stderr(&o).contains("exists") && stderr(&o).contains("--force"),
+        "{}",
+        stderr(&o)
+    );
     assert_eq!(std::fs::read(out.join("populations.png")).unwrap(), before);
     let mut forced = args.to_vec();
     forced.push("--force");
@@ -659,7 +1018,24 @@ fn selectors_restrict_trajectories_window_and_states() {
     let trajs = exponential_ensemble(120, 40.0, 0.0, 21);
     write_part(&dir.join("part-0000-of-0001.h5"), &trajs, 2, 1, dt(), EVERY);
     let out = dir.join("out");
-    let o = run(&["analyze", dir.to_str().unwrap(), "--trajectories", "0-49", "--from-fs", "10", "--to-fs", "50", "--states", "1", "--ended", "drop", "--json", "-q", "--out", out.to_str().unwrap()]);
+    let o = run(&[
+        "analyze",
+        dir.to_str().unwrap(),
+        "--trajectories",
+        "0-49",
+        "--from-fs",
+        "10",
+        "--to-fs",
+        "50",
+        "--states",
+        "1",
+        "--ended",
+        "drop",
+        "--json",
+        "-q",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
     let v: Value = serde_json::from_str(&stdout(&o)).unwrap();
     assert_eq!(v["trajectories_read"], 50);
@@ -669,16 +1045,34 @@ fn selectors_restrict_trajectories_window_and_states() {
     let fr = v["final_fractions"].as_array().unwrap();
     assert_eq!(fr.len(), 1);
     assert_eq!(fr[0]["state"], 1);
-    let still = trajs[..50].iter().filter(|t| t.hops.first().is_none_or(|h| h.0 as f64 * 0.5 > 50.0)).count();
+    let still = trajs[..50]
+        .iter()
+        .filter(|t| t.hops.first().is_none_or(|h| h.0 as f64 * 0.5 > 50.0))
+        .count();
     assert!((fr[0]["fraction"].as_f64().unwrap() - still as f64 / 50.0).abs() < 1e-15);
-    let in_window = trajs[..50].iter().flat_map(|t| &t.hops).filter(|h| (10.0..=50.0).contains(&(h.0 as f64 * 0.5))).count();
-    let acc: u64 = v["hops"]["pairs"].as_array().unwrap().iter().map(|p| p["accepted"].as_u64().unwrap()).sum();
+    let in_window = trajs[..50]
+        .iter()
+        .flat_map(|t| &t.hops)
+        .filter(|h| (10.0..=50.0).contains(&(h.0 as f64 * 0.5)))
+        .count();
+    let acc: u64 = v["hops"]["pairs"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| p["accepted"].as_u64().unwrap())
+        .sum();
     assert_eq!(acc as usize, in_window);
     let csv = std::fs::read_to_string(out.join("populations.csv")).unwrap();
-    let times: Vec<f64> = csv.lines().skip(1).map(|l| l.split(',').next().unwrap().parse().unwrap()).collect();
+    let times: Vec<f64> = csv
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap().parse().unwrap())
+        .collect();
     assert_eq!(times.len(), 21, "10, 12, …, 50 fs");
     assert_eq!((times[0], times[20]), (10.0, 50.0));
-    assert!(csv.lines().next().unwrap().ends_with("mean_population_1") && !csv.contains("fraction_0"));
+    assert!(
+        csv.lines().next().unwrap().ends_with("mean_population_1") && !csv.contains("fraction_0")
+    );
 }
 
 // ----------------------------------------------------------------------------
@@ -707,38 +1101,84 @@ fn refused(args: &[&str], needles: &[&str]) {
 fn bad_input_is_refused_with_exit_code_2() {
     let dir = scratch("bad");
     let missing = dir.join("nope.h5");
-    refused(&["analyze", missing.to_str().unwrap()], &["nope.h5", "no such file"]);
+    refused(
+        &["analyze", missing.to_str().unwrap()],
+        &["nope.h5", "no such file"],
+    );
     let empty_dir = dir.join("empty_dir");
     std::fs::create_dir_all(&empty_dir).unwrap();
-    refused(&["analyze", empty_dir.to_str().unwrap()], &["empty_dir", "no part files"]);
+    refused(
+        &["analyze", empty_dir.to_str().unwrap()],
+        &["empty_dir", "no part files"],
+    );
     // Trajectories listed but none begun.
     let empty = dir.join("empty.h5");
     {
         let _f = files();
-        PartWriter::create(&empty, &meta(2, 1, vec![0, 1], dt())).unwrap().close().unwrap();
+        PartWriter::create(&empty, &meta(2, 1, vec![0, 1], dt()))
+            .unwrap()
+            .close()
+            .unwrap();
     }
-    refused(&["analyze", empty.to_str().unwrap()], &["empty.h5", "empty"]);
+    refused(
+        &["analyze", empty.to_str().unwrap()],
+        &["empty.h5", "empty"],
+    );
     // Mismatched state counts.
     let two = dir.join("two.h5");
     let three = dir.join("three.h5");
     let fin = Status::Finished(EndReason::TimeLimit);
-    let one = |i| vec![Syn { index: i, initial: 1, hops: vec![], frustrated: vec![], last: 40, status: fin.clone(), drift: 0.0 }];
+    let one = |i| {
+        vec![Syn {
+            index: i,
+            initial: 1,
+            hops: vec![],
+            frustrated: vec![],
+            last: 40,
+            status: fin.clone(),
+            drift: 0.0,
+        }]
+    };
     write_part(&two, &one(0), 2, 12, dt(), EVERY);
     write_part(&three, &one(1), 3, 12, dt(), EVERY);
-    refused(&["analyze", two.to_str().unwrap(), three.to_str().unwrap()], &["three.h5", "3 electronic states", "two.h5", "2"]);
+    refused(
+        &["analyze", two.to_str().unwrap(), three.to_str().unwrap()],
+        &["three.h5", "3 electronic states", "two.h5", "2"],
+    );
     let p = two.to_str().unwrap();
-    refused(&["analyze", p, "--from-fs", "5000"], &["--from-fs", "outside the data"]);
-    refused(&["analyze", p, "--from-fs", "10", "--to-fs", "5"], &["--from-fs", "--to-fs"]);
-    refused(&["analyze", p, "--bond", "0,7"], &["--bond 0,7", "atom index 7", "4 atoms"]);
-    refused(&["analyze", p, "--dihedral", "0,1,2"], &["--dihedral", "4 atom indices"]);
+    refused(
+        &["analyze", p, "--from-fs", "5000"],
+        &["--from-fs", "outside the data"],
+    );
+    refused(
+        &["analyze", p, "--from-fs", "10", "--to-fs", "5"],
+        &["--from-fs", "--to-fs"],
+    );
+    refused(
+        &["analyze", p, "--bond", "0,7"],
+        &["--bond 0,7", "atom index 7", "4 atoms"],
+    );
+    refused(
+        &["analyze", p, "--dihedral", "0,1,2"],
+        &["--dihedral", "4 atom indices"],
+    );
     refused(&["analyze", p, "--states", "0,5"], &["--states", "state 5"]);
     refused(&["analyze", p, "--fit", "decay:4"], &["--fit", "state 4"]);
-    refused(&["analyze", p, "--fit", "exponential"], &["--fit", "decay:STATE"]);
+    refused(
+        &["analyze", p, "--fit", "exponential"],
+        &["--fit", "decay:STATE"],
+    );
     refused(&["analyze", p, "--trajectory", "9"], &["--trajectory 9"]);
-    refused(&["analyze", p, "--trajectories", "5-9"], &["two.h5", "--trajectories"]);
+    refused(
+        &["analyze", p, "--trajectories", "5-9"],
+        &["two.h5", "--trajectories"],
+    );
     refused(&["analyze", p, "--size", "10x10"], &["--size"]);
     // Coordinates that are not atoms.
     let odd = dir.join("odd.h5");
     write_part(&odd, &one(0), 2, 5, dt(), EVERY);
-    refused(&["analyze", odd.to_str().unwrap(), "--angle", "0,1,2"], &["--angle 0,1,2", "5 coordinates", "multiple of 3"]);
+    refused(
+        &["analyze", odd.to_str().unwrap(), "--angle", "0,1,2"],
+        &["--angle 0,1,2", "5 coordinates", "multiple of 3"],
+    );
 }

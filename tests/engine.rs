@@ -1,7 +1,10 @@
 //! The engine's numerical kernels against analytic results.
 
 use flipswarm::dynamics::amplitudes::StepCoupling;
-use flipswarm::dynamics::{DecoherenceScheme, FrustratedHops, HopDirection, Observer, Flow, RecordKind, Settings, StepRecord, Trajectory};
+use flipswarm::dynamics::{
+    DecoherenceScheme, Flow, FrustratedHops, HopDirection, Observer, RecordKind, Settings,
+    StepRecord, Trajectory,
+};
 use flipswarm::electronic::models::{DiabaticBackend, Harmonic, Morse};
 use nalgebra::DMatrix;
 use num_complex::Complex64;
@@ -38,10 +41,25 @@ impl Observer for Track {
 }
 
 fn run_oscillator(dt: f64, max_time: f64) -> Track {
-    let model = Harmonic { masses: vec![1.0], omegas: vec![1.0], centres: vec![0.0] };
+    let model = Harmonic {
+        masses: vec![1.0],
+        omegas: vec![1.0],
+        centres: vec![0.0],
+    };
     let mut backend = DiabaticBackend::new(model);
-    let mut t = Trajectory::start(&mut backend, settings(dt, max_time), vec![1.0], vec![0.0], 0, ChaCha20Rng::seed_from_u64(1)).unwrap();
-    let mut track = Track { q: vec![], e: vec![] };
+    let mut t = Trajectory::start(
+        &mut backend,
+        settings(dt, max_time),
+        vec![1.0],
+        vec![0.0],
+        0,
+        ChaCha20Rng::seed_from_u64(1),
+    )
+    .unwrap();
+    let mut track = Track {
+        q: vec![],
+        e: vec![],
+    };
     t.run(&mut track).unwrap();
     track
 }
@@ -61,7 +79,10 @@ fn verlet_is_second_order_on_the_harmonic_oscillator() {
     }
     for w in errors.windows(2) {
         let ratio = w[0] / w[1];
-        assert!((ratio - 4.0).abs() < 0.1, "error ratio {ratio} (errors {errors:?})");
+        assert!(
+            (ratio - 4.0).abs() < 0.1,
+            "error ratio {ratio} (errors {errors:?})"
+        );
     }
 }
 
@@ -81,7 +102,10 @@ fn verlet_energy_error_is_bounded_over_ten_thousand_periods() {
     assert!(max_all < dt * dt * e0, "max energy error {max_all}");
     let first = err[..n / 10].iter().cloned().fold(0.0, f64::max);
     let last = err[n - n / 10..].iter().cloned().fold(0.0, f64::max);
-    assert!(last < 1.05 * first, "energy error grows: first {first}, last {last}");
+    assert!(
+        last < 1.05 * first,
+        "energy error grows: first {first}, last {last}"
+    );
 }
 
 /// Morse oscillator: energy is conserved to O(Δt²) as well (anharmonic case,
@@ -89,10 +113,26 @@ fn verlet_energy_error_is_bounded_over_ten_thousand_periods() {
 #[test]
 fn verlet_energy_on_a_morse_oscillator_scales_with_dt_squared() {
     let worst = |dt: f64| {
-        let model = Morse { mass: 1836.0, depth: 0.17, alpha: 1.0, r_eq: 1.4 };
+        let model = Morse {
+            mass: 1836.0,
+            depth: 0.17,
+            alpha: 1.0,
+            r_eq: 1.4,
+        };
         let mut backend = DiabaticBackend::new(model);
-        let mut t = Trajectory::start(&mut backend, settings(dt, 3000.0), vec![1.9], vec![0.0], 0, ChaCha20Rng::seed_from_u64(1)).unwrap();
-        let mut track = Track { q: vec![], e: vec![] };
+        let mut t = Trajectory::start(
+            &mut backend,
+            settings(dt, 3000.0),
+            vec![1.9],
+            vec![0.0],
+            0,
+            ChaCha20Rng::seed_from_u64(1),
+        )
+        .unwrap();
+        let mut track = Track {
+            q: vec![],
+            e: vec![],
+        };
         t.run(&mut track).unwrap();
         let e0 = track.e[0];
         track.e.iter().map(|e| (e - e0).abs()).fold(0.0, f64::max)
@@ -125,7 +165,10 @@ fn amplitudes_follow_the_rabi_formula() {
         let exact = amp * (0.5 * omega * t).sin().powi(2);
         worst = worst.max((c[1].norm_sqr() - exact).abs());
     }
-    assert!(worst < 1e-8, "largest deviation from the Rabi formula {worst:e}");
+    assert!(
+        worst < 1e-8,
+        "largest deviation from the Rabi formula {worst:e}"
+    );
 }
 
 /// The propagator is unitary: the norm stays 1 to 1e-10 over 10⁵ steps
@@ -140,7 +183,14 @@ fn amplitude_norm_is_preserved_over_1e5_steps() {
     let mut c = vec![Complex64::new(0.6, 0.0), Complex64::new(0.0, 0.8)];
     for k in 0..100_000 {
         let x = k as f64 * 1e-3;
-        sc.propagate(&mut c, &[x.sin() * 0.1, 0.2], &[(x + 1e-3).sin() * 0.1, 0.21], 0.5, 10, 0);
+        sc.propagate(
+            &mut c,
+            &[x.sin() * 0.1, 0.2],
+            &[(x + 1e-3).sin() * 0.1, 0.21],
+            0.5,
+            10,
+            0,
+        );
     }
     let norm: f64 = c.iter().map(|z| z.norm_sqr()).sum();
     assert!((norm - 1.0).abs() < 1e-10, "norm {norm}");
@@ -152,10 +202,28 @@ fn amplitude_norm_is_preserved_over_1e5_steps() {
 fn three_state_coupling_moves_population_only_between_coupled_states() {
     let theta: f64 = 0.02;
     // States 1 and 2 rotate into each other; state 0 is uncoupled.
-    let s = DMatrix::from_row_slice(3, 3, &[1.0, 0.0, 0.0, 0.0, theta.cos(), -theta.sin(), 0.0, theta.sin(), theta.cos()]);
+    let s = DMatrix::from_row_slice(
+        3,
+        3,
+        &[
+            1.0,
+            0.0,
+            0.0,
+            0.0,
+            theta.cos(),
+            -theta.sin(),
+            0.0,
+            theta.sin(),
+            theta.cos(),
+        ],
+    );
     let mut phases = vec![1.0; 3];
     let sc = StepCoupling::from_overlaps(&s, &mut phases, 1.0, 5).unwrap();
-    let mut c = vec![Complex64::new(0.0, 0.0), Complex64::new(1.0, 0.0), Complex64::new(0.0, 0.0)];
+    let mut c = vec![
+        Complex64::new(0.0, 0.0),
+        Complex64::new(1.0, 0.0),
+        Complex64::new(0.0, 0.0),
+    ];
     let e = [-0.1, 0.0, 0.0];
     for _ in 0..40 {
         sc.propagate(&mut c, &e, &e, 1.0, 5, 1);
@@ -176,7 +244,10 @@ impl Observer for Spectator {
         if r.kind != RecordKind::End {
             self.qv.push((r.state.q[self.k], r.state.v[self.k]));
             if let Some(h) = r.hop.filter(|h| h.accepted) {
-                assert!((h.kinetic_after - h.kinetic_before + h.gap).abs() < 1e-12, "the hop does not conserve energy: {h:?}");
+                assert!(
+                    (h.kinetic_after - h.kinetic_before + h.gap).abs() < 1e-12,
+                    "the hop does not conserve energy: {h:?}"
+                );
                 self.accepted_hops += 1;
             }
         }
@@ -199,7 +270,9 @@ fn gradient_difference_hops_leave_a_spectator_mode_alone() {
     let text = "frequencies_ev = [0.10, 0.15, 0.12]\nvertical_ev = [0.0, 0.25]\n\
         [[gradient]]\nstate = 1\nmode = 0\nvalue_ev = -0.15\n[[coupling]]\nstates = [0, 1]\nmode = 1\nvalue_ev = 0.06\n";
     // No coupling and states 100 eV apart: no hop, not even a trivial crossing.
-    let uncoupled = text.replace("value_ev = 0.06", "value_ev = 0.0").replace("[0.0, 0.25]", "[0.0, 100.0]");
+    let uncoupled = text
+        .replace("value_ev = 0.06", "value_ev = 0.0")
+        .replace("[0.0, 0.25]", "[0.0, 100.0]");
     let q0 = vec![0.0, 0.0, 9.0];
     let v0 = vec![0.004, 0.002, -0.003];
     let dt = 2.0;
@@ -208,8 +281,20 @@ fn gradient_difference_hops_leave_a_spectator_mode_alone() {
         let mut s = settings(dt, 3000.0);
         s.hop_direction = direction;
         s.substeps = 10;
-        let mut t = Trajectory::start(&mut backend, s, q0.clone(), v0.clone(), 1, ChaCha20Rng::seed_from_u64(seed)).unwrap();
-        let mut obs = Spectator { k: 2, qv: vec![], accepted_hops: 0 };
+        let mut t = Trajectory::start(
+            &mut backend,
+            s,
+            q0.clone(),
+            v0.clone(),
+            1,
+            ChaCha20Rng::seed_from_u64(seed),
+        )
+        .unwrap();
+        let mut obs = Spectator {
+            k: 2,
+            qv: vec![],
+            accepted_hops: 0,
+        };
         t.run(&mut obs).unwrap();
         obs
     };
@@ -222,12 +307,29 @@ fn gradient_difference_hops_leave_a_spectator_mode_alone() {
             continue;
         }
         tried += 1;
-        let worst = gd.qv.iter().zip(&reference.qv).map(|(a, b)| (a.0 - b.0).abs().max((a.1 - b.1).abs())).fold(0.0, f64::max);
-        assert!(worst < 1e-12, "seed {seed}: {} hops moved the spectator by {worst:e}", gd.accepted_hops);
+        let worst = gd
+            .qv
+            .iter()
+            .zip(&reference.qv)
+            .map(|(a, b)| (a.0 - b.0).abs().max((a.1 - b.1).abs()))
+            .fold(0.0, f64::max);
+        assert!(
+            worst < 1e-12,
+            "seed {seed}: {} hops moved the spectator by {worst:e}",
+            gd.accepted_hops
+        );
         let vr = run(text, HopDirection::Velocity, seed);
         if vr.accepted_hops > 0 {
-            let moved = vr.qv.iter().zip(&reference.qv).map(|(a, b)| (a.1 - b.1).abs()).fold(0.0, f64::max);
-            assert!(moved > 1e-8, "seed {seed}: velocity rescaling left the spectator alone");
+            let moved = vr
+                .qv
+                .iter()
+                .zip(&reference.qv)
+                .map(|(a, b)| (a.1 - b.1).abs())
+                .fold(0.0, f64::max);
+            assert!(
+                moved > 1e-8,
+                "seed {seed}: velocity rescaling left the spectator alone"
+            );
         }
     }
     assert!(tried >= 3, "only {tried} of 5 seeds hopped");

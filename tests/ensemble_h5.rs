@@ -7,8 +7,12 @@ use std::process::Command;
 use std::sync::{RwLock, RwLockReadGuard, RwLockWriteGuard};
 
 use flipswarm::dynamics::EndReason;
-use flipswarm::ensemble::h5::{merge, Counts, EnsembleError, PartReader, PartWriter, Phase, TrajectoryData, WriterState};
-use flipswarm::ensemble::record::{Hop, PartMeta, RowDiagnostics, Status, StepRow, TrajectoryHeader, WarningRow};
+use flipswarm::ensemble::h5::{
+    merge, Counts, EnsembleError, PartReader, PartWriter, Phase, TrajectoryData, WriterState,
+};
+use flipswarm::ensemble::record::{
+    Hop, PartMeta, RowDiagnostics, Status, StepRow, TrajectoryHeader, WarningRow,
+};
 use num_complex::Complex64;
 
 const N_STATES: usize = 3;
@@ -35,7 +39,9 @@ fn spawning() -> RwLockWriteGuard<'static, ()> {
 
 /// A fresh, empty directory for one test.
 fn scratch(name: &str) -> PathBuf {
-    let dir = Path::new(env!("CARGO_TARGET_TMPDIR")).join("ensemble_h5").join(name);
+    let dir = Path::new(env!("CARGO_TARGET_TMPDIR"))
+        .join("ensemble_h5")
+        .join(name);
     let _ = std::fs::remove_dir_all(&dir);
     std::fs::create_dir_all(&dir).unwrap();
     dir
@@ -43,7 +49,9 @@ fn scratch(name: &str) -> PathBuf {
 
 fn meta(slice: (usize, usize), trajectories: Vec<usize>) -> PartMeta {
     PartMeta {
-        config_toml: "[model]\nkind = \"tully_simple\"\n\n[run]\ntrajectories = 12\ntimestep_au = 0.5\n".into(),
+        config_toml:
+            "[model]\nkind = \"tully_simple\"\n\n[run]\ntrajectories = 12\ntimestep_au = 0.5\n"
+                .into(),
         program_version: "0.1.0".into(),
         created: "2024-05-01T12:00:00Z".into(),
         n_states: N_STATES,
@@ -75,7 +83,11 @@ impl Bits {
             1 => f64::from_bits(x >> 20), // subnormal
             _ => {
                 let v = f64::from_bits(x);
-                if v.is_finite() { v } else { f64::from_bits(x & !(1 << 62)) }
+                if v.is_finite() {
+                    v
+                } else {
+                    f64::from_bits(x & !(1 << 62))
+                }
             }
         }
     }
@@ -83,7 +95,13 @@ impl Bits {
 
 fn header(index: usize) -> TrajectoryHeader {
     let mut b = Bits(0x9e37_79b9_7f4a_7c15 ^ index as u64);
-    TrajectoryHeader { index, q0: (0..N_DOF).map(|_| b.f64()).collect(), v0: (0..N_DOF).map(|_| b.f64()).collect(), initial_state: index % N_STATES, seed: 0xdead_beef_0000 + index as u64 }
+    TrajectoryHeader {
+        index,
+        q0: (0..N_DOF).map(|_| b.f64()).collect(),
+        v0: (0..N_DOF).map(|_| b.f64()).collect(),
+        initial_state: index % N_STATES,
+        seed: 0xdead_beef_0000 + index as u64,
+    }
 }
 
 /// `n` rows of trajectory `index` starting at step `first`; `salt` changes the values.
@@ -126,14 +144,39 @@ fn hops(n: usize, first_step: u64) -> Vec<Hop> {
 
 /// Every f64 and integer of a row as bits, so −0.0 and 0.0 differ.
 fn row_bits(r: &StepRow) -> Vec<u64> {
-    let mut v = vec![r.step, r.time.to_bits(), u64::from(r.active), r.kinetic.to_bits(), r.potential.to_bits(), r.total.to_bits()];
-    v.extend(r.q.iter().chain(&r.v).chain(&r.energies).map(|x| x.to_bits()));
-    v.extend(r.amplitudes.iter().flat_map(|z| [z.re.to_bits(), z.im.to_bits()]));
+    let mut v = vec![
+        r.step,
+        r.time.to_bits(),
+        u64::from(r.active),
+        r.kinetic.to_bits(),
+        r.potential.to_bits(),
+        r.total.to_bits(),
+    ];
+    v.extend(
+        r.q.iter()
+            .chain(&r.v)
+            .chain(&r.energies)
+            .map(|x| x.to_bits()),
+    );
+    v.extend(
+        r.amplitudes
+            .iter()
+            .flat_map(|z| [z.re.to_bits(), z.im.to_bits()]),
+    );
     v
 }
 
 fn hop_bits(h: &Hop) -> Vec<u64> {
-    vec![h.step, h.time.to_bits(), h.from as u64, h.to as u64, u64::from(h.accepted), h.gap.to_bits(), h.kinetic_before.to_bits(), h.kinetic_after.to_bits()]
+    vec![
+        h.step,
+        h.time.to_bits(),
+        h.from as u64,
+        h.to as u64,
+        u64::from(h.accepted),
+        h.gap.to_bits(),
+        h.kinetic_before.to_bits(),
+        h.kinetic_after.to_bits(),
+    ]
 }
 
 fn assert_rows_exact(got: &[StepRow], want: &[StepRow]) {
@@ -161,7 +204,15 @@ fn diags(index: usize, n: usize) -> Vec<RowDiagnostics> {
                 RowDiagnostics {
                     iterations: (7 + k + index) as i32,
                     response_iterations: if k % 2 == 0 { -1 } else { (k % 11) as i32 },
-                    spin_squared: (0..N_STATES).map(|s| if s == 1 { f64::NAN } else { 0.001 * k as f64 + s as f64 * 2.0 }).collect(),
+                    spin_squared: (0..N_STATES)
+                        .map(|s| {
+                            if s == 1 {
+                                f64::NAN
+                            } else {
+                                0.001 * k as f64 + s as f64 * 2.0
+                            }
+                        })
+                        .collect(),
                 }
             }
         })
@@ -170,7 +221,12 @@ fn diags(index: usize, n: usize) -> Vec<RowDiagnostics> {
 
 /// A few warnings of trajectory `index`, with non-ASCII text.
 fn warnings(index: usize) -> Vec<WarningRow> {
-    (0..index % 3 + 1).map(|k| WarningRow { step: 5 * k as u64 + 1, text: format!("solver stalled ({k}); ⟨S²⟩ = 2.1 for trajectory {index}") }).collect()
+    (0..index % 3 + 1)
+        .map(|k| WarningRow {
+            step: 5 * k as u64 + 1,
+            text: format!("solver stalled ({k}); ⟨S²⟩ = 2.1 for trajectory {index}"),
+        })
+        .collect()
 }
 
 fn assert_same_data(got: &TrajectoryData, want: &TrajectoryData) {
@@ -178,14 +234,23 @@ fn assert_same_data(got: &TrajectoryData, want: &TrajectoryData) {
     assert_rows_exact(&got.rows, &want.rows);
     assert_hops_exact(&got.hops, &want.hops);
     let bits = |d: &[RowDiagnostics]| d.iter().map(RowDiagnostics::bits).collect::<Vec<_>>();
-    assert_eq!(bits(&got.diagnostics), bits(&want.diagnostics), "diagnostics differ");
+    assert_eq!(
+        bits(&got.diagnostics),
+        bits(&want.diagnostics),
+        "diagnostics differ"
+    );
     assert_eq!(got.warnings, want.warnings, "warnings differ");
     assert_eq!((&got.status, got.phase), (&want.status, want.phase));
 }
 
 /// Writes a closed part holding `indices`, each with `n` rows (in two
 /// batches) and a few hops, all finished; returns what was written.
-fn write_part(path: &Path, slice: (usize, usize), indices: &[usize], n: usize) -> Vec<(TrajectoryHeader, Vec<StepRow>, Vec<Hop>)> {
+fn write_part(
+    path: &Path,
+    slice: (usize, usize),
+    indices: &[usize],
+    n: usize,
+) -> Vec<(TrajectoryHeader, Vec<StepRow>, Vec<Hop>)> {
     let mut w = PartWriter::create(path, &meta(slice, indices.to_vec())).unwrap();
     let mut out = Vec::new();
     for &i in indices {
@@ -194,9 +259,11 @@ fn write_part(path: &Path, slice: (usize, usize), indices: &[usize], n: usize) -
         let r = rows(i, 0, n, 0);
         let hp = hops(i % 4 + 1, 1);
         let d = diags(i, n);
-        w.append_all(i, &r[..n / 3], &d[..n / 3], &hp, &warnings(i)).unwrap();
+        w.append_all(i, &r[..n / 3], &d[..n / 3], &hp, &warnings(i))
+            .unwrap();
         w.append_all(i, &r[n / 3..], &d[n / 3..], &[], &[]).unwrap();
-        w.set_status(i, &Status::Finished(EndReason::TimeLimit)).unwrap();
+        w.set_status(i, &Status::Finished(EndReason::TimeLimit))
+            .unwrap();
         out.push((h, r, hp));
     }
     w.close().unwrap();
@@ -224,23 +291,38 @@ fn round_trip_is_exact() {
     for i in [2, 5, 7] {
         w.begin(&header(i)).unwrap();
     }
-    let mut expected: Vec<(usize, Vec<StepRow>, Vec<Hop>)> = vec![(2, vec![], vec![]), (5, vec![], vec![]), (7, vec![], vec![])];
+    let mut expected: Vec<(usize, Vec<StepRow>, Vec<Hop>)> = vec![
+        (2, vec![], vec![]),
+        (5, vec![], vec![]),
+        (7, vec![], vec![]),
+    ];
     let batches = [3usize, 0, 17, 1, 300, 0, 44];
     let mut step = [0u64; 3];
     for (b, &n) in batches.iter().enumerate() {
         for (slot, (index, all_rows, all_hops)) in expected.iter_mut().enumerate() {
             let n = n + slot; // uneven across trajectories too
             let r = rows(*index, step[slot], n, b as u64);
-            let h = if b % 2 == 0 { hops(b + slot, step[slot]) } else { vec![] };
+            let h = if b % 2 == 0 {
+                hops(b + slot, step[slot])
+            } else {
+                vec![]
+            };
             w.append(*index, &r, &h).unwrap();
             step[slot] += n as u64;
             all_rows.extend(r);
             all_hops.extend(h);
-            assert_eq!(w.counts(*index).unwrap(), (all_rows.len() as u64, all_hops.len() as u64));
+            assert_eq!(
+                w.counts(*index).unwrap(),
+                (all_rows.len() as u64, all_hops.len() as u64)
+            );
         }
     }
-    w.set_status(2, &Status::Finished(EndReason::ExitHigh)).unwrap();
-    let failure = Status::Failed { step: 42, reason: "total energy drifted by 3.1e-2 hartree (limit 1e-2)".into() };
+    w.set_status(2, &Status::Finished(EndReason::ExitHigh))
+        .unwrap();
+    let failure = Status::Failed {
+        step: 42,
+        reason: "total energy drifted by 3.1e-2 hartree (limit 1e-2)".into(),
+    };
     w.set_status(5, &failure).unwrap();
     w.mark_stopped(7).unwrap();
     w.close().unwrap();
@@ -253,26 +335,54 @@ fn round_trip_is_exact() {
     for (index, all_rows, all_hops) in &expected {
         let d = r.read(*index).unwrap();
         assert_eq!(d.header, header(*index));
-        assert_eq!(d.header.q0.iter().map(|x| x.to_bits()).collect::<Vec<_>>(), header(*index).q0.iter().map(|x| x.to_bits()).collect::<Vec<_>>());
+        assert_eq!(
+            d.header.q0.iter().map(|x| x.to_bits()).collect::<Vec<_>>(),
+            header(*index)
+                .q0
+                .iter()
+                .map(|x| x.to_bits())
+                .collect::<Vec<_>>()
+        );
         assert_rows_exact(&d.rows, all_rows);
         assert_hops_exact(&d.hops, all_hops);
         let s = r.summary(*index).unwrap();
-        assert_eq!((s.steps, s.hops), (all_rows.len() as u64, all_hops.len() as u64));
-        assert_eq!(s.last_time.map(f64::to_bits), all_rows.last().map(|x| x.time.to_bits()));
+        assert_eq!(
+            (s.steps, s.hops),
+            (all_rows.len() as u64, all_hops.len() as u64)
+        );
+        assert_eq!(
+            s.last_time.map(f64::to_bits),
+            all_rows.last().map(|x| x.time.to_bits())
+        );
         assert_eq!(s.active_state, all_rows.last().map(|x| x.active));
         let e0 = all_rows[0].total;
-        let drift = all_rows.iter().map(|x| (x.total - e0).abs()).fold(0.0, f64::max);
+        let drift = all_rows
+            .iter()
+            .map(|x| (x.total - e0).abs())
+            .fold(0.0, f64::max);
         assert_eq!(s.max_energy_drift.to_bits(), drift.to_bits());
         assert!(s.max_energy_drift > 0.0);
     }
     let (d2, d5, d7) = (r.read(2).unwrap(), r.read(5).unwrap(), r.read(7).unwrap());
-    assert_eq!((d2.status, d2.phase), (Status::Finished(EndReason::ExitHigh), Phase::Finished));
-    assert_eq!((d5.status.clone(), d5.phase), (failure.clone(), Phase::Failed));
+    assert_eq!(
+        (d2.status, d2.phase),
+        (Status::Finished(EndReason::ExitHigh), Phase::Finished)
+    );
+    assert_eq!(
+        (d5.status.clone(), d5.phase),
+        (failure.clone(), Phase::Failed)
+    );
     assert_eq!((d7.status, d7.phase), (Status::Running, Phase::Stopped));
-    assert_eq!(r.summary(5).unwrap().failure_reason.as_deref(), Some("total energy drifted by 3.1e-2 hartree (limit 1e-2)"));
+    assert_eq!(
+        r.summary(5).unwrap().failure_reason.as_deref(),
+        Some("total energy drifted by 3.1e-2 hartree (limit 1e-2)")
+    );
     assert_eq!(r.summary(2).unwrap().failure_reason, None);
     let missing = message(r.read(11).unwrap_err());
-    assert!(missing.contains("part.h5") && missing.contains("/trajectories/000011"), "{missing}");
+    assert!(
+        missing.contains("part.h5") && missing.contains("/trajectories/000011"),
+        "{missing}"
+    );
 }
 
 /// Shows that rows and hops that do not fit the file are refused before
@@ -287,7 +397,13 @@ fn bad_rows_are_refused_and_nothing_is_written() {
     let mut batch = rows(0, 0, 5, 0);
     batch[3].energies.pop();
     let e = message(w.append(0, &batch, &[]).unwrap_err());
-    assert!(e.contains("part.h5") && e.contains("/trajectories/000000") && e.contains("row 3") && e.contains("energies"), "{e}");
+    assert!(
+        e.contains("part.h5")
+            && e.contains("/trajectories/000000")
+            && e.contains("row 3")
+            && e.contains("energies"),
+        "{e}"
+    );
     let mut bad_hop = hops(1, 0);
     bad_hop[0].to = N_STATES;
     assert!(message(w.append(0, &rows(0, 0, 2, 0), &bad_hop).unwrap_err()).contains("hop 0"));
@@ -297,7 +413,9 @@ fn bad_rows_are_refused_and_nothing_is_written() {
     w.close().unwrap();
     let mut bad = meta((0, 1), vec![0]);
     bad.masses.pop();
-    assert!(message(PartWriter::create(&dir.join("other.h5"), &bad).unwrap_err()).contains("masses"));
+    assert!(
+        message(PartWriter::create(&dir.join("other.h5"), &bad).unwrap_err()).contains("masses")
+    );
 }
 
 // ----------------------------------------------------------------------------
@@ -320,11 +438,18 @@ fn truncate_discards_rows_after_a_checkpoint() {
     w.truncate(3, 60, 2).unwrap();
     assert_eq!(w.counts(3).unwrap(), (60, 2));
     let again = rows(3, 60, 40, 99);
-    assert_ne!(row_bits(&again[0]), row_bits(&first[60]), "the new rows must differ from the discarded ones");
+    assert_ne!(
+        row_bits(&again[0]),
+        row_bits(&first[60]),
+        "the new rows must differ from the discarded ones"
+    );
     let again_hops = hops(3, 70);
     w.append(3, &again, &again_hops).unwrap();
     let e = message(w.truncate(3, 101, 0).unwrap_err());
-    assert!(e.contains("cannot truncate to 101 rows") && e.contains("only 100"), "{e}");
+    assert!(
+        e.contains("cannot truncate to 101 rows") && e.contains("only 100"),
+        "{e}"
+    );
     w.close().unwrap();
 
     let d = PartReader::open(&path).unwrap().read(3).unwrap();
@@ -363,7 +488,8 @@ fn open_existing_resumes_and_create_refuses_to_overwrite() {
     w.begin(&header(4)).unwrap();
     let b = rows(4, 10, 5, 0);
     w.append(4, &b, &[]).unwrap();
-    w.set_status(4, &Status::Finished(EndReason::ExitLow)).unwrap();
+    w.set_status(4, &Status::Finished(EndReason::ExitLow))
+        .unwrap();
     w.close().unwrap();
 
     let r = PartReader::open(&path).unwrap();
@@ -378,7 +504,11 @@ fn open_existing_resumes_and_create_refuses_to_overwrite() {
     let e = PartWriter::create(&path, &m).unwrap_err();
     assert!(matches!(e, EnsembleError::Exists { .. }), "{e}");
     assert!(message(e).contains("part.h5"));
-    assert_eq!(std::fs::read(&path).unwrap(), before, "the refused create must not touch the file");
+    assert_eq!(
+        std::fs::read(&path).unwrap(),
+        before,
+        "the refused create must not touch the file"
+    );
     let e = message(PartWriter::open_existing(&dir.join("absent.h5")).unwrap_err());
     assert!(e.contains("absent.h5") && e.contains("no such file"), "{e}");
 }
@@ -392,7 +522,8 @@ fn open_existing_resumes_and_create_refuses_to_overwrite() {
 #[test]
 #[ignore = "child process of killed_writer_is_detected"]
 fn killed_writer_child() {
-    let path = PathBuf::from(std::env::var(CHILD_ENV).expect("run by killed_writer_is_detected only"));
+    let path =
+        PathBuf::from(std::env::var(CHILD_ENV).expect("run by killed_writer_is_detected only"));
     let mut w = PartWriter::create(&path, &meta((1, 2), vec![1, 3])).unwrap();
     w.begin(&header(1)).unwrap();
     w.append(1, &rows(1, 0, 50, 0), &hops(2, 0)).unwrap();
@@ -409,7 +540,12 @@ fn killed_writer_is_detected() {
     let killed = dir.join("killed-part.h5");
     let guard = spawning();
     let status = Command::new(std::env::current_exe().unwrap())
-        .args(["--ignored", "--exact", "killed_writer_child", "--test-threads=1"])
+        .args([
+            "--ignored",
+            "--exact",
+            "killed_writer_child",
+            "--test-threads=1",
+        ])
         .env(CHILD_ENV, &killed)
         .stdout(std::process::Stdio::null())
         .stderr(std::process::Stdio::null())
@@ -434,19 +570,28 @@ fn killed_writer_is_detected() {
     let e = merge(&[good.clone(), killed.clone()], &out).unwrap_err();
     assert!(matches!(e, EnsembleError::NotClosed { .. }), "{e}");
     let e = message(e);
-    assert!(e.contains("killed-part.h5") && e.contains("writer_state"), "{e}");
+    assert!(
+        e.contains("killed-part.h5") && e.contains("writer_state"),
+        "{e}"
+    );
     assert!(!out.exists(), "a refused merge must not leave an output");
 
     // In-process variant: dropping a writer without close leaves "open" too.
     let dropped = dir.join("dropped.h5");
     let w = PartWriter::create(&dropped, &meta((0, 1), vec![0])).unwrap();
     drop(w);
-    assert_eq!(PartReader::open(&dropped).unwrap().writer_state(), WriterState::Open);
+    assert_eq!(
+        PartReader::open(&dropped).unwrap().writer_state(),
+        WriterState::Open
+    );
 
     // Resume path: reopen, close cleanly; merge then accepts it.
     let (w, _) = PartWriter::open_existing(&killed).unwrap();
     w.close().unwrap();
-    assert_eq!(PartReader::open(&killed).unwrap().writer_state(), WriterState::Closed);
+    assert_eq!(
+        PartReader::open(&killed).unwrap().writer_state(),
+        WriterState::Closed
+    );
     let report = merge(&[good, killed], &out).unwrap();
     assert_eq!((report.trajectories, report.rows), (3, 60));
 }
@@ -471,8 +616,16 @@ fn merge_copies_exactly_and_refuses_mismatches() {
         w.begin(&header(i)).unwrap();
         w.append(i, &rows(i, 0, 7 * i, 1), &hops(i, 0)).unwrap();
     }
-    w.set_status(1, &Status::Finished(EndReason::ExitLow)).unwrap();
-    w.set_status(3, &Status::Failed { step: 20, reason: "back end failed".into() }).unwrap();
+    w.set_status(1, &Status::Finished(EndReason::ExitLow))
+        .unwrap();
+    w.set_status(
+        3,
+        &Status::Failed {
+            step: 20,
+            reason: "back end failed".into(),
+        },
+    )
+    .unwrap();
     w.mark_stopped(5).unwrap();
     w.close().unwrap();
 
@@ -482,10 +635,18 @@ fn merge_copies_exactly_and_refuses_mismatches() {
     assert_eq!(report.rows, 3 * 40 + 7 * (1 + 3 + 5));
     assert_eq!(report.hops, (1 + 3 + 1) + (1 + 3 + 5));
 
-    let (ra, rb, rm) = (PartReader::open(&a).unwrap(), PartReader::open(&b).unwrap(), PartReader::open(&out).unwrap());
+    let (ra, rb, rm) = (
+        PartReader::open(&a).unwrap(),
+        PartReader::open(&b).unwrap(),
+        PartReader::open(&out).unwrap(),
+    );
     assert_eq!(rm.meta().slice, (0, 1));
     let created = rm.meta().created.as_bytes();
-    assert!(created.len() == 20 && created[4] == b'-' && created[10] == b'T' && created[19] == b'Z', "{}", rm.meta().created);
+    assert!(
+        created.len() == 20 && created[4] == b'-' && created[10] == b'T' && created[19] == b'Z',
+        "{}",
+        rm.meta().created
+    );
     assert_eq!(rm.meta().trajectories, vec![0, 1, 2, 3, 4, 5, 7]);
     assert_eq!(rm.meta().config_toml, ra.meta().config_toml);
     assert_eq!(rm.writer_state(), WriterState::Closed);
@@ -505,7 +666,10 @@ fn merge_copies_exactly_and_refuses_mismatches() {
     write_part(&dup, (2, 3), &[2, 9], 3);
     let out2 = dir.join("merged-2.h5");
     let e = message(merge(&[a.clone(), dup], &out2).unwrap_err());
-    assert!(e.contains("trajectory 2") && e.contains("part-a.h5") && e.contains("part-dup.h5"), "{e}");
+    assert!(
+        e.contains("trajectory 2") && e.contains("part-a.h5") && e.contains("part-dup.h5"),
+        "{e}"
+    );
     assert!(!out2.exists());
 
     let other_cfg = dir.join("part-other-config.h5");
@@ -513,7 +677,10 @@ fn merge_copies_exactly_and_refuses_mismatches() {
     m.config_toml.push_str("seed = 3\n");
     PartWriter::create(&other_cfg, &m).unwrap().close().unwrap();
     let e = message(merge(&[a.clone(), other_cfg], &out2).unwrap_err());
-    assert!(e.contains("part-a.h5") && e.contains("part-other-config.h5") && e.contains("config_toml"), "{e}");
+    assert!(
+        e.contains("part-a.h5") && e.contains("part-other-config.h5") && e.contains("config_toml"),
+        "{e}"
+    );
 
     let other_dof = dir.join("part-other-dof.h5");
     let mut m = meta((1, 2), vec![1]);
@@ -521,7 +688,10 @@ fn merge_copies_exactly_and_refuses_mismatches() {
     m.masses.truncate(2);
     PartWriter::create(&other_dof, &m).unwrap().close().unwrap();
     let e = message(merge(&[a, other_dof], &out2).unwrap_err());
-    assert!(e.contains("part-other-dof.h5") && e.contains("n_dof (4 vs 2)"), "{e}");
+    assert!(
+        e.contains("part-other-dof.h5") && e.contains("n_dof (4 vs 2)"),
+        "{e}"
+    );
     assert!(!out2.exists());
 }
 
@@ -555,7 +725,11 @@ fn damaged_files_give_errors() {
     let original = read_everything(&good).unwrap();
     assert_eq!(original.len(), 2);
 
-    for (name, len) in [("cut-50.h5", bytes.len() / 2), ("cut-10.h5", bytes.len() / 10), ("cut-0.h5", 0)] {
+    for (name, len) in [
+        ("cut-50.h5", bytes.len() / 2),
+        ("cut-10.h5", bytes.len() / 10),
+        ("cut-0.h5", 0),
+    ] {
         let p = dir.join(name);
         std::fs::write(&p, &bytes[..len]).unwrap();
         let e = message(read_everything(&p).expect_err(name));
@@ -564,13 +738,19 @@ fn damaged_files_give_errors() {
 
     // A data block: find the stored bytes of a known coordinate and flip them.
     let needle = written[1].1[150].q[2].to_le_bytes();
-    let at = bytes.windows(8).position(|w| w == needle).expect("the value is stored verbatim");
+    let at = bytes
+        .windows(8)
+        .position(|w| w == needle)
+        .expect("the value is stored verbatim");
     let p = dir.join("flipped-data.h5");
     let mut damaged = bytes.clone();
     damaged[at + 3] ^= 0x5a;
     std::fs::write(&p, &damaged).unwrap();
     let e = message(read_everything(&p).expect_err("checksum must catch the flip"));
-    assert!(e.contains("flipped-data.h5") && e.contains("/trajectories/000001/positions"), "{e}");
+    assert!(
+        e.contains("flipped-data.h5") && e.contains("/trajectories/000001/positions"),
+        "{e}"
+    );
 
     // The superblock (checksummed).
     let p = dir.join("flipped-superblock.h5");
@@ -617,11 +797,16 @@ fn walk(g: &hdf5::Group, f: &mut dyn FnMut(&hdf5::Dataset)) {
 
 fn str_attr(loc: &hdf5::Location, name: &str) -> Option<String> {
     let a = loc.attr(name).ok()?;
-    a.read_scalar::<hdf5::types::VarLenUnicode>().ok().map(|s| s.as_str().to_string())
+    a.read_scalar::<hdf5::types::VarLenUnicode>()
+        .ok()
+        .map(|s| s.as_str().to_string())
 }
 
 fn unit_of_seen(seen: &[(String, String)], n: &str) -> String {
-    seen.iter().find(|(name, _)| name == n).map(|(_, u)| u.clone()).unwrap_or_else(|| panic!("{n} missing"))
+    seen.iter()
+        .find(|(name, _)| name == n)
+        .map(|(_, u)| u.clone())
+        .unwrap_or_else(|| panic!("{n} missing"))
 }
 
 /// Shows that every dataset of a written file (walked, not listed by hand)
@@ -638,22 +823,42 @@ fn every_dataset_has_units_and_description() {
     walk(&file, &mut |ds| {
         let name = ds.name();
         let units = str_attr(ds, "units").unwrap_or_else(|| panic!("{name}: no units"));
-        let description = str_attr(ds, "description").unwrap_or_else(|| panic!("{name}: no description"));
-        assert!(!units.is_empty() && description.len() > 10, "{name}: units {units:?}, description {description:?}");
+        let description =
+            str_attr(ds, "description").unwrap_or_else(|| panic!("{name}: no description"));
+        assert!(
+            !units.is_empty() && description.len() > 10,
+            "{name}: units {units:?}, description {description:?}"
+        );
         seen.push((name, units));
     });
     // 2 at the root; per trajectory 2 initial + 10 per-step + 3 diagnostics
     // + 8 hop + 2 warning datasets.
     assert_eq!(seen.len(), 2 + 2 * (2 + 10 + 3 + 8 + 2), "{seen:?}");
-    assert_eq!(unit_of_seen(&seen, "/trajectories/000001/spin_squared"), "hbar^2");
-    assert_eq!(unit_of_seen(&seen, "/trajectories/000001/solver_iterations"), "1");
-    let unit_of = |n: &str| seen.iter().find(|(name, _)| name == n).map(|(_, u)| u.clone()).unwrap();
+    assert_eq!(
+        unit_of_seen(&seen, "/trajectories/000001/spin_squared"),
+        "hbar^2"
+    );
+    assert_eq!(
+        unit_of_seen(&seen, "/trajectories/000001/solver_iterations"),
+        "1"
+    );
+    let unit_of = |n: &str| {
+        seen.iter()
+            .find(|(name, _)| name == n)
+            .map(|(_, u)| u.clone())
+            .unwrap()
+    };
     assert_eq!(unit_of("/trajectories/000001/energies"), "hartree");
     assert_eq!(unit_of("/trajectories/000001/time"), "a.u. of time");
     assert_eq!(unit_of("/masses"), "electron masses");
     assert!(unit_of("/trajectories/000000/positions").starts_with("bohr"));
-    assert_eq!(str_attr(&file, "format").as_deref(), Some("flipswarm-ensemble"));
-    assert!(str_attr(&file, "units_convention").unwrap().contains("hartree"));
+    assert_eq!(
+        str_attr(&file, "format").as_deref(),
+        Some("flipswarm-ensemble")
+    );
+    assert!(str_attr(&file, "units_convention")
+        .unwrap()
+        .contains("hartree"));
     assert_eq!(str_attr(&file, "writer_state").as_deref(), Some("closed"));
 }
 
@@ -691,7 +896,9 @@ fn python_h5py_reads_the_file() {
         .arg(&path)
         .arg("8")
         .output()
-        .unwrap_or_else(|e| panic!("cannot run python3 ({e}): install Python 3 with h5py (pip install h5py numpy)"));
+        .unwrap_or_else(|e| {
+            panic!("cannot run python3 ({e}): install Python 3 with h5py (pip install h5py numpy)")
+        });
     let stderr = String::from_utf8_lossy(&out.stderr);
     if out.status.code() == Some(3) {
         panic!("h5py is not importable: install it with `pip install h5py numpy` ({stderr})");
@@ -713,27 +920,66 @@ fn python_h5py_reads_the_file() {
         ("positions", f64s(&|x| x.q.clone())),
         ("velocities", f64s(&|x| x.v.clone())),
         ("energies", f64s(&|x| x.energies.clone())),
-        ("amplitudes", f64s(&|x| x.amplitudes.iter().flat_map(|z| [z.re, z.im]).collect())),
+        (
+            "amplitudes",
+            f64s(&|x| x.amplitudes.iter().flat_map(|z| [z.re, z.im]).collect()),
+        ),
         ("total_energy", f64s(&|x| vec![x.total])),
         ("step", fnv1a(r.iter().map(|x| x.step.to_le_bytes()))),
-        ("hops/energy_gap", fnv1a(hp.iter().map(|x| x.gap.to_le_bytes()))),
+        (
+            "hops/energy_gap",
+            fnv1a(hp.iter().map(|x| x.gap.to_le_bytes())),
+        ),
     ];
     for (name, want) in checks {
-        assert_eq!(v["fnv1a"][name].as_str(), Some(format!("{want:016x}").as_str()), "checksum of {name}");
+        assert_eq!(
+            v["fnv1a"][name].as_str(),
+            Some(format!("{want:016x}").as_str()),
+            "checksum of {name}"
+        );
     }
     let last = r.last().unwrap();
-    let floats = |key: &str| v[key].as_array().unwrap().iter().map(|x| x.as_f64().unwrap().to_bits()).collect::<Vec<_>>();
-    assert_eq!(floats("last_positions"), last.q.iter().map(|x| x.to_bits()).collect::<Vec<_>>());
-    let amps: Vec<u64> = last.amplitudes.iter().flat_map(|z| [z.re.to_bits(), z.im.to_bits()]).collect();
+    let floats = |key: &str| {
+        v[key]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|x| x.as_f64().unwrap().to_bits())
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(
+        floats("last_positions"),
+        last.q.iter().map(|x| x.to_bits()).collect::<Vec<_>>()
+    );
+    let amps: Vec<u64> = last
+        .amplitudes
+        .iter()
+        .flat_map(|z| [z.re.to_bits(), z.im.to_bits()])
+        .collect();
     assert_eq!(floats("last_amplitudes_re_im"), amps);
-    assert_eq!(v["active_state"], serde_json::json!(r.iter().map(|x| x.active).collect::<Vec<_>>()));
-    assert_eq!(v["accepted"], serde_json::json!(hp.iter().map(|x| u8::from(x.accepted)).collect::<Vec<_>>()));
+    assert_eq!(
+        v["active_state"],
+        serde_json::json!(r.iter().map(|x| x.active).collect::<Vec<_>>())
+    );
+    assert_eq!(
+        v["accepted"],
+        serde_json::json!(hp.iter().map(|x| u8::from(x.accepted)).collect::<Vec<_>>())
+    );
     // The diagnostics datasets as h5py sees them.
     let d = diags(8, r.len());
-    assert_eq!(v["solver_iterations"], serde_json::json!(d.iter().map(|x| x.iterations).collect::<Vec<_>>()));
-    let nans: usize = d.iter().map(|x| x.spin_squared.iter().filter(|s| s.is_nan()).count()).sum();
+    assert_eq!(
+        v["solver_iterations"],
+        serde_json::json!(d.iter().map(|x| x.iterations).collect::<Vec<_>>())
+    );
+    let nans: usize = d
+        .iter()
+        .map(|x| x.spin_squared.iter().filter(|s| s.is_nan()).count())
+        .sum();
     assert_eq!(v["spin_squared_nan"], nans);
-    let w: Vec<serde_json::Value> = warnings(8).iter().map(|x| serde_json::json!([x.step, x.text])).collect();
+    let w: Vec<serde_json::Value> = warnings(8)
+        .iter()
+        .map(|x| serde_json::json!([x.step, x.text]))
+        .collect();
     assert_eq!(v["warnings"], serde_json::Value::Array(w));
 }
 
@@ -750,17 +996,39 @@ fn diagnostics_round_trip_truncate_and_prefix() {
     let (r, d, wr) = (rows(2, 0, 40, 3), diags(2, 40), warnings(2));
     w.append_all(2, &r[..25], &d[..25], &[], &wr[..1]).unwrap();
     w.append_all(2, &r[25..], &d[25..], &[], &wr[1..]).unwrap();
-    assert_eq!(w.all_counts(2).unwrap(), Counts { rows: 40, hops: 0, warnings: wr.len() as u64 });
+    assert_eq!(
+        w.all_counts(2).unwrap(),
+        Counts {
+            rows: 40,
+            hops: 0,
+            warnings: wr.len() as u64
+        }
+    );
     // Mismatched diagnostics are refused before anything is written.
-    let e = message(w.append_all(2, &rows(2, 40, 2, 0), &d[..1], &[], &[]).unwrap_err());
+    let e = message(
+        w.append_all(2, &rows(2, 40, 2, 0), &d[..1], &[], &[])
+            .unwrap_err(),
+    );
     assert!(e.contains("1 diagnostics for 2 rows"), "{e}");
     let mut bad = diags(2, 2);
     bad[1].spin_squared.pop();
-    let e = message(w.append_all(2, &rows(2, 40, 2, 0), &bad, &[], &[]).unwrap_err());
+    let e = message(
+        w.append_all(2, &rows(2, 40, 2, 0), &bad, &[], &[])
+            .unwrap_err(),
+    );
     assert!(e.contains("<S^2> values"), "{e}");
-    w.truncate_all(2, Counts { rows: 30, hops: 0, warnings: 1 }).unwrap();
+    w.truncate_all(
+        2,
+        Counts {
+            rows: 30,
+            hops: 0,
+            warnings: 1,
+        },
+    )
+    .unwrap();
     w.append(2, &rows(2, 30, 5, 9), &[]).unwrap();
-    w.set_status(2, &Status::Finished(EndReason::TimeLimit)).unwrap();
+    w.set_status(2, &Status::Finished(EndReason::TimeLimit))
+        .unwrap();
     w.close().unwrap();
     let reader = PartReader::open(&path).unwrap();
     let data = reader.read(2).unwrap();
@@ -769,7 +1037,16 @@ fn diagnostics_round_trip_truncate_and_prefix() {
     let bits = |d: &[RowDiagnostics]| d.iter().map(RowDiagnostics::bits).collect::<Vec<_>>();
     assert_eq!(bits(&data.diagnostics), bits(&want_d));
     assert_eq!(data.warnings, wr[..1].to_vec());
-    let prefix = reader.read_prefix_all(2, Counts { rows: 12, hops: 0, warnings: 1 }).unwrap();
+    let prefix = reader
+        .read_prefix_all(
+            2,
+            Counts {
+                rows: 12,
+                hops: 0,
+                warnings: 1,
+            },
+        )
+        .unwrap();
     assert_eq!(bits(&prefix.diagnostics), bits(&d[..12]));
     assert_eq!(prefix.warnings, wr[..1].to_vec());
 }
@@ -786,7 +1063,11 @@ fn part_files_open_for_writing_are_not_inherited_by_children() {
     let path = dir.join("part.h5");
     let w = PartWriter::create(&path, &meta((0, 1), vec![0])).unwrap();
     let listing = |p: &Path| {
-        let out = Command::new("sh").arg("-c").arg("for f in /proc/self/fd/*; do readlink \"$f\"; done").output().unwrap();
+        let out = Command::new("sh")
+            .arg("-c")
+            .arg("for f in /proc/self/fd/*; do readlink \"$f\"; done")
+            .output()
+            .unwrap();
         let text = String::from_utf8_lossy(&out.stdout).to_string();
         let target = p.canonicalize().unwrap();
         text.lines().any(|l| Path::new(l) == target)
@@ -794,12 +1075,18 @@ fn part_files_open_for_writing_are_not_inherited_by_children() {
     assert!(!listing(&path), "a child inherited the writer's descriptor");
     drop(w);
     let (w, _) = PartWriter::open_existing(&path).unwrap();
-    assert!(!listing(&path), "a child inherited the reopened writer's descriptor");
+    assert!(
+        !listing(&path),
+        "a child inherited the reopened writer's descriptor"
+    );
     drop(w);
     // The check itself can see an inherited file: one opened without the flag.
     let plain = std::fs::File::open(&path).unwrap();
     let fd = std::os::fd::AsRawFd::as_raw_fd(&plain);
     // SAFETY: clears close-on-exec on our own open descriptor.
     unsafe { libc::fcntl(fd, libc::F_SETFD, 0) };
-    assert!(listing(&path), "the listing cannot see inherited descriptors");
+    assert!(
+        listing(&path),
+        "the listing cannot see inherited descriptors"
+    );
 }

@@ -15,8 +15,12 @@ use std::sync::Arc;
 
 use flipswarm::config::{load_str, RunConfig};
 use flipswarm::dynamics::Status;
-use flipswarm::electronic::{Backend, BackendError, BackendInfo, Diagnostics, Request, Results, Snapshot};
-use flipswarm::ensemble::h5::{Counts, PartReader, PartWriter, TrajectoryData, WriterState, INJECT_WRITE_FAILURE};
+use flipswarm::electronic::{
+    Backend, BackendError, BackendInfo, Diagnostics, Request, Results, Snapshot,
+};
+use flipswarm::ensemble::h5::{
+    Counts, PartReader, PartWriter, TrajectoryData, WriterState, INJECT_WRITE_FAILURE,
+};
 use flipswarm::ensemble::record::RowDiagnostics;
 use flipswarm::ensemble::runner;
 use flipswarm::swarm;
@@ -41,15 +45,29 @@ struct Scratch(PathBuf);
 impl Scratch {
     fn new(name: &str, trajectories: usize, duration_fs: f64, record_every: u64) -> Self {
         static N: AtomicUsize = AtomicUsize::new(0);
-        let dir = std::env::temp_dir().join(format!("flipswarm-faults-{}-{name}-{}", std::process::id(), N.fetch_add(1, Ordering::Relaxed)));
+        let dir = std::env::temp_dir().join(format!(
+            "flipswarm-faults-{}-{name}-{}",
+            std::process::id(),
+            N.fetch_add(1, Ordering::Relaxed)
+        ));
         let _ = std::fs::remove_dir_all(&dir);
         std::fs::create_dir_all(&dir).unwrap();
         std::fs::write(dir.join("model.toml"), MODEL).unwrap();
-        std::fs::write(dir.join("ens.toml"), ensemble(trajectories, duration_fs, record_every)).unwrap();
+        std::fs::write(
+            dir.join("ens.toml"),
+            ensemble(trajectories, duration_fs, record_every),
+        )
+        .unwrap();
         Self(dir)
     }
     fn cfg(&self) -> RunConfig {
-        load_str(&std::fs::read_to_string(self.0.join("ens.toml")).unwrap(), "ens.toml", &self.0, &[]).unwrap()
+        load_str(
+            &std::fs::read_to_string(self.0.join("ens.toml")).unwrap(),
+            "ens.toml",
+            &self.0,
+            &[],
+        )
+        .unwrap()
     }
     fn ens(&self) -> String {
         self.0.join("ens.toml").to_str().unwrap().to_string()
@@ -81,13 +99,32 @@ fn part(dir: &Path) -> PathBuf {
 /// only for odd counts, <S²> per state with state 1 unavailable (NaN), and a
 /// warning whenever the count is 7.
 fn diagnostics_at(q: &[f64], n_states: usize) -> Diagnostics {
-    let h = q.iter().fold(0xcbf2_9ce4_8422_2325u64, |h, x| (h ^ x.to_bits()).wrapping_mul(0x0100_0000_01b3));
+    let h = q.iter().fold(0xcbf2_9ce4_8422_2325u64, |h, x| {
+        (h ^ x.to_bits()).wrapping_mul(0x0100_0000_01b3)
+    });
     let it = (h % 13) as u32 + 1;
     Diagnostics {
         iterations: Some(it),
         response_iterations: (it % 2 == 1).then_some(3 * it),
-        spin_squared: Some((0..n_states).map(|k| if k == 1 { f64::NAN } else { 0.5 * k as f64 + 1e-3 * it as f64 }).collect()),
-        warnings: if it == 7 { vec![format!("slow convergence: {it} iterations at q0 = {:.6}", q[0])] } else { vec![] },
+        spin_squared: Some(
+            (0..n_states)
+                .map(|k| {
+                    if k == 1 {
+                        f64::NAN
+                    } else {
+                        0.5 * k as f64 + 1e-3 * it as f64
+                    }
+                })
+                .collect(),
+        ),
+        warnings: if it == 7 {
+            vec![format!(
+                "slow convergence: {it} iterations at q0 = {:.6}",
+                q[0]
+            )]
+        } else {
+            vec![]
+        },
     }
 }
 
@@ -114,14 +151,26 @@ impl Backend for Diagnosed {
     }
 }
 
-fn run_in_process(cfg: &RunConfig, dir: &Path, factory: &runner::BackendFactory) -> runner::RunReport {
-    let opts = runner::Options { threads: 2, stop: Arc::new(AtomicBool::new(false)), factory, progress_bar: false };
+fn run_in_process(
+    cfg: &RunConfig,
+    dir: &Path,
+    factory: &runner::BackendFactory,
+) -> runner::RunReport {
+    let opts = runner::Options {
+        threads: 2,
+        stop: Arc::new(AtomicBool::new(false)),
+        factory,
+        progress_bar: false,
+    };
     runner::start(cfg, dir, (0, 1), &opts).unwrap()
 }
 
 fn read_all(p: &Path) -> Vec<TrajectoryData> {
     let r = PartReader::open(p).unwrap();
-    r.trajectory_indices().into_iter().map(|i| r.read(i).unwrap()).collect()
+    r.trajectory_indices()
+        .into_iter()
+        .map(|i| r.read(i).unwrap())
+        .collect()
 }
 
 /// Shows that every recorded row carries exactly the diagnostics the back
@@ -134,7 +183,12 @@ fn backend_diagnostics_and_warnings_are_recorded_per_step() {
     let s = Scratch::new("diag", 4, 40.0, 1);
     let cfg = s.cfg();
     let model = cfg.model.clone();
-    let factory = move |_: usize| -> Box<dyn Backend> { Box::new(Diagnosed { inner: swarm::make_backend(&model), results: Results::default() }) };
+    let factory = move |_: usize| -> Box<dyn Backend> {
+        Box::new(Diagnosed {
+            inner: swarm::make_backend(&model),
+            results: Results::default(),
+        })
+    };
     let dir = s.0.join("every");
     let report = run_in_process(&cfg, &dir, &factory);
     assert_eq!(report.finished, 4);
@@ -144,13 +198,28 @@ fn backend_diagnostics_and_warnings_are_recorded_per_step() {
         assert_eq!(t.diagnostics.len(), t.rows.len());
         for (row, d) in t.rows.iter().zip(&t.diagnostics) {
             let want = RowDiagnostics::from_backend(&diagnostics_at(&row.q, 3), 3);
-            assert_eq!(d.bits(), want.bits(), "trajectory {} step {}", t.header.index, row.step);
+            assert_eq!(
+                d.bits(),
+                want.bits(),
+                "trajectory {} step {}",
+                t.header.index,
+                row.step
+            );
             assert!(d.iterations >= 1 && d.iterations <= 13);
-            assert_eq!(d.response_iterations == -1, d.iterations % 2 == 0, "−1 exactly when the back end reports none");
+            assert_eq!(
+                d.response_iterations == -1,
+                d.iterations % 2 == 0,
+                "−1 exactly when the back end reports none"
+            );
             assert!(d.spin_squared[1].is_nan() && d.spin_squared[0].is_finite());
         }
         // With a row at every step, the warnings are exactly the rows whose geometry warns.
-        let want: Vec<u64> = t.rows.iter().filter(|r| !diagnostics_at(&r.q, 3).warnings.is_empty()).map(|r| r.step).collect();
+        let want: Vec<u64> = t
+            .rows
+            .iter()
+            .filter(|r| !diagnostics_at(&r.q, 3).warnings.is_empty())
+            .map(|r| r.step)
+            .collect();
         let got: Vec<u64> = t.warnings.iter().map(|w| w.step).collect();
         assert_eq!(got, want, "trajectory {} warning steps", t.header.index);
         warned_steps += got.len();
@@ -195,7 +264,11 @@ impl Backend for Poison {
             }
             return Ok(&self.results);
         }
-        let hit = if self.at == 0 { std::mem::replace(&mut self.first, false) } else { step_call && self.steps == self.at };
+        let hit = if self.at == 0 {
+            std::mem::replace(&mut self.first, false)
+        } else {
+            step_call && self.steps == self.at
+        };
         self.results = self.inner.compute(q, request)?.clone();
         if hit {
             match self.what {
@@ -224,11 +297,23 @@ impl Backend for Poison {
 
 /// Back ends of the ensemble's model; trajectory `victim` gets a [`Poison`]
 /// wrapper doing `what` at step call `at`.
-fn poisoned(model: flipswarm::config::ModelSpec, victim: usize, at: usize, what: &'static str) -> impl Fn(usize) -> Box<dyn Backend> + Send + Sync {
+fn poisoned(
+    model: flipswarm::config::ModelSpec,
+    victim: usize,
+    at: usize,
+    what: &'static str,
+) -> impl Fn(usize) -> Box<dyn Backend> + Send + Sync {
     move |i: usize| -> Box<dyn Backend> {
         let inner = swarm::make_backend(&model);
         if i == victim {
-            Box::new(Poison { inner, steps: 0, first: true, at, what, results: Results::default() })
+            Box::new(Poison {
+                inner,
+                steps: 0,
+                first: true,
+                at,
+                what,
+                results: Results::default(),
+            })
         } else {
             inner
         }
@@ -249,7 +334,12 @@ fn non_finite_numbers_fail_the_trajectory_with_its_step() {
         ("gradient-inf", 10, 9, "gradient component 0 = -inf"),
         ("energy-inf", 30, 29, "energy of state 2 = inf"),
         ("gradient-huge", 15, 14, "non-finite velocity 0"),
-        ("overlap-lost", 25, 24, "state tracking lost: |det| of the overlap between steps is 0.200"),
+        (
+            "overlap-lost",
+            25,
+            24,
+            "state tracking lost: |det| of the overlap between steps is 0.200",
+        ),
         ("gradient-nan", 0, 0, "initial geometry"),
     ] {
         let s = Scratch::new("poison", 3, 10.0, 1);
@@ -265,16 +355,31 @@ fn non_finite_numbers_fail_the_trajectory_with_its_step() {
                 assert_eq!(*got, step, "{what}: {reason}");
                 assert!(reason.contains(needle), "{what}: {reason}");
                 if step > 0 {
-                    assert!(reason.contains(&format!("step {}", step + 1)), "{what}: {reason}");
+                    assert!(
+                        reason.contains(&format!("step {}", step + 1)),
+                        "{what}: {reason}"
+                    );
                 }
             }
             other => panic!("{what}: status {other:?}"),
         }
         for row in &data.rows {
-            let all = row.q.iter().chain(&row.v).chain(&row.energies).chain([&row.kinetic, &row.potential, &row.total]);
-            assert!(all.copied().all(f64::is_finite), "{what}: non-finite value stored at step {}", row.step);
+            let all = row.q.iter().chain(&row.v).chain(&row.energies).chain([
+                &row.kinetic,
+                &row.potential,
+                &row.total,
+            ]);
+            assert!(
+                all.copied().all(f64::is_finite),
+                "{what}: non-finite value stored at step {}",
+                row.step
+            );
         }
-        assert_eq!(data.rows.last().map(|r| r.step), if step > 0 { Some(step) } else { None }, "{what}");
+        assert_eq!(
+            data.rows.last().map(|r| r.step),
+            if step > 0 { Some(step) } else { None },
+            "{what}"
+        );
     }
 }
 
@@ -292,8 +397,14 @@ fn missing_coupling_vectors_at_a_hop_fail_the_trajectory() {
     let report = run_in_process(&cfg, &dir, &factory);
     assert_eq!((report.finished, report.failed), (2, 1));
     let data = PartReader::open(&part(&dir)).unwrap().read(1).unwrap();
-    let Status::Failed { step, reason } = &data.status else { panic!("status {:?}", data.status) };
-    assert!(reason.contains("did not return the coupling vectors requested for a hop") && reason.contains(&format!("at step {step}")), "{reason}");
+    let Status::Failed { step, reason } = &data.status else {
+        panic!("status {:?}", data.status)
+    };
+    assert!(
+        reason.contains("did not return the coupling vectors requested for a hop")
+            && reason.contains(&format!("at step {step}")),
+        "{reason}"
+    );
     assert!(data.hops.is_empty() && *step > 0, "{reason}");
 }
 
@@ -305,7 +416,10 @@ fn spawn_run(args: &[&str], inject: Option<u64>) -> (Option<i32>, String) {
         None => c.env_remove(INJECT_WRITE_FAILURE),
     };
     let out = c.output().expect("start flipswarm");
-    (out.status.code(), String::from_utf8_lossy(&out.stderr).into_owned())
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
 }
 
 fn assert_identical(got: &Path, want: &Path) {
@@ -318,8 +432,17 @@ fn assert_identical(got: &Path, want: &Path) {
                 .zip(&t.diagnostics)
                 .map(|(r, d)| {
                     let mut v = vec![r.step, r.time.to_bits(), r.active as u64, r.total.to_bits()];
-                    v.extend(r.q.iter().chain(&r.v).chain(&r.energies).map(|x| x.to_bits()));
-                    v.extend(r.amplitudes.iter().flat_map(|c| [c.re.to_bits(), c.im.to_bits()]));
+                    v.extend(
+                        r.q.iter()
+                            .chain(&r.v)
+                            .chain(&r.energies)
+                            .map(|x| x.to_bits()),
+                    );
+                    v.extend(
+                        r.amplitudes
+                            .iter()
+                            .flat_map(|c| [c.re.to_bits(), c.im.to_bits()]),
+                    );
                     v.extend(d.bits());
                     v
                 })
@@ -327,9 +450,17 @@ fn assert_identical(got: &Path, want: &Path) {
         };
         assert_eq!(a.header, b.header);
         assert_eq!(rows(a), rows(b), "trajectory {}", a.header.index);
-        assert_eq!((&a.hops, &a.warnings, &a.status), (&b.hops, &b.warnings, &b.status), "trajectory {}", a.header.index);
+        assert_eq!(
+            (&a.hops, &a.warnings, &a.status),
+            (&b.hops, &b.warnings, &b.status),
+            "trajectory {}",
+            a.header.index
+        );
     }
-    assert_eq!(PartReader::open(got).unwrap().writer_state(), WriterState::Closed);
+    assert_eq!(
+        PartReader::open(got).unwrap().writer_state(),
+        WriterState::Closed
+    );
 }
 
 /// Disk full, simulated: the Nth dataset write of the writer fails (ENOSPC).
@@ -343,18 +474,42 @@ fn injected_write_failure_stops_resumably_and_resume_is_identical() {
     let _serial = serial();
     let s = Scratch::new("diskfull", 6, 150.0, 2);
     let reference = s.0.join("reference");
-    let (code, err) = spawn_run(&["-q", "run", &s.ens(), "-o", reference.to_str().unwrap(), "--threads", "2"], None);
+    let (code, err) = spawn_run(
+        &[
+            "-q",
+            "run",
+            &s.ens(),
+            "-o",
+            reference.to_str().unwrap(),
+            "--threads",
+            "2",
+        ],
+        None,
+    );
     assert_eq!(code, Some(0), "{err}");
     for n in [0u64, 40, 400] {
         let dir = s.0.join(format!("full-{n}"));
         let d = dir.to_str().unwrap();
         let (code, err) = spawn_run(&["-q", "run", &s.ens(), "-o", d, "--threads", "2"], Some(n));
         assert_eq!(code, Some(4), "N = {n}: {err}");
-        assert!(err.contains("No space left on device") && err.contains(INJECT_WRITE_FAILURE), "N = {n}: {err}");
-        assert!(err.contains(&format!("flipswarm resume {d}")), "N = {n}: the message must say how to continue: {err}");
-        assert!(err.contains(part(&dir).to_str().unwrap()), "N = {n}: the message must name the file: {err}");
+        assert!(
+            err.contains("No space left on device") && err.contains(INJECT_WRITE_FAILURE),
+            "N = {n}: {err}"
+        );
+        assert!(
+            err.contains(&format!("flipswarm resume {d}")),
+            "N = {n}: the message must say how to continue: {err}"
+        );
+        assert!(
+            err.contains(part(&dir).to_str().unwrap()),
+            "N = {n}: the message must name the file: {err}"
+        );
         let r = PartReader::open(&part(&dir)).unwrap();
-        assert_eq!(r.writer_state(), WriterState::Open, "N = {n}: a failed writer must not mark its file closed");
+        assert_eq!(
+            r.writer_state(),
+            WriterState::Open,
+            "N = {n}: a failed writer must not mark its file closed"
+        );
         drop(r);
         let (code, err) = spawn_run(&["-q", "resume", d], None);
         assert_eq!(code, Some(0), "N = {n}: resume: {err}");
@@ -382,9 +537,25 @@ fn a_chunk_with_a_bad_checksum_is_recomputed_on_resume() {
 
     let dir = s.0.join("damaged");
     let stop = Arc::new(AtomicBool::new(false));
-    let (model, st, n) = (cfg.model.clone(), stop.clone(), Arc::new(AtomicUsize::new(0)));
-    let stopping = move |_: usize| -> Box<dyn Backend> { Box::new(StopAfter { inner: swarm::make_backend(&model), stop: st.clone(), calls: n.clone(), after: 6000 }) };
-    let opts = runner::Options { threads: 2, stop: stop.clone(), factory: &stopping, progress_bar: false };
+    let (model, st, n) = (
+        cfg.model.clone(),
+        stop.clone(),
+        Arc::new(AtomicUsize::new(0)),
+    );
+    let stopping = move |_: usize| -> Box<dyn Backend> {
+        Box::new(StopAfter {
+            inner: swarm::make_backend(&model),
+            stop: st.clone(),
+            calls: n.clone(),
+            after: 6000,
+        })
+    };
+    let opts = runner::Options {
+        threads: 2,
+        stop: stop.clone(),
+        factory: &stopping,
+        progress_bar: false,
+    };
     let report = runner::start(&cfg, &dir, (0, 1), &opts).unwrap();
     assert!(report.stopped > 0, "the run must stop part-way");
     let file = part(&dir);
@@ -392,21 +563,43 @@ fn a_chunk_with_a_bad_checksum_is_recomputed_on_resume() {
     // A writer that never closes leaves `writer_state` = "open", as a killed one does.
     drop(PartWriter::open_existing(&file).unwrap());
     // The bytes of one early position value (unique to this trajectory and step).
-    let t = PartReader::open(&part(&reference)).unwrap().read(victim).unwrap();
+    let t = PartReader::open(&part(&reference))
+        .unwrap()
+        .read(victim)
+        .unwrap();
     let x = t.rows[3].q[0].to_le_bytes();
     let mut bytes = std::fs::read(&file).unwrap();
-    let at: Vec<usize> = bytes.windows(8).enumerate().filter(|(_, w)| *w == x).map(|(i, _)| i).collect();
+    let at: Vec<usize> = bytes
+        .windows(8)
+        .enumerate()
+        .filter(|(_, w)| *w == x)
+        .map(|(i, _)| i)
+        .collect();
     assert_eq!(at.len(), 1, "the value must occur once in the file");
     bytes[at[0] + 3] ^= 0x10;
     std::fs::write(&file, &bytes).unwrap();
     let r = PartReader::open(&file).unwrap();
     assert_eq!(r.writer_state(), WriterState::Open);
-    let e = r.read_prefix_all(victim, Counts { rows: 10, hops: 0, warnings: 0 }).unwrap_err().to_string();
+    let e = r
+        .read_prefix_all(
+            victim,
+            Counts {
+                rows: 10,
+                hops: 0,
+                warnings: 0,
+            },
+        )
+        .unwrap_err()
+        .to_string();
     assert!(e.contains("Fletcher32") || e.contains("checksum"), "{e}");
     drop(r);
     let (code, err) = spawn_run(&["resume", dir.to_str().unwrap()], None);
     assert_eq!(code, Some(0), "resume: {err}");
-    assert!(err.contains(&format!("trajectory {victim}:")) && err.contains("recomputing it from its start"), "{err}");
+    assert!(
+        err.contains(&format!("trajectory {victim}:"))
+            && err.contains("recomputing it from its start"),
+        "{err}"
+    );
     assert!(err.contains("from checkpoints"), "{err}");
     assert_identical(&file, &part(&reference));
 }
@@ -449,20 +642,44 @@ fn disk_estimate_bounds_the_file_and_refuses_what_cannot_fit() {
     let cfg = s.cfg();
     let est = runner::disk_estimate(&cfg, (0, 1));
     assert_eq!((est.trajectories, est.datasets), (5, 13));
-    assert_eq!(est.rows_per_trajectory, 1200 + 2, "60 fs / 0.05 fs steps, one row each, plus the end points");
+    assert_eq!(
+        est.rows_per_trajectory,
+        1200 + 2,
+        "60 fs / 0.05 fs steps, one row each, plus the end points"
+    );
     let dir = s.0.join("small");
     let model = cfg.model.clone();
     let factory = move |_: usize| swarm::make_backend(&model);
     run_in_process(&cfg, &dir, &factory);
     let actual = std::fs::metadata(part(&dir)).unwrap().len() as f64;
-    assert!(est.part_bytes as f64 >= actual && (est.part_bytes as f64) < 3.0 * actual, "estimate {} vs actual {actual}", est.part_bytes);
+    assert!(
+        est.part_bytes as f64 >= actual && (est.part_bytes as f64) < 3.0 * actual,
+        "estimate {} vs actual {actual}",
+        est.part_bytes
+    );
     let out = s.0.join("huge");
     let (code, err) = spawn_run(
-        &["-q", "run", &s.ens(), "-o", out.to_str().unwrap(), "--set", "swarm.trajectories=10000000", "--set", "dynamics.duration_fs=200000"],
+        &[
+            "-q",
+            "run",
+            &s.ens(),
+            "-o",
+            out.to_str().unwrap(),
+            "--set",
+            "swarm.trajectories=10000000",
+            "--set",
+            "dynamics.duration_fs=200000",
+        ],
         None,
     );
     assert_eq!(code, Some(2), "{err}");
-    assert!(err.contains("would need about") && err.contains("are free"), "{err}");
-    assert!(err.contains("10000000 trajectories × 4000002 rows × 13 datasets"), "{err}");
+    assert!(
+        err.contains("would need about") && err.contains("are free"),
+        "{err}"
+    );
+    assert!(
+        err.contains("10000000 trajectories × 4000002 rows × 13 datasets"),
+        "{err}"
+    );
     assert!(!out.exists(), "nothing may be created");
 }

@@ -31,10 +31,14 @@ fn scratch(name: &str) -> PathBuf {
 fn deeply_nested_toml_is_refused_without_overflow() {
     for depth in [200usize, 5_000] {
         let text = format!("title = {}1{}\n", "[".repeat(depth), "]".repeat(depth));
-        let e = load_str(&text, "deep.toml", Path::new("."), &[]).unwrap_err().to_string();
+        let e = load_str(&text, "deep.toml", Path::new("."), &[])
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("deep.toml"), "depth {depth}: {e}");
         let inline = format!("x = {}1{}\n", "{a = ".repeat(depth), "}".repeat(depth));
-        let e = load_str(&inline, "deep.toml", Path::new("."), &[]).unwrap_err().to_string();
+        let e = load_str(&inline, "deep.toml", Path::new("."), &[])
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("deep.toml"), "depth {depth}: {e}");
     }
 }
@@ -42,8 +46,16 @@ fn deeply_nested_toml_is_refused_without_overflow() {
 /// NUL bytes, a lone table header and a key without value: errors naming the file.
 #[test]
 fn degenerate_ensemble_files_name_the_file() {
-    for text in ["\0", "[", "[model]\nkind =", "[[model]]\n[[model]]\n", "model = 1\nmodel.kind = 2\n"] {
-        let e = load_str(text, "odd.toml", Path::new("."), &[]).unwrap_err().to_string();
+    for text in [
+        "\0",
+        "[",
+        "[model]\nkind =",
+        "[[model]]\n[[model]]\n",
+        "model = 1\nmodel.kind = 2\n",
+    ] {
+        let e = load_str(text, "odd.toml", Path::new("."), &[])
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("odd.toml"), "{text:?}: {e}");
     }
 }
@@ -52,7 +64,11 @@ fn degenerate_ensemble_files_name_the_file() {
 /// more states than memory could hold are errors naming the file.
 #[test]
 fn hostile_lvc_models_are_refused() {
-    let deep = format!("frequencies_ev = {}0.1{}\n", "[".repeat(3000), "]".repeat(3000));
+    let deep = format!(
+        "frequencies_ev = {}0.1{}\n",
+        "[".repeat(3000),
+        "]".repeat(3000)
+    );
     for text in [
         deep.as_str(),
         "frequencies_ev = [0.1]\nvertical_ev = [0.0, 1.0]\n[[gradient]]\nstate = 1\nmode = 18446744073709551615\nvalue_ev = 0.1\n",
@@ -68,7 +84,11 @@ fn hostile_lvc_models_are_refused() {
 /// are errors naming the file and line (no allocation of the claimed size).
 #[test]
 fn xyz_counts_beyond_the_file_are_refused() {
-    for text in ["18446744073709551615\n\nH 0 0 0\n", "99999999999999\ncomment\nH 0 0 0\n", "-3\n\nH 0 0 0\n"] {
+    for text in [
+        "18446744073709551615\n\nH 0 0 0\n",
+        "99999999999999\ncomment\nH 0 0 0\n",
+        "-3\n\nH 0 0 0\n",
+    ] {
         let e = parse_xyz_str(text, "big.xyz").unwrap_err().to_string();
         assert!(e.contains("big.xyz") && e.contains("line"), "{text:?}: {e}");
         assert!(parse_extxyz_str(text, "big.xyz").is_err());
@@ -78,8 +98,14 @@ fn xyz_counts_beyond_the_file_are_refused() {
 /// Basis-set JSON nested beyond the parser's limit is an error naming the data.
 #[test]
 fn deeply_nested_basis_json_is_refused() {
-    let text = format!("{{\"elements\": {}1{}}}", "[".repeat(10_000), "]".repeat(10_000));
-    let e = BasisSetData::from_json_str(&text, "deep.json", Harmonics::Spherical).unwrap_err().to_string();
+    let text = format!(
+        "{{\"elements\": {}1{}}}",
+        "[".repeat(10_000),
+        "]".repeat(10_000)
+    );
+    let e = BasisSetData::from_json_str(&text, "deep.json", Harmonics::Spherical)
+        .unwrap_err()
+        .to_string();
     assert!(e.contains("deep.json"), "{e}");
 }
 
@@ -96,9 +122,27 @@ fn small_part(path: &Path) {
         timestep_au: 1.0,
     };
     let mut w = PartWriter::create(path, &meta).unwrap();
-    w.begin(&TrajectoryHeader { index: 0, q0: vec![0.0], v0: vec![0.1], initial_state: 1, seed: 1 }).unwrap();
+    w.begin(&TrajectoryHeader {
+        index: 0,
+        q0: vec![0.0],
+        v0: vec![0.1],
+        initial_state: 1,
+        seed: 1,
+    })
+    .unwrap();
     let rows: Vec<StepRow> = (0..50u64)
-        .map(|k| StepRow { step: k, time: k as f64, q: vec![k as f64], v: vec![0.1], energies: vec![-1.0, 0.0], active: 1, amplitudes: vec![Default::default(); 2], kinetic: 0.0, potential: 0.0, total: 0.0 })
+        .map(|k| StepRow {
+            step: k,
+            time: k as f64,
+            q: vec![k as f64],
+            v: vec![0.1],
+            energies: vec![-1.0, 0.0],
+            active: 1,
+            amplitudes: vec![Default::default(); 2],
+            kinetic: 0.0,
+            potential: 0.0,
+            total: 0.0,
+        })
         .collect();
     w.append(0, &rows, &[]).unwrap();
     w.set_status(0, &Status::Running).unwrap();
@@ -119,7 +163,12 @@ fn damaged_part_files_never_panic() {
     let mut errors = 0;
     let mut check = |data: &[u8]| {
         std::fs::write(&bad, data).unwrap();
-        match PartReader::open(&bad).and_then(|r| r.trajectory_indices().into_iter().map(|i| r.read(i)).collect::<Result<Vec<_>, _>>()) {
+        match PartReader::open(&bad).and_then(|r| {
+            r.trajectory_indices()
+                .into_iter()
+                .map(|i| r.read(i))
+                .collect::<Result<Vec<_>, _>>()
+        }) {
             Ok(all) => assert!(all.iter().all(|t| t.rows.len() == t.diagnostics.len())),
             Err(e) => {
                 errors += 1;
@@ -157,7 +206,14 @@ fn fuzz_target_file(path: &Path) {
     };
     let mut w = PartWriter::create(path, &meta).unwrap();
     for i in 0..2usize {
-        w.begin(&TrajectoryHeader { index: i, q0: vec![0.1, 0.2], v0: vec![0.0, 0.01], initial_state: 1, seed: 7 }).unwrap();
+        w.begin(&TrajectoryHeader {
+            index: i,
+            q0: vec![0.1, 0.2],
+            v0: vec![0.0, 0.01],
+            initial_state: 1,
+            seed: 7,
+        })
+        .unwrap();
         let rows: Vec<StepRow> = (0..20u64)
             .map(|k| StepRow {
                 step: k,
@@ -172,12 +228,31 @@ fn fuzz_target_file(path: &Path) {
                 total: -0.4,
             })
             .collect();
-        let diags: Vec<RowDiagnostics> = (0..20).map(|k| RowDiagnostics { iterations: k, response_iterations: -1, spin_squared: vec![0.0, 2.0, f64::NAN] }).collect();
-        let hops = vec![Hop { step: 3, time: 1.5, from: 1, to: 0, accepted: true, gap: -0.5, kinetic_before: 0.1, kinetic_after: 0.6 }];
-        let warns = vec![WarningRow { step: 4, text: "a warning".into() }];
+        let diags: Vec<RowDiagnostics> = (0..20)
+            .map(|k| RowDiagnostics {
+                iterations: k,
+                response_iterations: -1,
+                spin_squared: vec![0.0, 2.0, f64::NAN],
+            })
+            .collect();
+        let hops = vec![Hop {
+            step: 3,
+            time: 1.5,
+            from: 1,
+            to: 0,
+            accepted: true,
+            gap: -0.5,
+            kinetic_before: 0.1,
+            kinetic_after: 0.6,
+        }];
+        let warns = vec![WarningRow {
+            step: 4,
+            text: "a warning".into(),
+        }];
         w.append_all(i, &rows, &diags, &hops, &warns).unwrap();
         if i == 0 {
-            w.set_status(i, &Status::Finished(EndReason::TimeLimit)).unwrap();
+            w.set_status(i, &Status::Finished(EndReason::TimeLimit))
+                .unwrap();
         }
     }
     w.close().unwrap();
@@ -199,13 +274,34 @@ fn fuzz_crash_global_heap_flip_is_reported_not_crashed() {
     let good = dir.join("good.h5");
     fuzz_target_file(&good);
     let bad = flipped_copy(&good, &dir, 0x2101_0400, 0xab);
-    let out = std::process::Command::new(bin).args(["inspect", bad.to_str().unwrap()]).output().unwrap();
+    let out = std::process::Command::new(bin)
+        .args(["inspect", bad.to_str().unwrap()])
+        .output()
+        .unwrap();
     let err = String::from_utf8_lossy(&out.stderr);
-    assert!(out.status.code().is_some(), "inspect was killed by a signal: {err}");
-    assert_ne!(out.status.code(), Some(0), "a damaged file must not inspect cleanly");
-    assert!(err.contains(bad.to_str().unwrap()), "the message must name the file: {err}");
+    assert!(
+        out.status.code().is_some(),
+        "inspect was killed by a signal: {err}"
+    );
+    assert_ne!(
+        out.status.code(),
+        Some(0),
+        "a damaged file must not inspect cleanly"
+    );
+    assert!(
+        err.contains(bad.to_str().unwrap()),
+        "the message must name the file: {err}"
+    );
     let merged = dir.join("merged.h5");
-    let out = std::process::Command::new(bin).args(["merge", bad.to_str().unwrap(), "-o", merged.to_str().unwrap()]).output().unwrap();
+    let out = std::process::Command::new(bin)
+        .args([
+            "merge",
+            bad.to_str().unwrap(),
+            "-o",
+            merged.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
     let err = String::from_utf8_lossy(&out.stderr);
     assert_eq!(out.status.code(), Some(2), "merge: {err}");
     assert!(err.contains(bad.to_str().unwrap()), "{err}");
@@ -237,25 +333,63 @@ fn asan_global_heap_findings_never_crash_inspect_or_merge() {
     let dir = scratch("asanheap");
     let good = dir.join("good.h5");
     fuzz_target_file(&good);
-    for (k, (offset, xor)) in [(0xff31_68f1u32, 0x31u8), (0xd1fb_fff6, 0xf6), (0xcbf6_0b0f, 0xb0)].into_iter().enumerate() {
+    for (k, (offset, xor)) in [
+        (0xff31_68f1u32, 0x31u8),
+        (0xd1fb_fff6, 0xf6),
+        (0xcbf6_0b0f, 0xb0),
+    ]
+    .into_iter()
+    .enumerate()
+    {
         let case = dir.join(format!("case{k}"));
         std::fs::create_dir_all(&case).unwrap();
         let bad = flipped_copy(&good, &case, offset, xor);
         let off = offset as usize % std::fs::metadata(&good).unwrap().len() as usize;
-        let out = std::process::Command::new(bin).args(["inspect", bad.to_str().unwrap()]).output().unwrap();
+        let out = std::process::Command::new(bin)
+            .args(["inspect", bad.to_str().unwrap()])
+            .output()
+            .unwrap();
         let err = String::from_utf8_lossy(&out.stderr);
-        eprintln!("case {k} (byte {off:#x} ^ {xor:#04x}): inspect exit {:?}: {}", out.status.code(), err.lines().next().unwrap_or(""));
-        assert!(out.status.code().is_some(), "case {k}: inspect was killed by a signal: {err}");
+        eprintln!(
+            "case {k} (byte {off:#x} ^ {xor:#04x}): inspect exit {:?}: {}",
+            out.status.code(),
+            err.lines().next().unwrap_or("")
+        );
+        assert!(
+            out.status.code().is_some(),
+            "case {k}: inspect was killed by a signal: {err}"
+        );
         if out.status.code() != Some(0) {
-            assert!(err.contains(bad.to_str().unwrap()), "case {k}: the message must name the file: {err}");
+            assert!(
+                err.contains(bad.to_str().unwrap()),
+                "case {k}: the message must name the file: {err}"
+            );
         }
         let merged = case.join("merged.h5");
-        let out = std::process::Command::new(bin).args(["merge", bad.to_str().unwrap(), "-o", merged.to_str().unwrap()]).output().unwrap();
+        let out = std::process::Command::new(bin)
+            .args([
+                "merge",
+                bad.to_str().unwrap(),
+                "-o",
+                merged.to_str().unwrap(),
+            ])
+            .output()
+            .unwrap();
         let err = String::from_utf8_lossy(&out.stderr);
-        eprintln!("case {k}: merge exit {:?}: {}", out.status.code(), err.lines().next().unwrap_or(""));
-        assert!(out.status.code().is_some(), "case {k}: merge was killed by a signal: {err}");
+        eprintln!(
+            "case {k}: merge exit {:?}: {}",
+            out.status.code(),
+            err.lines().next().unwrap_or("")
+        );
+        assert!(
+            out.status.code().is_some(),
+            "case {k}: merge was killed by a signal: {err}"
+        );
         if out.status.code() != Some(0) {
-            assert!(err.contains(bad.to_str().unwrap()) && !merged.exists(), "case {k}: {err}");
+            assert!(
+                err.contains(bad.to_str().unwrap()) && !merged.exists(),
+                "case {k}: {err}"
+            );
         }
     }
     let _ = std::fs::remove_dir_all(&dir);

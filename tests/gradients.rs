@@ -18,8 +18,10 @@ use flipswarm::electronic::qc::dft::grid::GridSpec;
 use flipswarm::electronic::qc::gradient::numerical::{ScfEnergy, Target};
 use flipswarm::electronic::qc::gradient::scf::{scf_gradient, scf_gradient_terms, Potential};
 use flipswarm::electronic::qc::gradient::GradientError;
-use flipswarm::electronic::qc::optimize::{minimize_energy, GradientKind, OptimizeError, OptimizeOptions};
 use flipswarm::electronic::qc::integrals::JkOptions;
+use flipswarm::electronic::qc::optimize::{
+    minimize_energy, GradientKind, OptimizeError, OptimizeOptions,
+};
 use flipswarm::electronic::qc::response::davidson::DavidsonOptions;
 use flipswarm::electronic::qc::scf::{Electrons, Guess, Reference, ScfOptions};
 use serde_json::Value;
@@ -30,7 +32,6 @@ fn fixture(name: &str) -> Value {
     serde_json::from_str(&text).unwrap()
 }
 
-
 fn tight() -> ScfOptions {
     ScfOptions {
         energy_tolerance: 1e-11,
@@ -40,7 +41,12 @@ fn tight() -> ScfOptions {
     }
 }
 
-fn setup(name: &str, multiplicity: usize, reference: Reference, potential: Potential) -> (ScfEnergy, Vec<[f64; 3]>) {
+fn setup(
+    name: &str,
+    multiplicity: usize,
+    reference: Reference,
+    potential: Potential,
+) -> (ScfEnergy, Vec<[f64; 3]>) {
     let list = test_atoms(name);
     let mol = molecule_z(&list);
     let data = BasisSetData::builtin("6-31G*").unwrap();
@@ -68,7 +74,11 @@ fn ks(level: &str) -> Potential {
 }
 
 fn max_diff(a: &[[f64; 3]], b: &[[f64; 3]]) -> f64 {
-    a.iter().flatten().zip(b.iter().flatten()).map(|(x, y)| (x - y).abs()).fold(0.0, f64::max)
+    a.iter()
+        .flatten()
+        .zip(b.iter().flatten())
+        .map(|(x, y)| (x - y).abs())
+        .fold(0.0, f64::max)
 }
 
 fn sum_of(g: &[[f64; 3]]) -> [f64; 3] {
@@ -84,33 +94,67 @@ fn sum_of(g: &[[f64; 3]]) -> [f64; 3] {
 /// Analytic vs central differences of our own energies (same grid for KS).
 fn check_fd(name: &str, mult: usize, reference: Reference, potential: Potential, tol: f64) {
     let (calc, pos) = setup(name, mult, reference, potential);
-    let (c, analytic) = calc.analytic_gradient(&pos, &Guess::AtomicSuperposition).unwrap();
-    let numeric = calc.numerical_gradient(&pos, 5e-4, &Target::Ground, Some(&c.scf)).unwrap();
+    let (c, analytic) = calc
+        .analytic_gradient(&pos, &Guess::AtomicSuperposition)
+        .unwrap();
+    let numeric = calc
+        .numerical_gradient(&pos, 5e-4, &Target::Ground, Some(&c.scf))
+        .unwrap();
     let d = max_diff(&analytic, &numeric);
     let s = sum_of(&analytic);
-    eprintln!("{name} {reference:?} {:?}: max |analytic - FD| = {d:.2e}; sum = {s:?}", calc.potential);
+    eprintln!(
+        "{name} {reference:?} {:?}: max |analytic - FD| = {d:.2e}; sum = {s:?}",
+        calc.potential
+    );
     eprintln!("  analytic {analytic:?}");
     assert!(d < tol, "{name}: analytic vs FD differ by {d:e}");
-    assert!(s.iter().all(|v| v.abs() < 1e-8), "{name}: sum of gradient {s:?}");
+    assert!(
+        s.iter().all(|v| v.abs() < 1e-8),
+        "{name}: sum of gradient {s:?}"
+    );
 }
 
 // Source: central finite differences of our own energies (definition of the derivative).
 #[test]
 fn rhf_water_gradient_matches_finite_differences() {
-    check_fd("h2o", 1, Reference::Restricted, Potential::HartreeFock, 1e-6);
+    check_fd(
+        "h2o",
+        1,
+        Reference::Restricted,
+        Potential::HartreeFock,
+        1e-6,
+    );
 }
 
 // Source: central finite differences of our own energies.
 #[test]
 fn uhf_and_rohf_methylene_triplet_gradients_match_finite_differences() {
-    check_fd("ch2", 3, Reference::Unrestricted, Potential::HartreeFock, 1e-6);
-    check_fd("ch2", 3, Reference::RestrictedOpen, Potential::HartreeFock, 1e-6);
+    check_fd(
+        "ch2",
+        3,
+        Reference::Unrestricted,
+        Potential::HartreeFock,
+        1e-6,
+    );
+    check_fd(
+        "ch2",
+        3,
+        Reference::RestrictedOpen,
+        Potential::HartreeFock,
+        1e-6,
+    );
 }
 
 // Source: central finite differences of our own energies.
 #[test]
 fn rohf_formaldehyde_triplet_gradient_matches_finite_differences() {
-    check_fd("ch2o", 3, Reference::RestrictedOpen, Potential::HartreeFock, 1e-6);
+    check_fd(
+        "ch2o",
+        3,
+        Reference::RestrictedOpen,
+        Potential::HartreeFock,
+        1e-6,
+    );
 }
 
 // Source: central finite differences of our own energies on the same (coarse) grid.
@@ -145,7 +189,11 @@ fn fixture_positions(v: &Value) -> Vec<[f64; 3]> {
         .iter()
         .map(|p| {
             let p = p.as_array().unwrap();
-            [p[0].as_f64().unwrap(), p[1].as_f64().unwrap(), p[2].as_f64().unwrap()]
+            [
+                p[0].as_f64().unwrap(),
+                p[1].as_f64().unwrap(),
+                p[2].as_f64().unwrap(),
+            ]
         })
         .collect()
 }
@@ -161,23 +209,41 @@ fn gradients_match_the_reference_library() {
     for case in fx["gradients"].as_array().unwrap() {
         let name = case["molecule"].as_str().unwrap();
         let (reference, is_ks) = method_of(case["method"].as_str().unwrap());
-        let potential = if is_ks { ks("fine") } else { Potential::HartreeFock };
-        let (calc, pos) = setup(name, case["multiplicity"].as_u64().unwrap() as usize, reference, potential);
+        let potential = if is_ks {
+            ks("fine")
+        } else {
+            Potential::HartreeFock
+        };
+        let (calc, pos) = setup(
+            name,
+            case["multiplicity"].as_u64().unwrap() as usize,
+            reference,
+            potential,
+        );
         let atoms_fx: Vec<[f64; 3]> = case["atoms"]
             .as_array()
             .unwrap()
             .iter()
             .map(|a| {
                 let p = a["position_bohr"].as_array().unwrap();
-                [p[0].as_f64().unwrap(), p[1].as_f64().unwrap(), p[2].as_f64().unwrap()]
+                [
+                    p[0].as_f64().unwrap(),
+                    p[1].as_f64().unwrap(),
+                    p[2].as_f64().unwrap(),
+                ]
             })
             .collect();
         assert_eq!(atoms_fx, pos);
-        let (c, g) = calc.analytic_gradient(&pos, &Guess::AtomicSuperposition).unwrap();
+        let (c, g) = calc
+            .analytic_gradient(&pos, &Guess::AtomicSuperposition)
+            .unwrap();
         let expect = fixture_positions(&case["gradient"]);
         let d = max_diff(&g, &expect);
         let de = (c.energy - case["energy"].as_f64().unwrap()).abs();
-        eprintln!("{name} {}: max |g - PySCF| = {d:.2e}, |E - PySCF| = {de:.1e}", case["method"]);
+        eprintln!(
+            "{name} {}: max |g - PySCF| = {d:.2e}, |E - PySCF| = {de:.1e}",
+            case["method"]
+        );
         let tol = if is_ks { 1e-6 } else { 1e-7 };
         assert!(d < tol, "{name} {}: {g:?} vs {expect:?}", case["method"]);
     }
@@ -213,9 +279,14 @@ fn rotate(r: &[[f64; 3]; 3], v: [f64; 3]) -> [f64; 3] {
 // g(QR + t) = Q g(R) (Hartree–Fock; no grid).
 #[test]
 fn gradients_rotate_and_translate_with_the_molecule() {
-    for (name, mult, reference) in [("h2o", 1, Reference::Restricted), ("ch2", 3, Reference::RestrictedOpen)] {
+    for (name, mult, reference) in [
+        ("h2o", 1, Reference::Restricted),
+        ("ch2", 3, Reference::RestrictedOpen),
+    ] {
         let (calc, pos) = setup(name, mult, reference, Potential::HartreeFock);
-        let (_, g) = calc.analytic_gradient(&pos, &Guess::AtomicSuperposition).unwrap();
+        let (_, g) = calc
+            .analytic_gradient(&pos, &Guess::AtomicSuperposition)
+            .unwrap();
         let q = rotation();
         let moved: Vec<[f64; 3]> = pos
             .iter()
@@ -224,7 +295,9 @@ fn gradients_rotate_and_translate_with_the_molecule() {
                 [r[0] + 0.31, r[1] - 0.52, r[2] + 1.7]
             })
             .collect();
-        let (_, gm) = calc.analytic_gradient(&moved, &Guess::AtomicSuperposition).unwrap();
+        let (_, gm) = calc
+            .analytic_gradient(&moved, &Guess::AtomicSuperposition)
+            .unwrap();
         let expect: Vec<[f64; 3]> = g.iter().map(|v| rotate(&q, *v)).collect();
         let d = max_diff(&gm, &expect);
         eprintln!("{name}: max |g(QR+t) - Q g(R)| = {d:.2e}");
@@ -238,13 +311,22 @@ fn gradients_rotate_and_translate_with_the_molecule() {
 #[test]
 fn xc_grid_weight_term_is_present_and_translation_invariant() {
     let (calc, pos) = setup("ch2", 3, Reference::RestrictedOpen, ks("coarse"));
-    let c = calc.compute(&pos, &Guess::AtomicSuperposition, &Target::Ground).unwrap();
+    let c = calc
+        .compute(&pos, &Guess::AtomicSuperposition, &Target::Ground)
+        .unwrap();
     let t = scf_gradient_terms(&c.basis, &c.scf, &calc.potential).unwrap();
     let w = sum_of(&t.grid_weights);
     let x = sum_of(&t.xc);
-    let largest = t.grid_weights.iter().flatten().fold(0.0f64, |m, v| m.max(v.abs()));
+    let largest = t
+        .grid_weights
+        .iter()
+        .flatten()
+        .fold(0.0f64, |m, v| m.max(v.abs()));
     eprintln!("grid-weight term: largest {largest:.2e}, sums {w:?}; XC sums {x:?}");
-    assert!(largest > 1e-6, "the grid-weight term should matter on a coarse grid");
+    assert!(
+        largest > 1e-6,
+        "the grid-weight term should matter on a coarse grid"
+    );
     assert!(w.iter().chain(&x).all(|v| v.abs() < 1e-9));
     let g = scf_gradient(&c.basis, &c.scf, &calc.potential).unwrap();
     assert!(max_diff(&g, &t.total) == 0.0);
@@ -254,7 +336,12 @@ fn distances(p: &[[f64; 3]]) -> Vec<f64> {
     let mut d = Vec::new();
     for i in 0..p.len() {
         for j in 0..i {
-            d.push(((p[i][0] - p[j][0]).powi(2) + (p[i][1] - p[j][1]).powi(2) + (p[i][2] - p[j][2]).powi(2)).sqrt());
+            d.push(
+                ((p[i][0] - p[j][0]).powi(2)
+                    + (p[i][1] - p[j][1]).powi(2)
+                    + (p[i][2] - p[j][2]).powi(2))
+                .sqrt(),
+            );
         }
     }
     d
@@ -268,13 +355,34 @@ fn check_minimum(index: usize, grid: &str, tol_angstrom: f64) {
     assert!(case.is_object(), "fixture minimum {index} missing");
     let name = case["molecule"].as_str().unwrap();
     let (reference, is_ks) = method_of(case["method"].as_str().unwrap());
-    let potential = if is_ks { ks(grid) } else { Potential::HartreeFock };
-    let (calc, start) = setup(name, case["multiplicity"].as_u64().unwrap() as usize, reference, potential);
+    let potential = if is_ks {
+        ks(grid)
+    } else {
+        Potential::HartreeFock
+    };
+    let (calc, start) = setup(
+        name,
+        case["multiplicity"].as_u64().unwrap() as usize,
+        reference,
+        potential,
+    );
     let opts = OptimizeOptions::default().scaled(0.01);
-    let r = minimize_energy(&calc, &start, &Target::Ground, GradientKind::Analytic, &opts).unwrap();
+    let r = minimize_energy(
+        &calc,
+        &start,
+        &Target::Ground,
+        GradientKind::Analytic,
+        &opts,
+    )
+    .unwrap();
     let expect = fixture_positions(&case["minimum_bohr"]);
     let (a, b) = (distances(&r.positions), distances(&expect));
-    let dd = a.iter().zip(&b).map(|(x, y)| (x - y).abs()).fold(0.0, f64::max) * BOHR_IN_ANGSTROM;
+    let dd = a
+        .iter()
+        .zip(&b)
+        .map(|(x, y)| (x - y).abs())
+        .fold(0.0, f64::max)
+        * BOHR_IN_ANGSTROM;
     let de = (r.energy - case["energy"].as_f64().unwrap()).abs();
     eprintln!(
         "{name} {}: {} steps, max |distance - PySCF minimum| = {dd:.2e} Å, |E - E_PySCF| = {de:.1e} Eh",
@@ -318,18 +426,38 @@ fn step_limit_is_a_typed_error_with_the_last_geometry() {
         max_steps: 2,
         ..OptimizeOptions::default()
     };
-    let err = minimize_energy(&calc, &start, &Target::Ground, GradientKind::Analytic, &opts).unwrap_err();
+    let err = minimize_energy(
+        &calc,
+        &start,
+        &Target::Ground,
+        GradientKind::Analytic,
+        &opts,
+    )
+    .unwrap_err();
     let msg = err.to_string();
-    assert!(msg.contains("not converged") && msg.contains("step limit 2"), "{msg}");
+    assert!(
+        msg.contains("not converged") && msg.contains("step limit 2"),
+        "{msg}"
+    );
     let last = match &err {
-        OptimizeError::NotConverged { last_positions, steps, .. } => {
+        OptimizeError::NotConverged {
+            last_positions,
+            steps,
+            ..
+        } => {
             assert_eq!(*steps, 2);
             last_positions.clone()
         }
         other => panic!("unexpected {other:?}"),
     };
-    let e0 = calc.compute(&start, &Guess::AtomicSuperposition, &Target::Ground).unwrap().energy;
-    let e1 = calc.compute(&last, &Guess::AtomicSuperposition, &Target::Ground).unwrap().energy;
+    let e0 = calc
+        .compute(&start, &Guess::AtomicSuperposition, &Target::Ground)
+        .unwrap()
+        .energy;
+    let e1 = calc
+        .compute(&last, &Guess::AtomicSuperposition, &Target::Ground)
+        .unwrap()
+        .energy;
     assert!(e1 < e0, "{e1} vs {e0}");
 }
 
@@ -343,11 +471,19 @@ fn gradient_of_an_uncomputed_state_is_a_clear_error() {
         singlets: 2,
         triplets: 1,
     };
-    let err = calc.compute(&pos, &Guess::AtomicSuperposition, &target).unwrap_err();
+    let err = calc
+        .compute(&pos, &Guess::AtomicSuperposition, &target)
+        .unwrap_err();
     match &err {
-        GradientError::StateNotComputed { requested, available } => {
+        GradientError::StateNotComputed {
+            requested,
+            available,
+        } => {
             assert_eq!(requested, "S5");
-            assert!(available.contains("S0") && available.contains("S1") && available.contains("T1"), "{available}");
+            assert!(
+                available.contains("S0") && available.contains("S1") && available.contains("T1"),
+                "{available}"
+            );
         }
         other => panic!("unexpected {other:?}"),
     }
@@ -385,27 +521,42 @@ fn numerical_mrsf_s1_gradient_is_invariant() {
             [r[0] - 0.4, r[1] + 0.2, r[2] + 0.9]
         })
         .collect();
-    let gm = calc.numerical_gradient(&moved, 1e-3, &target, None).unwrap();
+    let gm = calc
+        .numerical_gradient(&moved, 1e-3, &target, None)
+        .unwrap();
     let expect: Vec<[f64; 3]> = g.iter().map(|v| rotate(&q, *v)).collect();
     let d = max_diff(&gm, &expect);
     let s = sum_of(&g);
     let largest = g.iter().flatten().fold(0.0f64, |m, v| m.max(v.abs()));
     eprintln!("MRSF S1 numerical gradient {g:?}\n  largest {largest:.2e}, sum {s:?}, rotation error {d:.2e}");
-    assert!(largest > 1e-3, "a generic geometry has a non-zero S1 gradient");
+    assert!(
+        largest > 1e-3,
+        "a generic geometry has a non-zero S1 gradient"
+    );
     assert!(s.iter().all(|v| v.abs() < 1e-7), "{s:?}");
     assert!(d < 1e-6, "{gm:?} vs {expect:?}");
     // Several states from one set of displaced calculations: the S1 entry is
     // the single-state gradient (same calculations), each sums to zero, and
     // an absent state is a clear error.
-    let many = calc.numerical_state_gradients(&pos, 1e-3, &["S0", "S1", "T1"], 3, 1).unwrap();
+    let many = calc
+        .numerical_state_gradients(&pos, 1e-3, &["S0", "S1", "T1"], 3, 1)
+        .unwrap();
     assert_eq!(many.len(), 3);
     assert!(max_diff(&many[1], &g) < 1e-10);
     for gs in &many {
         assert!(sum_of(gs).iter().all(|v| v.abs() < 1e-7), "{gs:?}");
     }
-    assert!(max_diff(&many[0], &many[1]) > 1e-4, "S0 and S1 gradients differ");
-    let err = calc.numerical_state_gradients(&pos, 1e-3, &["S1", "T2"], 3, 1).unwrap_err();
-    assert!(matches!(err, GradientError::StateNotComputed { .. }), "{err}");
+    assert!(
+        max_diff(&many[0], &many[1]) > 1e-4,
+        "S0 and S1 gradients differ"
+    );
+    let err = calc
+        .numerical_state_gradients(&pos, 1e-3, &["S1", "T2"], 3, 1)
+        .unwrap_err();
+    assert!(
+        matches!(err, GradientError::StateNotComputed { .. }),
+        "{err}"
+    );
 }
 
 // Source: definition of a minimum — an optimisation of the MRSF-TDDFT S1
@@ -430,7 +581,9 @@ fn mrsf_s1_minimum_converges() {
     let opts = OptimizeOptions::default();
     let r = minimize_energy(&calc, &pos, &target, GradientKind::Numerical(1e-3), &opts).unwrap();
     let e0 = r.history[0].energy;
-    let g = calc.numerical_gradient(&r.positions, 1e-3, &target, None).unwrap();
+    let g = calc
+        .numerical_gradient(&r.positions, 1e-3, &target, None)
+        .unwrap();
     let gmax = g.iter().flatten().fold(0.0f64, |m, v| m.max(v.abs()));
     eprintln!(
         "MRSF S1 minimum: {} steps, E {e0:.8} -> {:.8}, max |g| afresh {gmax:.2e}, geometry {:?}",

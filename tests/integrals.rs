@@ -40,9 +40,6 @@ use serde_json::Value;
 // helpers
 // ---------------------------------------------------------------------------
 
-
-
-
 /// The basis of a fixture: a built-in set, or a repository file (the f/g test basis).
 fn basis_data(fx: &Value) -> BasisSetData {
     let stem = fx["basis"].as_str().unwrap();

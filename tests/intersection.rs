@@ -20,8 +20,12 @@ use flipswarm::electronic::qc::dft::grid::GridSpec;
 use flipswarm::electronic::qc::gradient::numerical::{orbital_guess, ScfEnergy, Target};
 use flipswarm::electronic::qc::gradient::scf::Potential;
 use flipswarm::electronic::qc::integrals::JkOptions;
-use flipswarm::electronic::qc::optimize::intersection::{minimize_crossing, Crossing, CrossingOptions, StatePair};
-use flipswarm::electronic::qc::optimize::{minimize_mrsf_crossing, GradientKind, OptimizeError, OptimizeOptions};
+use flipswarm::electronic::qc::optimize::intersection::{
+    minimize_crossing, Crossing, CrossingOptions, StatePair,
+};
+use flipswarm::electronic::qc::optimize::{
+    minimize_mrsf_crossing, GradientKind, OptimizeError, OptimizeOptions,
+};
 use flipswarm::electronic::qc::response::davidson::DavidsonOptions;
 use flipswarm::electronic::qc::response::overlap::{state_overlaps, StateVectors};
 use flipswarm::electronic::qc::scf::{Electrons, Guess, Reference, ScfOptions};
@@ -38,8 +42,19 @@ fn model(p: &[[f64; 3]]) -> Result<StatePair, String> {
     let dmean = [K * x + T, K * y, K * z + C];
     let delta = ((G * x).powi(2) + (H * y).powi(2)).sqrt().max(1e-300);
     let ddelta = [G * G * x / delta, H * H * y / delta, 0.0];
-    let g = |s: f64| vec![[dmean[0] + s * ddelta[0], dmean[1] + s * ddelta[1], dmean[2] + s * ddelta[2]]];
-    Ok(StatePair { lower: mean - delta, upper: mean + delta, lower_gradient: g(-1.0), upper_gradient: g(1.0) })
+    let g = |s: f64| {
+        vec![[
+            dmean[0] + s * ddelta[0],
+            dmean[1] + s * ddelta[1],
+            dmean[2] + s * ddelta[2],
+        ]]
+    };
+    Ok(StatePair {
+        lower: mean - delta,
+        upper: mean + delta,
+        lower_gradient: g(-1.0),
+        upper_gradient: g(1.0),
+    })
 }
 
 // Source: the closed-form minimum-energy crossing of the model above
@@ -51,7 +66,10 @@ fn model(p: &[[f64; 3]]) -> Result<StatePair, String> {
 #[test]
 fn penalty_search_finds_the_known_crossing_of_a_model() {
     let opts = CrossingOptions {
-        stage: OptimizeOptions { max_steps: 200, ..OptimizeOptions::default() },
+        stage: OptimizeOptions {
+            max_steps: 200,
+            ..OptimizeOptions::default()
+        },
         gap_tolerance: 1e-5,
         ..CrossingOptions::default()
     };
@@ -59,11 +77,17 @@ fn penalty_search_finds_the_known_crossing_of_a_model() {
     let [x, y, z] = found.positions[0];
     eprintln!("{found}; at ({x:.2e}, {y:.2e}, {z:.6})");
     assert!(found.gap < 1e-5, "gap {}", found.gap);
-    assert!((z - 0.2).abs() < 2e-4 && x.abs() < 2e-4 && y.abs() < 2e-4, "({x}, {y}, {z})");
+    assert!(
+        (z - 0.2).abs() < 2e-4 && x.abs() < 2e-4 && y.abs() < 2e-4,
+        "({x}, {y}, {z})"
+    );
     let e = 0.5 * (found.states.lower + found.states.upper);
     assert!((e + 0.008).abs() < 1e-5, "energy {e}");
     assert!(found.gradient_difference[0][2].abs() < 1e-6);
-    assert!(found.stages >= 2, "σ was never raised: the test would not exercise the stages");
+    assert!(
+        found.stages >= 2,
+        "σ was never raised: the test would not exercise the stages"
+    );
 }
 
 // Source: bad input must be a clear error (the brief): options that make
@@ -71,10 +95,19 @@ fn penalty_search_finds_the_known_crossing_of_a_model() {
 // keeps the last geometry for the caller to save.
 #[test]
 fn crossing_search_reports_bad_options_and_non_convergence() {
-    let bad = CrossingOptions { growth: 1.0, ..CrossingOptions::default() };
+    let bad = CrossingOptions {
+        growth: 1.0,
+        ..CrossingOptions::default()
+    };
     let e = minimize_crossing(&[[0.5, -0.4, 1.0]], &bad, model).unwrap_err();
     assert!(matches!(e, OptimizeError::Options(_)), "{e}");
-    let short = CrossingOptions { stage: OptimizeOptions { max_steps: 3, ..OptimizeOptions::default() }, ..CrossingOptions::default() };
+    let short = CrossingOptions {
+        stage: OptimizeOptions {
+            max_steps: 3,
+            ..OptimizeOptions::default()
+        },
+        ..CrossingOptions::default()
+    };
     let e = minimize_crossing(&[[0.5, -0.4, 1.0]], &short, model).unwrap_err();
     assert!(e.to_string().contains("step limit"), "{e}");
     assert!(e.last_positions().is_some());
@@ -92,8 +125,14 @@ fn twisted_pyramidalised() -> Molecule {
         ("H", [0.920132, 0.636396, 1.10656]),
         ("H", [-0.920132, 0.636396, 1.10656]),
     ];
-    let els: Vec<Element> = atoms.iter().map(|(s, _)| Element::from_symbol(s).unwrap()).collect();
-    let pos: Vec<[f64; 3]> = atoms.iter().map(|(_, p)| p.map(|x| x / 0.529177210903)).collect();
+    let els: Vec<Element> = atoms
+        .iter()
+        .map(|(s, _)| Element::from_symbol(s).unwrap())
+        .collect();
+    let pos: Vec<[f64; 3]> = atoms
+        .iter()
+        .map(|(_, p)| p.map(|x| x / 0.529177210903))
+        .collect();
     Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
 }
 
@@ -104,20 +143,44 @@ fn ethylene_calculation() -> ScfEnergy {
         harmonics: None,
         electrons: Electrons { alpha: 9, beta: 7 },
         reference: Reference::RestrictedOpen,
-        potential: Potential::KohnSham { functional: "bhhlyp".into(), grid: GridSpec::level("coarse").unwrap() },
-        scf: ScfOptions { gradient_tolerance: 1e-9, energy_tolerance: 1e-11, ..ScfOptions::default() },
+        potential: Potential::KohnSham {
+            functional: "bhhlyp".into(),
+            grid: GridSpec::level("coarse").unwrap(),
+        },
+        scf: ScfOptions {
+            gradient_tolerance: 1e-9,
+            energy_tolerance: 1e-11,
+            ..ScfOptions::default()
+        },
         jk: JkOptions::default(),
-        davidson: DavidsonOptions { residual_tolerance: 1e-8, energy_tolerance: 1e-12, ..DavidsonOptions::default() },
+        davidson: DavidsonOptions {
+            residual_tolerance: 1e-8,
+            energy_tolerance: 1e-12,
+            ..DavidsonOptions::default()
+        },
     }
 }
 
 /// S0 and S1 state vectors at `positions`, SCF started from `guess`.
-fn states_at(calc: &ScfEnergy, positions: &[[f64; 3]], guess: &Guess) -> (BasisSet, StateVectors, f64, Guess) {
-    let target = Target::Mrsf { label: "S0".into(), singlets: 2, triplets: 0 };
+fn states_at(
+    calc: &ScfEnergy,
+    positions: &[[f64; 3]],
+    guess: &Guess,
+) -> (BasisSet, StateVectors, f64, Guess) {
+    let target = Target::Mrsf {
+        label: "S0".into(),
+        singlets: 2,
+        triplets: 0,
+    };
     let c = calc.compute(positions, guess, &target).unwrap();
     let x = c.excited.as_ref().unwrap();
     let v = StateVectors::from_states(x, &[0, 1]).unwrap();
-    (c.basis, v, x.states[1].energy - x.states[0].energy, orbital_guess(&c.scf))
+    (
+        c.basis,
+        v,
+        x.states[1].energy - x.states[0].energy,
+        orbital_guess(&c.scf),
+    )
 }
 
 /// Sign acquired by S0 and S1 transported around a closed loop of
@@ -134,7 +197,11 @@ fn loop_signs(calc: &ScfEnergy, points: &[Vec<[f64; 3]>]) -> ([f64; 2], f64) {
         min_gap = min_gap.min(gap);
         let s = state_overlaps(&vp, &bp, &v, &b).unwrap();
         for i in 0..2 {
-            assert!(s[(i, i)].abs() > 0.7, "state {i} lost between loop points: overlap {:.3}", s[(i, i)]);
+            assert!(
+                s[(i, i)].abs() > 0.7,
+                "state {i} lost between loop points: overlap {:.3}",
+                s[(i, i)]
+            );
             signs[i] *= s[(i, i)].signum();
         }
         bp = b;
@@ -165,10 +232,31 @@ fn ethylene_crossing() -> &'static Crossing {
     static FOUND: std::sync::OnceLock<Crossing> = std::sync::OnceLock::new();
     FOUND.get_or_init(|| {
         let calc = ethylene_calculation();
-        let start: Vec<[f64; 3]> = calc.molecule.atoms.iter().map(|a| a.position_bohr).collect();
-        let opts = CrossingOptions { stage: OptimizeOptions { max_steps: 80, ..OptimizeOptions::default() }, ..CrossingOptions::default() };
+        let start: Vec<[f64; 3]> = calc
+            .molecule
+            .atoms
+            .iter()
+            .map(|a| a.position_bohr)
+            .collect();
+        let opts = CrossingOptions {
+            stage: OptimizeOptions {
+                max_steps: 80,
+                ..OptimizeOptions::default()
+            },
+            ..CrossingOptions::default()
+        };
         let t = std::time::Instant::now();
-        let found = minimize_mrsf_crossing(&calc, &start, "S0", "S1", 2, 0, GradientKind::Analytic, &opts).unwrap();
+        let found = minimize_mrsf_crossing(
+            &calc,
+            &start,
+            "S0",
+            "S1",
+            2,
+            0,
+            GradientKind::Analytic,
+            &opts,
+        )
+        .unwrap();
         eprintln!("{found} in {:.1} s", t.elapsed().as_secs_f64());
         found
     })
@@ -181,13 +269,23 @@ fn ethylene_s1_s0_intersection_and_its_geometric_phase() {
     assert!(found.gap < 1e-4, "gap {:e}", found.gap);
     let x = &found.positions;
     // The two CH2 planes: normals of (H2 C0 H3) and (H4 C1 H5).
-    let sub = |a: [f64; 3], b: [f64; 3]| nalgebra::Vector3::new(a[0] - b[0], a[1] - b[1], a[2] - b[2]);
+    let sub =
+        |a: [f64; 3], b: [f64; 3]| nalgebra::Vector3::new(a[0] - b[0], a[1] - b[1], a[2] - b[2]);
     let n1 = sub(x[2], x[0]).cross(&sub(x[3], x[0])).normalize();
     let n2 = sub(x[4], x[1]).cross(&sub(x[5], x[1])).normalize();
-    assert!(n1.dot(&n2).abs() < 0.7, "the CH2 groups are not twisted: cos = {}", n1.dot(&n2));
+    assert!(
+        n1.dot(&n2).abs() < 0.7,
+        "the CH2 groups are not twisted: cos = {}",
+        n1.dot(&n2)
+    );
     // Branching plane: x̂ from the search, ŷ ⟂ x̂ from the derivative coupling
     // (finite differences of S0–S1 overlaps along each coordinate).
-    let xs: Vec<f64> = found.gradient_difference.iter().flatten().copied().collect();
+    let xs: Vec<f64> = found
+        .gradient_difference
+        .iter()
+        .flatten()
+        .copied()
+        .collect();
     let flat: Vec<f64> = x.iter().flatten().copied().collect();
     let (b0, v0, _, guess) = states_at(&calc, x, &Guess::AtomicSuperposition);
     let h = 1e-3;
@@ -207,13 +305,18 @@ fn ethylene_s1_s0_intersection_and_its_geometric_phase() {
     let dx: f64 = d.iter().zip(&xs).map(|(a, b)| a * b).sum();
     let mut ys: Vec<f64> = d.iter().zip(&xs).map(|(a, b)| a - dx * b).collect();
     let ny = ys.iter().map(|v| v * v).sum::<f64>().sqrt();
-    assert!(ny > 1e-3, "no coupling direction out of the gradient difference");
+    assert!(
+        ny > 1e-3,
+        "no coupling direction out of the gradient difference"
+    );
     ys.iter_mut().for_each(|v| *v /= ny);
     let circle = |centre: &[f64], radius: f64, n: usize| -> Vec<Vec<[f64; 3]>> {
         (0..n)
             .map(|k| {
                 let a = 2.0 * std::f64::consts::PI * k as f64 / n as f64;
-                let q: Vec<f64> = (0..centre.len()).map(|i| centre[i] + radius * (a.cos() * xs[i] + a.sin() * ys[i])).collect();
+                let q: Vec<f64> = (0..centre.len())
+                    .map(|i| centre[i] + radius * (a.cos() * xs[i] + a.sin() * ys[i]))
+                    .collect();
                 q.chunks(3).map(|c| [c[0], c[1], c[2]]).collect()
             })
             .collect()
@@ -222,8 +325,16 @@ fn ethylene_s1_s0_intersection_and_its_geometric_phase() {
     let away: Vec<f64> = flat.iter().zip(&xs).map(|(q, u)| q + 0.3 * u).collect();
     let (beside, gap_beside) = loop_signs(&calc, &circle(&away, 0.03, 16));
     eprintln!("geometric phase: around the intersection {around:?} (smallest gap {gap_around:.2e} Eh), beside it {beside:?} (gap {gap_beside:.2e} Eh)");
-    assert_eq!(around, [-1.0, -1.0], "no sign change around the intersection");
-    assert_eq!(beside, [1.0, 1.0], "a sign change around a loop that encloses no intersection");
+    assert_eq!(
+        around,
+        [-1.0, -1.0],
+        "no sign change around the intersection"
+    );
+    assert_eq!(
+        beside,
+        [1.0, 1.0],
+        "a sign change around a loop that encloses no intersection"
+    );
 }
 
 /// Internal coordinates of ethylene (atoms C0 C1 H2 H3 on C0, H4 H5 on C1):
@@ -235,9 +346,15 @@ fn ethylene_internals(q: &[f64]) -> [f64; 4] {
     let cc = Param::Bond([0, 1]).value(q);
     let fold = |d: f64| {
         let a = d.abs() % 180.0;
-        if a > 90.0 { 180.0 - a } else { a }
+        if a > 90.0 {
+            180.0 - a
+        } else {
+            a
+        }
     };
-    let twist = 0.5 * (fold(Param::Dihedral([2, 0, 1, 4]).value(q)) + fold(Param::Dihedral([3, 0, 1, 5]).value(q)));
+    let twist = 0.5
+        * (fold(Param::Dihedral([2, 0, 1, 4]).value(q))
+            + fold(Param::Dihedral([3, 0, 1, 5]).value(q)));
     let r = |a: usize| nalgebra::Vector3::new(q[3 * a], q[3 * a + 1], q[3 * a + 2]);
     let pyramid = |c: usize, o: usize, h1: usize, h2: usize| {
         let n = (r(h1) - r(c)).cross(&(r(h2) - r(c))).normalize();
@@ -251,13 +368,18 @@ const FS: f64 = 41.341373335;
 
 /// The MRSF back end of the ethylene dynamics tests: three singlets,
 /// analytic gradients.
-fn ethylene_dynamics_spec(calculation: ScfEnergy) -> Arc<flipswarm::electronic::qc::backend::MolecularSpec> {
+fn ethylene_dynamics_spec(
+    calculation: ScfEnergy,
+) -> Arc<flipswarm::electronic::qc::backend::MolecularSpec> {
     use flipswarm::electronic::qc::backend::{GradientMethod, MolecularSpec};
     use flipswarm::electronic::qc::gradient::mrsf::ZVectorOptions;
     Arc::new(MolecularSpec {
         calculation,
         singlets: 3,
-        gradients: GradientMethod::Analytic { zvector: ZVectorOptions::default(), coupling_step: 1e-3 },
+        gradients: GradientMethod::Analytic {
+            zvector: ZVectorOptions::default(),
+            coupling_step: 1e-3,
+        },
         label: "ethylene BH&HLYP/6-31G".into(),
     })
 }
@@ -307,12 +429,28 @@ fn s1_trajectories_of_twisted_ethylene_decay_through_the_crossing() {
     calculation.molecule = common::qc::ethylene(90.0);
     // Fold the C1H2 group by 25° (rotation of its hydrogens about the axis
     // through C1 perpendicular to the C–C bond, in the CH2 plane).
-    let (c1, phi) = (calculation.molecule.atoms[1].position_bohr, 25f64.to_radians());
+    let (c1, phi) = (
+        calculation.molecule.atoms[1].position_bohr,
+        25f64.to_radians(),
+    );
     for a in &mut calculation.molecule.atoms[4..6] {
-        let r = [a.position_bohr[0] - c1[0], a.position_bohr[1] - c1[1], a.position_bohr[2] - c1[2]];
-        a.position_bohr = [c1[0] + r[0], c1[1] + r[1] * phi.cos() - r[2] * phi.sin(), c1[2] + r[1] * phi.sin() + r[2] * phi.cos()];
+        let r = [
+            a.position_bohr[0] - c1[0],
+            a.position_bohr[1] - c1[1],
+            a.position_bohr[2] - c1[2],
+        ];
+        a.position_bohr = [
+            c1[0] + r[0],
+            c1[1] + r[1] * phi.cos() - r[2] * phi.sin(),
+            c1[2] + r[1] * phi.sin() + r[2] * phi.cos(),
+        ];
     }
-    let q0: Vec<f64> = calculation.molecule.atoms.iter().flat_map(|a| a.position_bohr).collect();
+    let q0: Vec<f64> = calculation
+        .molecule
+        .atoms
+        .iter()
+        .flat_map(|a| a.position_bohr)
+        .collect();
     let spec = ethylene_dynamics_spec(calculation);
     let settings = ethylene_dynamics_settings(30.0);
     let kt = 300.0 * 3.166811563e-6;
@@ -320,21 +458,34 @@ fn s1_trajectories_of_twisted_ethylene_decay_through_the_crossing() {
         let mut backend = MrsfBackend::new(spec.clone());
         let masses = backend.info().masses;
         let mut rng = rand_chacha::ChaCha20Rng::seed_from_u64(1000 + seed);
-        let mut v: Vec<f64> = masses.iter().map(|m| rng.sample::<f64, _>(StandardNormal) * (kt / m).sqrt()).collect();
+        let mut v: Vec<f64> = masses
+            .iter()
+            .map(|m| rng.sample::<f64, _>(StandardNormal) * (kt / m).sqrt())
+            .collect();
         let total: f64 = masses.iter().step_by(3).sum();
         for k in 0..3 {
-            let p: f64 = (0..masses.len() / 3).map(|a| masses[3 * a] * v[3 * a + k]).sum();
+            let p: f64 = (0..masses.len() / 3)
+                .map(|a| masses[3 * a] * v[3 * a + k])
+                .sum();
             (0..masses.len() / 3).for_each(|a| v[3 * a + k] -= p / total);
         }
         let t = std::time::Instant::now();
-        let mut traj = Trajectory::start(&mut backend, settings.clone(), q0.clone(), v, 1, rng).unwrap();
+        let mut traj =
+            Trajectory::start(&mut backend, settings.clone(), q0.clone(), v, 1, rng).unwrap();
         let e0 = traj.state.kinetic(traj.masses()) + traj.state.potential();
         let mut hop = None;
         while hop.is_none() && traj.state.time < settings.max_time - 1e-9 {
-            let h = traj.step().unwrap_or_else(|e| panic!("trajectory {seed}: {e}"));
+            let h = traj
+                .step()
+                .unwrap_or_else(|e| panic!("trajectory {seed}: {e}"));
             hop = h.filter(|h| h.accepted && h.from == 1 && h.to == 0);
         }
-        let Some(h) = hop else { panic!("trajectory {seed} still on S{} after 30 fs", traj.state.active) };
+        let Some(h) = hop else {
+            panic!(
+                "trajectory {seed} still on S{} after 30 fs",
+                traj.state.active
+            )
+        };
         let x = ethylene_internals(&traj.state.q);
         let de = traj.state.kinetic(traj.masses()) + traj.state.potential() - e0;
         eprintln!(
@@ -342,15 +493,38 @@ fn s1_trajectories_of_twisted_ethylene_decay_through_the_crossing() {
              (crossing: {:.3} Å, {:.1}°, {:.1}° / {:.1}°); total energy change {de:.1e} Eh",
             h.time / fs, t.elapsed().as_secs_f64(), -h.gap * 27.211386, x[0], x[1], x[2], x[3], at_meci[0], at_meci[1], at_meci[2], at_meci[3]
         );
-        assert!(-h.gap > 0.0 && -h.gap < 0.3 / 27.211386, "trajectory {seed}: S1 − S0 at the hop {:.3} eV", -h.gap * 27.211386);
-        assert!((h.kinetic_after - h.kinetic_before + h.gap).abs() < 1e-10, "trajectory {seed}: the hop does not conserve energy");
-        assert!(de.abs() < 2e-3, "trajectory {seed}: total energy changed by {de:e} Eh");
-        assert!((x[0] - at_meci[0]).abs() < 0.1, "trajectory {seed}: C–C {:.3} Å vs {:.3} Å", x[0], at_meci[0]);
-        assert!((x[1] - at_meci[1]).abs() < 10.0, "trajectory {seed}: twist {:.1}° vs {:.1}°", x[1], at_meci[1]);
+        assert!(
+            -h.gap > 0.0 && -h.gap < 0.3 / 27.211386,
+            "trajectory {seed}: S1 − S0 at the hop {:.3} eV",
+            -h.gap * 27.211386
+        );
+        assert!(
+            (h.kinetic_after - h.kinetic_before + h.gap).abs() < 1e-10,
+            "trajectory {seed}: the hop does not conserve energy"
+        );
+        assert!(
+            de.abs() < 2e-3,
+            "trajectory {seed}: total energy changed by {de:e} Eh"
+        );
+        assert!(
+            (x[0] - at_meci[0]).abs() < 0.1,
+            "trajectory {seed}: C–C {:.3} Å vs {:.3} Å",
+            x[0],
+            at_meci[0]
+        );
+        assert!(
+            (x[1] - at_meci[1]).abs() < 10.0,
+            "trajectory {seed}: twist {:.1}° vs {:.1}°",
+            x[1],
+            at_meci[1]
+        );
         // The crossing folds one carbon: compare the more and the less folded one.
         let (folded, flat) = (x[2].max(x[3]), x[2].min(x[3]));
         let (folded_x, flat_x) = (at_meci[2].max(at_meci[3]), at_meci[2].min(at_meci[3]));
-        assert!((folded - folded_x).abs() < 15.0 && (flat - flat_x).abs() < 15.0, "trajectory {seed}: pyramidalisation {x:?} vs {at_meci:?}");
+        assert!(
+            (folded - folded_x).abs() < 15.0 && (flat - flat_x).abs() < 15.0,
+            "trajectory {seed}: pyramidalisation {x:?} vs {at_meci:?}"
+        );
     }
 }
 
@@ -367,7 +541,11 @@ fn a_warm_start_that_fails_is_retried_from_the_atomic_guess() {
     use flipswarm::dynamics::{Trajectory, TrajectoryState};
     use flipswarm::electronic::qc::backend::MrsfBackend;
     use flipswarm::electronic::{Backend, Snapshot};
-    let text = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/data/ethylene-warm-start-scf-fails.json")).unwrap();
+    let text = std::fs::read_to_string(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/data/ethylene-warm-start-scf-fails.json"
+    ))
+    .unwrap();
     let fixture: serde_json::Value = serde_json::from_str(&text).unwrap();
     let state: TrajectoryState = serde_json::from_value(fixture["state"].clone()).unwrap();
     let snapshot: Snapshot = serde_json::from_value(fixture["snapshot"].clone()).unwrap();
@@ -375,9 +553,18 @@ fn a_warm_start_that_fails_is_retried_from_the_atomic_guess() {
     backend.restore(&snapshot).unwrap();
     let before = state.energies.clone();
     let mut traj = Trajectory::resume(&mut backend, ethylene_dynamics_settings(150.0), state);
-    traj.step().unwrap_or_else(|e| panic!("the step failed: {e}"));
+    traj.step()
+        .unwrap_or_else(|e| panic!("the step failed: {e}"));
     let w = &traj.state.diagnostics.warnings;
-    eprintln!("warnings {w:?}; S0 {:.6} → {:.6} Eh, S1 {:.6} → {:.6} Eh", before[0], traj.state.energies[0], before[1], traj.state.energies[1]);
-    assert!(w.iter().any(|w| w.contains("converged from the atomic guess") && w.contains("SCF not converged in 128 iterations")), "{w:?}");
+    eprintln!(
+        "warnings {w:?}; S0 {:.6} → {:.6} Eh, S1 {:.6} → {:.6} Eh",
+        before[0], traj.state.energies[0], before[1], traj.state.energies[1]
+    );
+    assert!(
+        w.iter()
+            .any(|w| w.contains("converged from the atomic guess")
+                && w.contains("SCF not converged in 128 iterations")),
+        "{w:?}"
+    );
     assert_eq!(traj.state.active, 0);
 }

@@ -20,8 +20,6 @@ use flipswarm::electronic::qc::integrals::JkOptions;
 use flipswarm::electronic::qc::scf::{self, hartree_fock, Electrons, Guess, Reference, ScfOptions};
 use serde_json::Value;
 
-
-
 fn reference_of(method: &str) -> Reference {
     match method {
         "rks" => Reference::Restricted,
@@ -68,10 +66,19 @@ fn kohn_sham_energies_match_the_reference_library() {
     let mut n = 0;
     let mut worst: f64 = 0.0;
     for case in fx["cases"].as_array().unwrap() {
-        let Some(functional) = case["functional"].as_str() else { continue };
+        let Some(functional) = case["functional"].as_str() else {
+            continue;
+        };
         let (basis, el, reference) = setup(case);
-        let r = kohn_sham(&basis, el, reference, &Guess::AtomicSuperposition, &tight(), &ks_options(functional, "fine"))
-            .unwrap_or_else(|e| panic!("{} {} {functional}: {e}", case["molecule"], case["method"]));
+        let r = kohn_sham(
+            &basis,
+            el,
+            reference,
+            &Guess::AtomicSuperposition,
+            &tight(),
+            &ks_options(functional, "fine"),
+        )
+        .unwrap_or_else(|e| panic!("{} {} {functional}: {e}", case["molecule"], case["method"]));
         let expect = case["energy"].as_f64().unwrap();
         let residual = (expect - case["grid_check"].as_f64().unwrap()).abs();
         let err = (r.energy - expect).abs();
@@ -87,10 +94,23 @@ fn kohn_sham_energies_match_the_reference_library() {
             r.grid_electrons.unwrap(),
             r.iterations
         );
-        assert!(residual < 1e-7, "the reference itself is not grid-converged");
-        assert!(err < 1e-6, "{} {} {functional}: {} vs {expect}", case["molecule"], case["method"], r.energy);
+        assert!(
+            residual < 1e-7,
+            "the reference itself is not grid-converged"
+        );
+        assert!(
+            err < 1e-6,
+            "{} {} {functional}: {} vs {expect}",
+            case["molecule"],
+            case["method"],
+            r.energy
+        );
         if let Some(s2) = case.get("s_squared").and_then(Value::as_f64) {
-            assert!((r.s_squared - s2).abs() < 1e-5, "<S2> {} vs {s2}", r.s_squared);
+            assert!(
+                (r.s_squared - s2).abs() < 1e-5,
+                "<S2> {} vs {s2}",
+                r.s_squared
+            );
         }
         worst = worst.max(err);
         n += 1;
@@ -104,7 +124,9 @@ fn case<'a>(fx: &'a Value, molecule: &str, method: &str, functional: &str) -> &'
         .as_array()
         .unwrap()
         .iter()
-        .find(|c| c["molecule"] == molecule && c["method"] == method && c["functional"] == functional)
+        .find(|c| {
+            c["molecule"] == molecule && c["method"] == method && c["functional"] == functional
+        })
         .unwrap_or_else(|| panic!("no case {molecule} {method} {functional}"))
 }
 
@@ -119,9 +141,20 @@ fn grid_levels_converge() {
     let expect = c["energy"].as_f64().unwrap();
     let mut errors = Vec::new();
     for level in ["coarse", "medium", "fine", "ultrafine"] {
-        let r = kohn_sham(&basis, el, reference, &Guess::AtomicSuperposition, &tight(), &ks_options("bhhlyp", level)).unwrap();
+        let r = kohn_sham(
+            &basis,
+            el,
+            reference,
+            &Guess::AtomicSuperposition,
+            &tight(),
+            &ks_options("bhhlyp", level),
+        )
+        .unwrap();
         let err = (r.energy - expect).abs();
-        eprintln!("{level:10} |dE| = {err:.2e} Eh, electrons off by {:.1e}", (r.grid_electrons.unwrap() - 8.0).abs());
+        eprintln!(
+            "{level:10} |dE| = {err:.2e} Eh, electrons off by {:.1e}",
+            (r.grid_electrons.unwrap() - 8.0).abs()
+        );
         errors.push(err);
     }
     assert!(errors[0] > errors[2] && errors[1] > errors[2], "{errors:?}");
@@ -137,19 +170,66 @@ fn closed_shell_kohn_sham_references_agree_and_hf_is_hartree_fock() {
     let fx = fixture("scf_energies.json");
     let c = case(&fx, "h2o", "rks", "bhhlyp");
     let (basis, el, _) = setup(c);
-    let e: Vec<f64> = [Reference::Restricted, Reference::RestrictedOpen, Reference::Unrestricted]
-        .iter()
-        .map(|&r| kohn_sham(&basis, el, r, &Guess::AtomicSuperposition, &tight(), &ks_options("bhhlyp", "medium")).unwrap().energy)
-        .collect();
-    assert!((e[0] - e[1]).abs() < 1e-9 && (e[0] - e[2]).abs() < 1e-9, "{e:?}");
-    let via_ks = kohn_sham(&basis, el, Reference::Restricted, &Guess::AtomicSuperposition, &tight(), &ks_options("hf", "coarse")).unwrap();
-    let hf = hartree_fock(&basis, el, Reference::Restricted, &Guess::AtomicSuperposition, &tight(), JkOptions::default()).unwrap();
+    let e: Vec<f64> = [
+        Reference::Restricted,
+        Reference::RestrictedOpen,
+        Reference::Unrestricted,
+    ]
+    .iter()
+    .map(|&r| {
+        kohn_sham(
+            &basis,
+            el,
+            r,
+            &Guess::AtomicSuperposition,
+            &tight(),
+            &ks_options("bhhlyp", "medium"),
+        )
+        .unwrap()
+        .energy
+    })
+    .collect();
+    assert!(
+        (e[0] - e[1]).abs() < 1e-9 && (e[0] - e[2]).abs() < 1e-9,
+        "{e:?}"
+    );
+    let via_ks = kohn_sham(
+        &basis,
+        el,
+        Reference::Restricted,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        &ks_options("hf", "coarse"),
+    )
+    .unwrap();
+    let hf = hartree_fock(
+        &basis,
+        el,
+        Reference::Restricted,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap();
     assert!((via_ks.energy - hf.energy).abs() < 1e-10);
     assert_eq!(via_ks.xc, 0.0);
     // A functional given as a sum of libxc parts equals its preset
     // (BH&HLYP = 0.5 HF + 0.5 B88 + LYP, as libxc defines it).
-    let sum = kohn_sham(&basis, el, Reference::Restricted, &Guess::AtomicSuperposition, &tight(), &ks_options("0.5*HF+0.5*GGA_X_B88+GGA_C_LYP", "medium")).unwrap();
-    assert!((sum.energy - e[0]).abs() < 1e-9, "{} vs {}", sum.energy, e[0]);
+    let sum = kohn_sham(
+        &basis,
+        el,
+        Reference::Restricted,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        &ks_options("0.5*HF+0.5*GGA_X_B88+GGA_C_LYP", "medium"),
+    )
+    .unwrap();
+    assert!(
+        (sum.energy - e[0]).abs() < 1e-9,
+        "{} vs {}",
+        sum.energy,
+        e[0]
+    );
 }
 
 // Warm start for dynamics: the ROKS orbitals of the previous geometry
@@ -160,7 +240,15 @@ fn roks_warm_start_needs_fewer_iterations() {
     let c = case(&fx, "ch2o", "roks", "bhhlyp");
     let (basis, el, reference) = setup(c);
     let opts = ks_options("bhhlyp", "medium");
-    let first = kohn_sham(&basis, el, reference, &Guess::AtomicSuperposition, &tight(), &opts).unwrap();
+    let first = kohn_sham(
+        &basis,
+        el,
+        reference,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        &opts,
+    )
+    .unwrap();
     let mut mol = molecule_from(&c["atoms"]);
     let mut q = mol.positions_flat_bohr();
     for (k, x) in q.iter_mut().enumerate() {
@@ -168,17 +256,31 @@ fn roks_warm_start_needs_fewer_iterations() {
     }
     mol.set_positions_flat_bohr(&q).unwrap();
     let moved = BasisSet::builtin(&mol, "6-31G*").unwrap();
-    let cold = kohn_sham(&moved, el, reference, &Guess::AtomicSuperposition, &tight(), &opts).unwrap();
-    let warm = kohn_sham(
+    let cold = kohn_sham(
         &moved,
         el,
         reference,
-        &Guess::Orbitals { alpha: first.orbitals_alpha.clone(), beta: first.orbitals_beta.clone() },
+        &Guess::AtomicSuperposition,
         &tight(),
         &opts,
     )
     .unwrap();
-    eprintln!("iterations: cold {}, warm {}", cold.iterations, warm.iterations);
+    let warm = kohn_sham(
+        &moved,
+        el,
+        reference,
+        &Guess::Orbitals {
+            alpha: first.orbitals_alpha.clone(),
+            beta: first.orbitals_beta.clone(),
+        },
+        &tight(),
+        &opts,
+    )
+    .unwrap();
+    eprintln!(
+        "iterations: cold {}, warm {}",
+        cold.iterations, warm.iterations
+    );
     assert!((warm.energy - cold.energy).abs() < 1e-8);
     assert!(warm.iterations < cold.iterations);
 }
@@ -204,19 +306,47 @@ fn hard_geometries_converge_and_direct_equals_in_core() {
         let mol = Molecule::from_elements_positions_bohr(&[o, h, h], &g).unwrap();
         let basis = BasisSet::builtin(&mol, "6-31G*").unwrap();
         let el = Electrons::from_charge_multiplicity(10, 0, 3).unwrap();
-        let r = kohn_sham(&basis, el, Reference::RestrictedOpen, &Guess::Core, &tight(), &ks_options("bhhlyp", "coarse"))
-            .unwrap_or_else(|e| panic!("{g:?}: {e}"));
-        let lowest = r.history.iter().map(|h| h.energy).fold(f64::INFINITY, f64::min);
+        let r = kohn_sham(
+            &basis,
+            el,
+            Reference::RestrictedOpen,
+            &Guess::Core,
+            &tight(),
+            &ks_options("bhhlyp", "coarse"),
+        )
+        .unwrap_or_else(|e| panic!("{g:?}: {e}"));
+        let lowest = r
+            .history
+            .iter()
+            .map(|h| h.energy)
+            .fold(f64::INFINITY, f64::min);
         assert!(r.energy <= lowest + 1e-8, "{} vs {lowest}", r.energy);
         assert!(r.history.last().unwrap().gradient < 1e-7);
     }
     let (basis, el, _) = setup(c);
     let run = |max: usize| {
         let mut o = ks_options("bhhlyp", "coarse");
-        o.jk = JkOptions { max_in_core_bytes: max, threshold: 1e-13, ..JkOptions::default() };
-        kohn_sham(&basis, el, Reference::RestrictedOpen, &Guess::AtomicSuperposition, &tight(), &o).unwrap()
+        o.jk = JkOptions {
+            max_in_core_bytes: max,
+            threshold: 1e-13,
+            ..JkOptions::default()
+        };
+        kohn_sham(
+            &basis,
+            el,
+            Reference::RestrictedOpen,
+            &Guess::AtomicSuperposition,
+            &tight(),
+            &o,
+        )
+        .unwrap()
     };
     let (a, b) = (run(usize::MAX), run(0));
     assert!(a.in_core && !b.in_core);
-    assert!((a.energy - b.energy).abs() < 1e-10, "{} vs {}", a.energy, b.energy);
+    assert!(
+        (a.energy - b.energy).abs() < 1e-10,
+        "{} vs {}",
+        a.energy,
+        b.energy
+    );
 }

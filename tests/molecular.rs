@@ -22,20 +22,32 @@ use flipswarm::electronic::qc::scf::{Electrons, Reference, ScfOptions};
 use flipswarm::electronic::{Backend, Request};
 use std::sync::Arc;
 
-
-
 fn spec(mol: Molecule, basis: &str, potential: Potential, singlets: usize) -> Arc<MolecularSpec> {
-    let z: usize = mol.atoms.iter().map(|a| a.element.atomic_number() as usize).sum();
+    let z: usize = mol
+        .atoms
+        .iter()
+        .map(|a| a.element.atomic_number() as usize)
+        .sum();
     let calculation = ScfEnergy {
         molecule: mol,
         basis: BasisSetData::builtin(basis).unwrap(),
         harmonics: None,
-        electrons: Electrons { alpha: z / 2 + 1, beta: z / 2 - 1 },
+        electrons: Electrons {
+            alpha: z / 2 + 1,
+            beta: z / 2 - 1,
+        },
         reference: Reference::RestrictedOpen,
         potential,
-        scf: ScfOptions { gradient_tolerance: 1e-9, energy_tolerance: 1e-11, ..ScfOptions::default() },
+        scf: ScfOptions {
+            gradient_tolerance: 1e-9,
+            energy_tolerance: 1e-11,
+            ..ScfOptions::default()
+        },
         jk: JkOptions::default(),
-        davidson: DavidsonOptions { residual_tolerance: 1e-8, ..DavidsonOptions::default() },
+        davidson: DavidsonOptions {
+            residual_tolerance: 1e-8,
+            ..DavidsonOptions::default()
+        },
     };
     Arc::new(MolecularSpec {
         calculation,
@@ -46,7 +58,10 @@ fn spec(mol: Molecule, basis: &str, potential: Potential, singlets: usize) -> Ar
 }
 
 fn bhhlyp_coarse() -> Potential {
-    Potential::KohnSham { functional: "bhhlyp".into(), grid: GridSpec::level("coarse").unwrap() }
+    Potential::KohnSham {
+        functional: "bhhlyp".into(),
+        grid: GridSpec::level("coarse").unwrap(),
+    }
 }
 
 fn coordinates(mol: &Molecule) -> Vec<f64> {
@@ -82,15 +97,41 @@ fn time_derivative_couplings_match_coupling_vectors() {
             }
         })
         .collect();
-    let v: Vec<f64> = (0..n).map(|k| 1e-3 * twist[k] + 2e-4 * ((k as f64) * 0.7).sin()).collect();
+    let v: Vec<f64> = (0..n)
+        .map(|k| 1e-3 * twist[k] + 2e-4 * ((k as f64) * 0.7).sin())
+        .collect();
     let dt = 0.5; // a.u. of time: displacements ~1e-3 bohr
     let mut b = MrsfBackend::new(spec(mol, "3-21G", bhhlyp_coarse(), 3));
-    let couplings = b.compute(&q0, &Request { couplings: true, ..Request::default() }).unwrap().couplings.clone().unwrap();
+    let couplings = b
+        .compute(
+            &q0,
+            &Request {
+                couplings: true,
+                ..Request::default()
+            },
+        )
+        .unwrap()
+        .couplings
+        .clone()
+        .unwrap();
     // A step centred on R: S_IJ = <ψ_I(R − ṘΔt/2)|ψ_J(R + ṘΔt/2)>.
-    let (qa, qb): (Vec<f64>, Vec<f64>) = (0..n).map(|k| (q0[k] - 0.5 * v[k] * dt, q0[k] + 0.5 * v[k] * dt)).unzip();
+    let (qa, qb): (Vec<f64>, Vec<f64>) = (0..n)
+        .map(|k| (q0[k] - 0.5 * v[k] * dt, q0[k] + 0.5 * v[k] * dt))
+        .unzip();
     let mut step = MrsfBackend::new(spec(ethylene(60.0), "3-21G", bhhlyp_coarse(), 3));
     step.compute(&qa, &Request::energies()).unwrap();
-    let mut s = step.compute(&qb, &Request { overlaps: true, ..Request::default() }).unwrap().overlaps.clone().unwrap();
+    let mut s = step
+        .compute(
+            &qb,
+            &Request {
+                overlaps: true,
+                ..Request::default()
+            },
+        )
+        .unwrap()
+        .overlaps
+        .clone()
+        .unwrap();
     // Raw phases: align each state at R + ṘΔt with itself at R.
     for j in 0..3 {
         if s[(j, j)] < 0.0 {
@@ -98,7 +139,11 @@ fn time_derivative_couplings_match_coupling_vectors() {
         }
     }
     for i in 0..3 {
-        assert!((s[(i, i)].abs() - 1.0).abs() < 1e-4, "self-overlap {i}: {}", s[(i, i)]);
+        assert!(
+            (s[(i, i)].abs() - 1.0).abs() < 1e-4,
+            "self-overlap {i}: {}",
+            s[(i, i)]
+        );
     }
     let sts = s.transpose() * &s;
     assert!((sts - nalgebra::DMatrix::<f64>::identity(3, 3)).amax() < 1e-5);
@@ -109,8 +154,14 @@ fn time_derivative_couplings_match_coupling_vectors() {
         let back: Vec<f64> = couplings.get(j, i);
         assert!(d.iter().zip(&back).all(|(a, b)| a == &-b));
         eprintln!("pair ({i},{j}): overlap TDC {tdc:.6e}, d·v {dv:.6e}");
-        assert!(dv.abs() > 1e-6, "pair ({i},{j}): coupling too small to test ({dv:e})");
-        assert!((tdc - dv).abs() < 1e-3 * dv.abs(), "pair ({i},{j}): TDC {tdc:e} vs d·v {dv:e}");
+        assert!(
+            dv.abs() > 1e-6,
+            "pair ({i},{j}): coupling too small to test ({dv:e})"
+        );
+        assert!(
+            (tdc - dv).abs() < 1e-3 * dv.abs(),
+            "pair ({i},{j}): TDC {tdc:e} vs d·v {dv:e}"
+        );
     }
 }
 
@@ -128,27 +179,43 @@ fn analytic_and_numerical_back_end_gradients_agree() {
     let q = coordinates(&mol);
     let numerical = spec(mol.clone(), "3-21G", bhhlyp_coarse(), 3);
     let mut analytic = (*numerical).clone();
-    analytic.gradients = GradientMethod::Analytic { zvector: ZVectorOptions::default(), coupling_step: 1e-3 };
+    analytic.gradients = GradientMethod::Analytic {
+        zvector: ZVectorOptions::default(),
+        coupling_step: 1e-3,
+    };
     let mut a = MrsfBackend::new(Arc::new(analytic));
     let mut b = MrsfBackend::new(numerical);
-    let all = Request { gradients: vec![0, 1, 2], ..Request::default() };
+    let all = Request {
+        gradients: vec![0, 1, 2],
+        ..Request::default()
+    };
     let gb = b.compute(&q, &all).unwrap().clone();
     let first = a.compute(&q, &Request::gradient_of(1)).unwrap().clone();
     assert_eq!(first.gradients.len(), 1);
     let ga = a.compute(&q, &all).unwrap().clone();
-    assert_eq!(a.timings().geometries, 1, "the second request recomputed the geometry");
+    assert_eq!(
+        a.timings().geometries,
+        1,
+        "the second request recomputed the geometry"
+    );
     for s in 0..3 {
         let (x, y) = (ga.gradient(s).unwrap(), gb.gradient(s).unwrap());
-        let worst = x.iter().zip(y).map(|(u, v)| (u - v).abs()).fold(0.0, f64::max);
+        let worst = x
+            .iter()
+            .zip(y)
+            .map(|(u, v)| (u - v).abs())
+            .fold(0.0, f64::max);
         let sum: [f64; 3] = [0, 1, 2].map(|k| x.iter().skip(k).step_by(3).sum::<f64>());
         eprintln!("S{s}: max |analytic − numerical| = {worst:.2e} Eh/bohr, net force {sum:?}");
         assert!(worst < 2e-6, "S{s}: {worst:e}");
-        assert!(sum.iter().all(|f| f.abs() < 1e-8), "S{s}: net force {sum:?}");
+        assert!(
+            sum.iter().all(|f| f.abs() < 1e-8),
+            "S{s}: net force {sum:?}"
+        );
     }
 }
 
 // ------------------------------------------------------------- whole runs
-
 
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
@@ -196,12 +263,22 @@ seed = 11
 }
 
 fn spawn(args: &[&str]) -> Child {
-    Command::new(BIN).args(args).stdout(Stdio::null()).stderr(Stdio::piped()).spawn().expect("start flipswarm")
+    Command::new(BIN)
+        .args(args)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("start flipswarm")
 }
 
 fn run_ok(args: &[&str]) {
     let out = spawn(args).wait_with_output().unwrap();
-    assert_eq!(out.status.code(), Some(0), "flipswarm {args:?}: {}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "flipswarm {args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
 }
 
 fn part(dir: &Path) -> PathBuf {
@@ -211,9 +288,25 @@ fn part(dir: &Path) -> PathBuf {
 fn bits(t: &flipswarm::ensemble::h5::TrajectoryData) -> Vec<u64> {
     let mut v = Vec::new();
     for r in &t.rows {
-        v.extend([r.step, r.time.to_bits(), r.active as u64, r.kinetic.to_bits(), r.potential.to_bits(), r.total.to_bits()]);
-        v.extend(r.q.iter().chain(&r.v).chain(&r.energies).map(|x| x.to_bits()));
-        v.extend(r.amplitudes.iter().flat_map(|c| [c.re.to_bits(), c.im.to_bits()]));
+        v.extend([
+            r.step,
+            r.time.to_bits(),
+            r.active as u64,
+            r.kinetic.to_bits(),
+            r.potential.to_bits(),
+            r.total.to_bits(),
+        ]);
+        v.extend(
+            r.q.iter()
+                .chain(&r.v)
+                .chain(&r.energies)
+                .map(|x| x.to_bits()),
+        );
+        v.extend(
+            r.amplitudes
+                .iter()
+                .flat_map(|c| [c.re.to_bits(), c.im.to_bits()]),
+        );
     }
     v
 }
@@ -227,7 +320,15 @@ fn molecular_run_killed_and_resumed_is_bit_identical() {
     let dir = common::scratch("molecular", "kill");
     let ens = methylene_ensemble(&dir, 1, 60.0, 2);
     let want = dir.join("reference");
-    run_ok(&["-q", "run", ens.to_str().unwrap(), "-o", want.to_str().unwrap(), "--threads", "2"]);
+    run_ok(&[
+        "-q",
+        "run",
+        ens.to_str().unwrap(),
+        "-o",
+        want.to_str().unwrap(),
+        "--threads",
+        "2",
+    ]);
     let got = dir.join("killed");
     let g = got.to_str().unwrap();
     let mut kills = 0;
@@ -235,7 +336,15 @@ fn molecular_run_killed_and_resumed_is_bit_identical() {
     let mut finished = false;
     for (attempt, ms) in delays.iter().cycle().take(40).enumerate() {
         let args: Vec<&str> = if attempt == 0 {
-            vec!["-q", "run", ens.to_str().unwrap(), "-o", g, "--threads", "2"]
+            vec![
+                "-q",
+                "run",
+                ens.to_str().unwrap(),
+                "-o",
+                g,
+                "--threads",
+                "2",
+            ]
         } else {
             vec!["-q", "resume", g, "--threads", "2"]
         };
@@ -269,7 +378,10 @@ fn molecular_run_killed_and_resumed_is_bit_identical() {
     }
     assert!(finished, "the run never finished");
     assert!(kills >= 2, "only {kills} kills landed; lengthen the run");
-    let (a, b) = (common::read_all(&part(&got)), common::read_all(&part(&want)));
+    let (a, b) = (
+        common::read_all(&part(&got)),
+        common::read_all(&part(&want)),
+    );
     assert_eq!(a.len(), b.len());
     for (x, y) in a.iter().zip(&b) {
         assert_eq!(x.rows.len(), y.rows.len());
@@ -293,7 +405,15 @@ fn molecular_nve_dynamics_conserves_energy() {
     let dir = common::scratch("molecular", "nve");
     let ens = methylene_ensemble(&dir, 0, 50.0, 1);
     let run = dir.join("run");
-    run_ok(&["-q", "run", ens.to_str().unwrap(), "-o", run.to_str().unwrap(), "--set", "dynamics.decoherence=\"none\""]);
+    run_ok(&[
+        "-q",
+        "run",
+        ens.to_str().unwrap(),
+        "-o",
+        run.to_str().unwrap(),
+        "--set",
+        "dynamics.decoherence=\"none\"",
+    ]);
     let t = &common::read_all(&part(&run))[0];
     assert_eq!(t.rows.len(), 101);
     let e: Vec<f64> = t.rows.iter().map(|r| r.total).collect();
@@ -311,7 +431,12 @@ fn molecular_nve_dynamics_conserves_energy() {
 
 fn stdout_of(args: &[&str]) -> String {
     let out = Command::new(BIN).args(args).output().unwrap();
-    assert_eq!(out.status.code(), Some(0), "flipswarm {args:?}: {}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "flipswarm {args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     String::from_utf8_lossy(&out.stdout).into_owned()
 }
 
@@ -329,7 +454,21 @@ fn demo_pipeline_in_reduced_form() {
     let dir = common::scratch("molecular", "demo");
     let root = Path::new(env!("CARGO_MANIFEST_DIR"));
     let d = |name: &str| dir.join(name).to_str().unwrap().to_string();
-    stdout_of(&["-q", "optimize", root.join("ensembles/molecules/ethylene.xyz").to_str().unwrap(), "--method", "rks", "--basis", "STO-3G", "--grid", "coarse", "-o", &d("minimum.xyz")]);
+    stdout_of(&[
+        "-q",
+        "optimize",
+        root.join("ensembles/molecules/ethylene.xyz")
+            .to_str()
+            .unwrap(),
+        "--method",
+        "rks",
+        "--basis",
+        "STO-3G",
+        "--grid",
+        "coarse",
+        "-o",
+        &d("minimum.xyz"),
+    ]);
     let toml = std::fs::read_to_string(root.join("ensembles/ethylene-s1.toml")).unwrap();
     let toml = toml
         .lines()
@@ -347,23 +486,67 @@ fn demo_pipeline_in_reduced_form() {
     std::fs::write(dir.join("ethylene.toml"), toml).unwrap();
     let modes = stdout_of(&["-q", "modes", &d("ethylene.toml"), "-o", &d("modes.toml")]);
     assert!(modes.contains("12 modes"), "{modes}");
-    let wavenumbers: Vec<f64> = modes.lines().skip(2).filter_map(|l| l.split_whitespace().nth(1)?.parse().ok()).collect();
+    let wavenumbers: Vec<f64> = modes
+        .lines()
+        .skip(2)
+        .filter_map(|l| l.split_whitespace().nth(1)?.parse().ok())
+        .collect();
     assert_eq!(wavenumbers.len(), 12);
     assert!(wavenumbers.iter().all(|&w| w > 100.0), "{wavenumbers:?}");
-    assert!(wavenumbers.iter().any(|&w| (1500.0..2100.0).contains(&w)), "no C=C stretch: {wavenumbers:?}");
-    stdout_of(&["-q", "sample", &d("modes.toml"), "-n", "2", "--seed", "5", "--temperature-k", "0", "-o", &d("ic.h5")]);
+    assert!(
+        wavenumbers.iter().any(|&w| (1500.0..2100.0).contains(&w)),
+        "no C=C stretch: {wavenumbers:?}"
+    );
     stdout_of(&[
-        "-q", "run", &d("ethylene.toml"), "--set", "start.sampling=\"file\"", "--set", "start.initial_conditions=\"ic.h5\"",
-        "--set", "swarm.trajectories=2", "--set", "dynamics.duration_fs=1.0", "-o", &d("run"),
+        "-q",
+        "sample",
+        &d("modes.toml"),
+        "-n",
+        "2",
+        "--seed",
+        "5",
+        "--temperature-k",
+        "0",
+        "-o",
+        &d("ic.h5"),
+    ]);
+    stdout_of(&[
+        "-q",
+        "run",
+        &d("ethylene.toml"),
+        "--set",
+        "start.sampling=\"file\"",
+        "--set",
+        "start.initial_conditions=\"ic.h5\"",
+        "--set",
+        "swarm.trajectories=2",
+        "--set",
+        "dynamics.duration_fs=1.0",
+        "-o",
+        &d("run"),
     ]);
     let runs = common::read_all(&part(&dir.join("run")));
     assert_eq!(runs.len(), 2);
     for t in &runs {
         assert_eq!(t.rows.len(), 3);
         assert_eq!(t.rows[0].active, 1);
-        assert!(matches!(t.status, flipswarm::dynamics::Status::Finished(_)), "{:?}", t.status);
+        assert!(
+            matches!(t.status, flipswarm::dynamics::Status::Finished(_)),
+            "{:?}",
+            t.status
+        );
     }
-    stdout_of(&["-q", "export", &d("run"), "--trajectory", "0", "--format", "xyz", "-o", &d("t0.xyz")]);
+    stdout_of(&[
+        "-q",
+        "export",
+        &d("run"),
+        "--trajectory",
+        "0",
+        "--format",
+        "xyz",
+        "-o",
+        &d("t0.xyz"),
+    ]);
     let xyz = std::fs::read_to_string(dir.join("t0.xyz")).unwrap();
     assert_eq!(xyz.lines().filter(|l| l.trim() == "6").count(), 3);
     stdout_of(&["-q", "analyze", &d("run"), "--out", &d("analysis")]);
@@ -381,15 +564,29 @@ fn scf_failure_ends_the_trajectory_cleanly() {
     let ens = methylene_ensemble(&dir, 1, 2.0, 1);
     let run = dir.join("run");
     let out = Command::new(BIN)
-        .args(["-q", "run", ens.to_str().unwrap(), "-o", run.to_str().unwrap(), "--set", "model.scf_tolerance=1e-15"])
+        .args([
+            "-q",
+            "run",
+            ens.to_str().unwrap(),
+            "-o",
+            run.to_str().unwrap(),
+            "--set",
+            "model.scf_tolerance=1e-15",
+        ])
         .output()
         .unwrap();
-    let text = format!("{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr));
+    let text = format!(
+        "{}{}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
     assert_ne!(out.status.code(), Some(0), "{text}");
     assert!(text.contains("1 failed"), "{text}");
     let t = &common::read_all(&part(&run))[0];
     match &t.status {
-        flipswarm::dynamics::Status::Failed { reason, .. } => assert!(reason.contains("SCF"), "{reason}"),
+        flipswarm::dynamics::Status::Failed { reason, .. } => {
+            assert!(reason.contains("SCF"), "{reason}")
+        }
         other => panic!("status {other:?}"),
     }
 }
@@ -408,7 +605,11 @@ impl Backend for StallsAfter {
     fn info(&self) -> flipswarm::electronic::BackendInfo {
         self.good.info()
     }
-    fn compute(&mut self, q: &[f64], request: &Request) -> Result<&flipswarm::electronic::Results, flipswarm::electronic::BackendError> {
+    fn compute(
+        &mut self,
+        q: &[f64],
+        request: &Request,
+    ) -> Result<&flipswarm::electronic::Results, flipswarm::electronic::BackendError> {
         if request.overlaps {
             self.steps += 1;
             if self.steps == self.good_steps + 1 {
@@ -422,9 +623,16 @@ impl Backend for StallsAfter {
         }
     }
     fn snapshot(&self) -> flipswarm::electronic::Snapshot {
-        if self.steps > self.good_steps { self.starved.snapshot() } else { self.good.snapshot() }
+        if self.steps > self.good_steps {
+            self.starved.snapshot()
+        } else {
+            self.good.snapshot()
+        }
     }
-    fn restore(&mut self, s: &flipswarm::electronic::Snapshot) -> Result<(), flipswarm::electronic::BackendError> {
+    fn restore(
+        &mut self,
+        s: &flipswarm::electronic::Snapshot,
+    ) -> Result<(), flipswarm::electronic::BackendError> {
         self.good.restore(s)
     }
 }
@@ -442,23 +650,43 @@ fn a_stalled_eigensolver_fails_that_trajectory_at_its_step() {
     use std::sync::atomic::AtomicBool;
     let dir = common::scratch("molecular", "stall");
     let ens = methylene_ensemble(&dir, 1, 4.0, 2);
-    let cfg = flipswarm::config::load_str(&std::fs::read_to_string(&ens).unwrap(), "methylene.toml", &dir, &[]).unwrap();
+    let cfg = flipswarm::config::load_str(
+        &std::fs::read_to_string(&ens).unwrap(),
+        "methylene.toml",
+        &dir,
+        &[],
+    )
+    .unwrap();
     let spec = match &cfg.model {
         flipswarm::config::ModelSpec::Molecule { spec, .. } => spec.clone(),
         other => panic!("{other:?}"),
     };
     let mut starved = (*spec).clone();
-    starved.calculation.davidson = DavidsonOptions { max_iterations: 1, dense_below: 0, ..starved.calculation.davidson.clone() };
+    starved.calculation.davidson = DavidsonOptions {
+        max_iterations: 1,
+        dense_below: 0,
+        ..starved.calculation.davidson.clone()
+    };
     let starved = Arc::new(starved);
     let factory = move |i: usize| -> Box<dyn Backend> {
         if i == 1 {
-            Box::new(StallsAfter { good: MrsfBackend::new(spec.clone()), starved: MrsfBackend::new(starved.clone()), good_steps: 3, steps: 0 })
+            Box::new(StallsAfter {
+                good: MrsfBackend::new(spec.clone()),
+                starved: MrsfBackend::new(starved.clone()),
+                good_steps: 3,
+                steps: 0,
+            })
         } else {
             Box::new(MrsfBackend::new(spec.clone()))
         }
     };
     let out = dir.join("run");
-    let opts = runner::Options { threads: 2, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let opts = runner::Options {
+        threads: 2,
+        stop: Arc::new(AtomicBool::new(false)),
+        factory: &factory,
+        progress_bar: false,
+    };
     let report = runner::start(&cfg, &out, (0, 1), &opts).unwrap();
     assert_eq!((report.finished, report.failed), (1, 1));
     let r = PartReader::open(&part(&out)).unwrap();
@@ -467,13 +695,19 @@ fn a_stalled_eigensolver_fails_that_trajectory_at_its_step() {
     match &failed.status {
         Status::Failed { step, reason } => {
             assert_eq!(*step, 3, "{reason}");
-            assert!(reason.contains("Davidson not converged after 1 iterations"), "{reason}");
+            assert!(
+                reason.contains("Davidson not converged after 1 iterations"),
+                "{reason}"
+            );
             assert!(reason.contains("step 4"), "{reason}");
         }
         other => panic!("status {other:?}"),
     }
     assert_eq!(failed.rows.last().map(|row| row.step), Some(3));
-    assert!(failed.rows.iter().all(|row| row.energies.iter().chain(&row.q).all(|x| x.is_finite())));
+    assert!(failed
+        .rows
+        .iter()
+        .all(|row| row.energies.iter().chain(&row.q).all(|x| x.is_finite())));
 }
 
 // Source: state tracking by overlaps (common practice of surface hopping
@@ -489,12 +723,39 @@ fn an_empty_state_exchanged_with_an_untracked_one_is_passed_over() {
     let dir = common::scratch("molecular", "intruder");
     let ens = methylene_ensemble(&dir, 0, 10.0, 1);
     let run = dir.join("run");
-    run_ok(&["-q", "run", ens.to_str().unwrap(), "-o", run.to_str().unwrap(), "--set", "model.functional=\"bhhlyp\"", "--set", "model.grid=\"coarse\""]);
+    run_ok(&[
+        "-q",
+        "run",
+        ens.to_str().unwrap(),
+        "-o",
+        run.to_str().unwrap(),
+        "--set",
+        "model.functional=\"bhhlyp\"",
+        "--set",
+        "model.grid=\"coarse\"",
+    ]);
     let t = &common::read_all(&part(&run))[0];
-    assert!(matches!(t.status, flipswarm::dynamics::Status::Finished(_)), "{:?}", t.status);
+    assert!(
+        matches!(t.status, flipswarm::dynamics::Status::Finished(_)),
+        "{:?}",
+        t.status
+    );
     assert_eq!(t.rows.len(), 21);
-    let w: Vec<&str> = t.warnings.iter().filter(|w| w.text.contains("exchanged with untracked states")).map(|w| w.text.as_str()).collect();
-    assert!(!w.is_empty() && w[0].contains("states [2]") && w[0].contains("at step 12"), "{:?}", t.warnings);
-    let swing = t.rows.iter().map(|r| (r.total - t.rows[0].total).abs()).fold(0.0, f64::max);
+    let w: Vec<&str> = t
+        .warnings
+        .iter()
+        .filter(|w| w.text.contains("exchanged with untracked states"))
+        .map(|w| w.text.as_str())
+        .collect();
+    assert!(
+        !w.is_empty() && w[0].contains("states [2]") && w[0].contains("at step 12"),
+        "{:?}",
+        t.warnings
+    );
+    let swing = t
+        .rows
+        .iter()
+        .map(|r| (r.total - t.rows[0].total).abs())
+        .fold(0.0, f64::max);
     assert!(swing < 2e-4, "total energy moved by {swing:e} Eh");
 }

@@ -33,12 +33,13 @@ use flipswarm::electronic::qc::response::{
     excited_states, ExcitedStates, Method, Mrsf, ResponseError, SpinFlip, StateRequest, StateSpin,
 };
 use flipswarm::electronic::qc::scf::fock::JkEngine;
-use flipswarm::electronic::qc::scf::{self, hartree_fock, Electrons, Guess, Reference, ScfOptions, ScfResult};
+use flipswarm::electronic::qc::scf::{
+    self, hartree_fock, Electrons, Guess, Reference, ScfOptions, ScfResult,
+};
 use nalgebra::{DMatrix, DVector};
 use std::collections::HashMap;
 
 // ---------------------------------------------------------------- set-up
-
 
 fn water() -> Molecule {
     molecule_of(&[
@@ -76,9 +77,20 @@ fn triplet(basis: &BasisSet) -> Electrons {
 fn rohf(basis: &BasisSet, el: Electrons) -> ScfResult {
     // Tighter than for ROKS: the CI comparisons use the orbitals, the
     // response the Fock matrices of the last iteration's density.
-    let opts = ScfOptions { energy_tolerance: 1e-12, gradient_tolerance: 1e-10, ..ScfOptions::default() };
-    hartree_fock(basis, el, Reference::RestrictedOpen, &Guess::AtomicSuperposition, &opts, JkOptions::default())
-        .unwrap()
+    let opts = ScfOptions {
+        energy_tolerance: 1e-12,
+        gradient_tolerance: 1e-10,
+        ..ScfOptions::default()
+    };
+    hartree_fock(
+        basis,
+        el,
+        Reference::RestrictedOpen,
+        &Guess::AtomicSuperposition,
+        &opts,
+        JkOptions::default(),
+    )
+    .unwrap()
 }
 
 fn roks(basis: &BasisSet, functional: &str) -> ScfResult {
@@ -87,8 +99,15 @@ fn roks(basis: &BasisSet, functional: &str) -> ScfResult {
         grid: GridSpec::level("medium").unwrap(),
         jk: JkOptions::default(),
     };
-    kohn_sham(basis, triplet(basis), Reference::RestrictedOpen, &Guess::AtomicSuperposition, &tight(), &opts)
-        .unwrap()
+    kohn_sham(
+        basis,
+        triplet(basis),
+        Reference::RestrictedOpen,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        &opts,
+    )
+    .unwrap()
 }
 
 fn engine(basis: &BasisSet) -> JkEngine {
@@ -111,12 +130,20 @@ fn davidson_opts() -> DavidsonOptions {
 }
 
 fn of_spin(states: &ExcitedStates, spin: StateSpin) -> Vec<f64> {
-    states.states.iter().filter(|s| s.spin == spin).map(|s| s.energy).collect()
+    states
+        .states
+        .iter()
+        .filter(|s| s.spin == spin)
+        .map(|s| s.energy)
+        .collect()
 }
 
 fn max_diff(a: &[f64], b: &[f64]) -> f64 {
     assert_eq!(a.len(), b.len());
-    a.iter().zip(b).map(|(x, y)| (x - y).abs()).fold(0.0, f64::max)
+    a.iter()
+        .zip(b)
+        .map(|(x, y)| (x - y).abs())
+        .fold(0.0, f64::max)
 }
 
 // ------------------------------------------- an independent determinant CI
@@ -151,7 +178,8 @@ impl Ci {
             let mut out = vec![0.0; dout.iter().product()];
             // transform index `step`
             let stride_in: [usize; 4] = [din[1] * din[2] * din[3], din[2] * din[3], din[3], 1];
-            let stride_out: [usize; 4] = [dout[1] * dout[2] * dout[3], dout[2] * dout[3], dout[3], 1];
+            let stride_out: [usize; 4] =
+                [dout[1] * dout[2] * dout[3], dout[2] * dout[3], dout[3], 1];
             for i0 in 0..dout[0] {
                 for i1 in 0..dout[1] {
                     for i2 in 0..dout[2] {
@@ -161,17 +189,28 @@ impl Ci {
                             for mu in 0..nbf {
                                 let mut j = idx;
                                 j[step] = mu;
-                                let src = j[0] * stride_in[0] + j[1] * stride_in[1] + j[2] * stride_in[2] + j[3];
+                                let src = j[0] * stride_in[0]
+                                    + j[1] * stride_in[1]
+                                    + j[2] * stride_in[2]
+                                    + j[3];
                                 s += c[(mu, idx[step])] * t[src];
                             }
-                            out[i0 * stride_out[0] + i1 * stride_out[1] + i2 * stride_out[2] + i3] = s;
+                            out[i0 * stride_out[0]
+                                + i1 * stride_out[1]
+                                + i2 * stride_out[2]
+                                + i3] = s;
                         }
                     }
                 }
             }
             t = out;
         }
-        Ci { n, h, eri: t, e_nuc: integrals::nuclear_repulsion(basis) }
+        Ci {
+            n,
+            h,
+            eri: t,
+            e_nuc: integrals::nuclear_repulsion(basis),
+        }
     }
 
     fn g(&self, p: usize, q: usize, r: usize, s: usize) -> f64 {
@@ -372,7 +411,13 @@ fn energy_and_residual(ci: &Ci, psi: &HashMap<u128, f64>, energy: f64) -> (f64, 
 }
 
 fn eigenvalues(h: &DMatrix<f64>) -> Vec<f64> {
-    let mut e: Vec<f64> = h.clone().symmetric_eigen().eigenvalues.iter().copied().collect();
+    let mut e: Vec<f64> = h
+        .clone()
+        .symmetric_eigen()
+        .eigenvalues
+        .iter()
+        .copied()
+        .collect();
     e.sort_by(f64::total_cmp);
     e
 }
@@ -395,17 +440,27 @@ fn h2_minimal_basis_is_full_ci() {
         assert_eq!((mrsf.singlet_dimension(), mrsf.triplet_dimension()), (3, 1));
         let m = mrsf.solve(3, 1, &DavidsonOptions::default()).unwrap();
         let mut eng = engine(&basis);
-        let sf = SpinFlip::new(&basis, &scf, 1.0, &mut eng).unwrap().solve(4, &DavidsonOptions::default()).unwrap();
+        let sf = SpinFlip::new(&basis, &scf, 1.0, &mut eng)
+            .unwrap()
+            .solve(4, &DavidsonOptions::default())
+            .unwrap();
         // Independent FCI: orthonormal AOs, all four Ms = 0 determinants.
         let s = integrals::overlap(&basis);
         let x = scf::orthogonalizer(&s, 1e-10);
         let ci = Ci::new(&basis, &x);
-        let dets: Vec<u128> = (0..2).flat_map(|a| (0..2).map(move |b| (1u128 << a) | (1u128 << (2 + b)))).collect();
-        let fci: Vec<f64> = eigenvalues(&ci.hamiltonian(&dets)).iter().map(|e| e + ci.e_nuc).collect();
+        let dets: Vec<u128> = (0..2)
+            .flat_map(|a| (0..2).map(move |b| (1u128 << a) | (1u128 << (2 + b))))
+            .collect();
+        let fci: Vec<f64> = eigenvalues(&ci.hamiltonian(&dets))
+            .iter()
+            .map(|e| e + ci.e_nuc)
+            .collect();
         let mut all_m: Vec<f64> = m.states.iter().map(|s| s.energy).collect();
         all_m.sort_by(f64::total_cmp);
         let all_sf: Vec<f64> = sf.states.iter().map(|s| s.energy).collect();
-        eprintln!("R = {r:.2}: FCI {fci:.10?}\n          MRSF {all_m:.10?}\n          SF {all_sf:.10?}");
+        eprintln!(
+            "R = {r:.2}: FCI {fci:.10?}\n          MRSF {all_m:.10?}\n          SF {all_sf:.10?}"
+        );
         assert!(max_diff(&all_m, &fci) < 1e-9, "MRSF vs FCI at R = {r}");
         assert!(max_diff(&all_sf, &fci) < 1e-9, "SF vs FCI at R = {r}");
         // The triplet is the reference itself (ω = 0).
@@ -413,10 +468,34 @@ fn h2_minimal_basis_is_full_ci() {
         if k == 0 {
             // The one-call front end gives the same states.
             let mut eng = engine(&basis);
-            let f = excited_states(&basis, &scf, 1.0, &mut eng, StateRequest { method: Method::SpinFlip, singlets: 2, triplets: 2 }, &DavidsonOptions::default()).unwrap();
+            let f = excited_states(
+                &basis,
+                &scf,
+                1.0,
+                &mut eng,
+                StateRequest {
+                    method: Method::SpinFlip,
+                    singlets: 2,
+                    triplets: 2,
+                },
+                &DavidsonOptions::default(),
+            )
+            .unwrap();
             assert!(max_diff(&energies(&f), &all_sf) < 1e-12);
             let mut eng = engine(&basis);
-            let f = excited_states(&basis, &scf, 1.0, &mut eng, StateRequest { method: Method::Mrsf, singlets: 3, triplets: 1 }, &DavidsonOptions::default()).unwrap();
+            let f = excited_states(
+                &basis,
+                &scf,
+                1.0,
+                &mut eng,
+                StateRequest {
+                    method: Method::Mrsf,
+                    singlets: 3,
+                    triplets: 1,
+                },
+                &DavidsonOptions::default(),
+            )
+            .unwrap();
             assert!(max_diff(&energies(&f), &all_m) < 1e-12);
             let e0 = m.states[m.ground.unwrap()].energy;
             assert!((e0 - (-1.1373)).abs() < 5e-5, "S0 = {e0}, textbook −1.1373");
@@ -439,25 +518,50 @@ fn sf_tda_exact_exchange_limit_is_ci_over_its_space() {
     let dense = sf.dense_matrix().unwrap();
     let asym = (&explicit - explicit.transpose()).amax();
     let err = (&dense - &explicit).amax();
-    eprintln!("SF dimension {}, |A_matrix-free − A_explicit| = {err:.1e}, asymmetry {asym:.1e}", sf.dimension());
+    eprintln!(
+        "SF dimension {}, |A_matrix-free − A_explicit| = {err:.1e}, asymmetry {asym:.1e}",
+        sf.dimension()
+    );
     assert!(err < 1e-10 && asym < 1e-10);
     let p = sf.partition();
-    let space = Space { n: p.n_mo, nc: p.n_core };
+    let space = Space {
+        n: p.n_mo,
+        nc: p.n_core,
+    };
     let ci = Ci::new(&basis, &scf.orbitals_alpha);
-    let e_ci: Vec<f64> = eigenvalues(&ci.hamiltonian(&space.plus_dets())).iter().map(|e| e + ci.e_nuc).collect();
+    let e_ci: Vec<f64> = eigenvalues(&ci.hamiltonian(&space.plus_dets()))
+        .iter()
+        .map(|e| e + ci.e_nuc)
+        .collect();
     let res = sf.solve(p.sf_dimension(), &dense_opts()).unwrap();
     let e_sf: Vec<f64> = res.states.iter().map(|s| s.energy).collect();
     let d = max_diff(&e_sf, &e_ci);
-    eprintln!("SF vs CI over {} determinants: {d:.1e} Eh; lowest ω (eV) {:?}", e_ci.len(),
-        res.states[..4].iter().map(|s| s.omega * 27.211386).collect::<Vec<_>>());
+    eprintln!(
+        "SF vs CI over {} determinants: {d:.1e} Eh; lowest ω (eV) {:?}",
+        e_ci.len(),
+        res.states[..4]
+            .iter()
+            .map(|s| s.omega * 27.211386)
+            .collect::<Vec<_>>()
+    );
     assert!(d < 1e-8);
     // From T−: the CI over Φ− gives the same spectrum; so does the code.
-    let minus: Vec<u128> = space.cols().flat_map(|a| space.rows().map(move |i| (i, a))).map(|(i, a)| space.minus(i, a).1).collect();
-    let e_ci_m: Vec<f64> = eigenvalues(&ci.hamiltonian(&minus)).iter().map(|e| e + ci.e_nuc).collect();
+    let minus: Vec<u128> = space
+        .cols()
+        .flat_map(|a| space.rows().map(move |i| (i, a)))
+        .map(|(i, a)| space.minus(i, a).1)
+        .collect();
+    let e_ci_m: Vec<f64> = eigenvalues(&ci.hamiltonian(&minus))
+        .iter()
+        .map(|e| e + ci.e_nuc)
+        .collect();
     assert!(max_diff(&e_ci_m, &e_ci) < 1e-8);
     let mirror = mirrored(&scf);
     let mut eng = engine(&basis);
-    let res_m = SpinFlip::new(&basis, &mirror, 1.0, &mut eng).unwrap().solve(6, &dense_opts()).unwrap();
+    let res_m = SpinFlip::new(&basis, &mirror, 1.0, &mut eng)
+        .unwrap()
+        .solve(6, &dense_opts())
+        .unwrap();
     let e_m: Vec<f64> = res_m.states.iter().map(|s| s.energy).collect();
     assert!(max_diff(&e_m, &e_sf[..6]) < 1e-10);
     // The SF <S²> formula against |S+ψ|² on the determinants.
@@ -465,15 +569,26 @@ fn sf_tda_exact_exchange_limit_is_ci_over_its_space() {
         let psi = space.expand(&s.x_plus, &s.x_minus);
         let s2 = s_squared(p.n_mo, &psi);
         let (e, r) = energy_and_residual(&ci, &psi, s.energy);
-        assert!((s2 - s.s_squared).abs() < 1e-10, "<S²> {s2} vs {}", s.s_squared);
-        assert!((e - s.energy).abs() < 1e-8 && r < 1e-7, "state energy {e} vs {}, residual {r}", s.energy);
+        assert!(
+            (s2 - s.s_squared).abs() < 1e-10,
+            "<S²> {s2} vs {}",
+            s.s_squared
+        );
+        assert!(
+            (e - s.energy).abs() < 1e-8 && r < 1e-7,
+            "state energy {e} vs {}, residual {r}",
+            s.energy
+        );
     }
 }
 
 /// The Ms = −1 image of a high-spin ROHF/ROKS result (spin labels swapped).
 fn mirrored(scf: &ScfResult) -> ScfResult {
     let mut m = scf.clone();
-    m.electrons = Electrons { alpha: scf.electrons.beta, beta: scf.electrons.alpha };
+    m.electrons = Electrons {
+        alpha: scf.electrons.beta,
+        beta: scf.electrons.alpha,
+    };
     m.fock_alpha = scf.fock_beta.clone();
     m.fock_beta = scf.fock_alpha.clone();
     m.density_alpha = scf.density_beta.clone();
@@ -490,7 +605,10 @@ fn mirrored(scf: &ScfResult) -> ScfResult {
 // energy and <S²> (|S+ψ|²): 2 for triplets, 2 w_CV for singlets.
 #[test]
 fn mrsf_exact_exchange_limit_is_ci_over_the_union_space() {
-    for (name, mol, bas) in [("water", water(), "6-31G"), ("formaldehyde", formaldehyde(), "STO-3G")] {
+    for (name, mol, bas) in [
+        ("water", water(), "6-31G"),
+        ("formaldehyde", formaldehyde(), "STO-3G"),
+    ] {
         let basis = BasisSet::builtin(&mol, bas).unwrap();
         let scf = rohf(&basis, triplet(&basis));
         let mut eng = engine(&basis);
@@ -500,11 +618,17 @@ fn mrsf_exact_exchange_limit_is_ci_over_the_union_space() {
         assert_eq!(ns, p.sf_dimension() - 1);
         assert_eq!(nt, p.sf_dimension() - 3);
         let res = mrsf.solve(ns, nt, &dense_opts()).unwrap();
-        let space = Space { n: p.n_mo, nc: p.n_core };
+        let space = Space {
+            n: p.n_mo,
+            nc: p.n_core,
+        };
         let ci = Ci::new(&basis, &scf.orbitals_alpha);
         let union = space.union_dets();
         assert_eq!(union.len(), 2 * p.sf_dimension() - 4);
-        let e_ci: Vec<f64> = eigenvalues(&ci.hamiltonian(&union)).iter().map(|e| e + ci.e_nuc).collect();
+        let e_ci: Vec<f64> = eigenvalues(&ci.hamiltonian(&union))
+            .iter()
+            .map(|e| e + ci.e_nuc)
+            .collect();
         let mut e_m: Vec<f64> = res.states.iter().map(|s| s.energy).collect();
         e_m.sort_by(f64::total_cmp);
         let d = max_diff(&e_m, &e_ci);
@@ -526,8 +650,17 @@ fn mrsf_exact_exchange_limit_is_ci_over_the_union_space() {
             let s2 = s_squared(p.n_mo, &psi);
             let (e, r) = energy_and_residual(&ci, &psi, st.energy);
             assert!((norm - 1.0).abs() < 1e-10, "norm {norm}");
-            assert!((e - st.energy).abs() < 1e-8 && r < 1e-7, "{name} {:?}: E {e} vs {}, residual {r}", st.spin, st.energy);
-            assert!((s2 - st.s_squared).abs() < 1e-9, "{name}: <S²> {s2} vs {}", st.s_squared);
+            assert!(
+                (e - st.energy).abs() < 1e-8 && r < 1e-7,
+                "{name} {:?}: E {e} vs {}, residual {r}",
+                st.spin,
+                st.energy
+            );
+            assert!(
+                (s2 - st.s_squared).abs() < 1e-9,
+                "{name}: <S²> {s2} vs {}",
+                st.s_squared
+            );
             match st.spin {
                 StateSpin::Triplet => assert!((s2 - 2.0).abs() < 1e-9),
                 _ => assert!((s2 - 2.0 * st.cv_weight).abs() < 1e-9),
@@ -548,24 +681,38 @@ fn eigensolver_pairs_every_vector_with_its_value() {
     let mut mrsf = Mrsf::new(&basis, &scf, 1.0, &mut eng).unwrap();
     let m = mrsf.dense_matrix(StateSpin::Singlet).unwrap();
     // "raw" (scf::sorted_eigen, plain nalgebra) is printed for information only.
-    for (name, (vals, vecs)) in [("raw", scf::sorted_eigen(&m)), ("checked", symmetric_eigen(&m)), ("jacobi", jacobi(&m))] {
+    for (name, (vals, vecs)) in [
+        ("raw", scf::sorted_eigen(&m)),
+        ("checked", symmetric_eigen(&m)),
+        ("jacobi", jacobi(&m)),
+    ] {
         if name == "raw" {
-            let worst = (0..m.nrows()).map(|k| (&m * vecs.column(k) - vecs.column(k) * vals[k]).norm()).fold(0.0, f64::max);
+            let worst = (0..m.nrows())
+                .map(|k| (&m * vecs.column(k) - vecs.column(k) * vals[k]).norm())
+                .fold(0.0, f64::max);
             eprintln!("raw nalgebra: largest residual {worst:.2e}");
             continue;
         }
         let worst = (0..m.nrows())
             .map(|k| (&m * vecs.column(k) - vecs.column(k) * vals[k]).norm())
             .fold(0.0, f64::max);
-        let orth = (vecs.transpose() * &vecs - DMatrix::<f64>::identity(m.nrows(), m.nrows())).amax();
-        eprintln!("{name}: dimension {}, largest residual {worst:.1e}, orthonormality {orth:.1e}", m.nrows());
+        let orth =
+            (vecs.transpose() * &vecs - DMatrix::<f64>::identity(m.nrows(), m.nrows())).amax();
+        eprintln!(
+            "{name}: dimension {}, largest residual {worst:.1e}, orthonormality {orth:.1e}",
+            m.nrows()
+        );
         assert!(worst < 1e-10 && orth < 1e-12);
         assert!(vals.windows(2).all(|w| w[0] <= w[1]));
     }
 }
 
 /// <ψ_I|Σ_σ a†_pσ a_qσ|ψ_J> on the determinants (MO indices).
-fn tdm_on_determinants(n: usize, bra: &HashMap<u128, f64>, ket: &HashMap<u128, f64>) -> DMatrix<f64> {
+fn tdm_on_determinants(
+    n: usize,
+    bra: &HashMap<u128, f64>,
+    ket: &HashMap<u128, f64>,
+) -> DMatrix<f64> {
     let mut g = DMatrix::zeros(n, n);
     for (&d, &c) in ket {
         for p in 0..n {
@@ -603,13 +750,25 @@ fn transition_densities_match_the_determinant_expansion() {
             origin[d] += z * r[d] / charge;
         }
     }
-    let dip: Vec<DMatrix<f64>> = integrals::dipole(&basis, origin).iter().map(|m| c.transpose() * m * &c).collect();
+    let dip: Vec<DMatrix<f64>> = integrals::dipole(&basis, origin)
+        .iter()
+        .map(|m| c.transpose() * m * &c)
+        .collect();
     let mut eng = engine(&basis);
-    let m = Mrsf::new(&basis, &scf, 1.0, &mut eng).unwrap().solve(4, 2, &dense_opts()).unwrap();
+    let m = Mrsf::new(&basis, &scf, 1.0, &mut eng)
+        .unwrap()
+        .solve(4, 2, &dense_opts())
+        .unwrap();
     let mut eng = engine(&basis);
-    let sf = SpinFlip::new(&basis, &scf, 1.0, &mut eng).unwrap().solve(4, &dense_opts()).unwrap();
+    let sf = SpinFlip::new(&basis, &scf, 1.0, &mut eng)
+        .unwrap()
+        .solve(4, &dense_opts())
+        .unwrap();
     let p = m.partition;
-    let space = Space { n: p.n_mo, nc: p.n_core };
+    let space = Space {
+        n: p.n_mo,
+        nc: p.n_core,
+    };
     for (name, res) in [("MRSF", &m), ("SF", &sf)] {
         let pairs: Vec<(usize, usize)> = (0..res.states.len())
             .flat_map(|i| (i..res.states.len()).map(move |j| (i, j)))
@@ -645,7 +804,10 @@ fn transition_densities_match_the_determinant_expansion() {
         // The listed transitions are the same-spin pairs.
         for t in res.transitions() {
             assert_eq!(res.states[t.from].spin, res.states[t.to].spin);
-            assert!((t.oscillator_strength - res.oscillator_strength(t.from, t.to).unwrap()).abs() < 1e-14);
+            assert!(
+                (t.oscillator_strength - res.oscillator_strength(t.from, t.to).unwrap()).abs()
+                    < 1e-14
+            );
         }
     }
 }
@@ -668,7 +830,10 @@ fn davidson_agrees_with_dense_diagonalisation() {
     let dense = mrsf.solve(4, 3, &dense_opts()).unwrap();
     for max_subspace in [0, 16] {
         let before = mrsf.products();
-        let opts = DavidsonOptions { max_subspace, ..davidson_opts() };
+        let opts = DavidsonOptions {
+            max_subspace,
+            ..davidson_opts()
+        };
         let dav = mrsf.solve(4, 3, &opts).unwrap();
         let d = max_diff(
             &dav.states.iter().map(|s| s.energy).collect::<Vec<_>>(),
@@ -692,12 +857,16 @@ fn davidson_agrees_with_dense_diagonalisation() {
     let cold = mrsf.solve(4, 3, &davidson_opts()).unwrap();
     let cold_products = mrsf.products() - before;
     let before = mrsf.products();
-    let warm = mrsf.solve_from(4, 3, &davidson_opts(), Some(&cold)).unwrap();
+    let warm = mrsf
+        .solve_from(4, 3, &davidson_opts(), Some(&cold))
+        .unwrap();
     let warm_products = mrsf.products() - before;
     let d = max_diff(&energies(&warm), &energies(&dense));
     eprintln!("warm start: {warm_products} products (cold {cold_products}), |Δ| = {d:.1e} Eh");
     assert!(d < 1e-8 && warm_products < cold_products);
-    let labels: Vec<String> = (0..warm.states.len()).map(|i| warm.label(i).unwrap()).collect();
+    let labels: Vec<String> = (0..warm.states.len())
+        .map(|i| warm.label(i).unwrap())
+        .collect();
     eprintln!("labels {labels:?}");
     assert_eq!(labels.iter().filter(|l| l.starts_with('S')).count(), 4);
     assert!(labels.contains(&"S0".to_string()) && labels.contains(&"T1".to_string()));
@@ -705,16 +874,37 @@ fn davidson_agrees_with_dense_diagonalisation() {
     assert_eq!(warm.oscillator_from_ground(g).unwrap(), None);
     // The integral-direct build (density-screened, non-symmetric transition
     // densities) gives the same states as the in-core store.
-    let mut direct = JkEngine::new(&basis, JkOptions { max_in_core_bytes: 0, ..JkOptions::default() });
+    let mut direct = JkEngine::new(
+        &basis,
+        JkOptions {
+            max_in_core_bytes: 0,
+            ..JkOptions::default()
+        },
+    );
     assert!(!direct.in_core());
-    let dd = Mrsf::new(&basis, &scf, 0.5, &mut direct).unwrap().solve(4, 3, &davidson_opts()).unwrap();
+    let dd = Mrsf::new(&basis, &scf, 0.5, &mut direct)
+        .unwrap()
+        .solve(4, 3, &davidson_opts())
+        .unwrap();
     let d = max_diff(&energies(&dd), &energies(&dense));
     eprintln!("MRSF direct vs in-core: {d:.1e} Eh");
     assert!(d < 1e-8);
     let mut eng = engine(&basis);
     let mut sf = SpinFlip::new(&basis, &scf, 0.5, &mut eng).unwrap();
-    let e_dense: Vec<f64> = sf.solve(6, &dense_opts()).unwrap().states.iter().map(|s| s.energy).collect();
-    let e_dav: Vec<f64> = sf.solve(6, &davidson_opts()).unwrap().states.iter().map(|s| s.energy).collect();
+    let e_dense: Vec<f64> = sf
+        .solve(6, &dense_opts())
+        .unwrap()
+        .states
+        .iter()
+        .map(|s| s.energy)
+        .collect();
+    let e_dav: Vec<f64> = sf
+        .solve(6, &davidson_opts())
+        .unwrap()
+        .states
+        .iter()
+        .map(|s| s.energy)
+        .collect();
     let d = max_diff(&e_dav, &e_dense);
     eprintln!("SF: |Davidson − dense| = {d:.1e} Eh");
     assert!(d < 1e-8);
@@ -731,14 +921,24 @@ fn davidson_agrees_with_dense_diagonalisation() {
 fn mrsf_is_spin_pure_where_sf_is_contaminated() {
     let (basis, scf) = formaldehyde_roks();
     let mut eng = engine(&basis);
-    let m = Mrsf::new(&basis, &scf, 0.5, &mut eng).unwrap().solve(6, 4, &davidson_opts()).unwrap();
+    let m = Mrsf::new(&basis, &scf, 0.5, &mut eng)
+        .unwrap()
+        .solve(6, 4, &davidson_opts())
+        .unwrap();
     let p = m.partition;
-    let space = Space { n: p.n_mo, nc: p.n_core };
+    let space = Space {
+        n: p.n_mo,
+        nc: p.n_core,
+    };
     for st in &m.states {
         let s2 = s_squared(p.n_mo, &space.expand(&st.x_plus, &st.x_minus));
         eprintln!(
             "MRSF {:7} ΔE {:+.3} eV  <S²> {s2:.2e} (reported {:.2e}, w_CV {:.1e})  {}",
-            st.spin.to_string(), st.omega * 27.211386, st.s_squared, st.cv_weight, st.dominant_text()
+            st.spin.to_string(),
+            st.omega * 27.211386,
+            st.s_squared,
+            st.cv_weight,
+            st.dominant_text()
         );
         assert!((s2 - st.s_squared).abs() < 1e-9);
         match st.spin {
@@ -756,21 +956,35 @@ fn mrsf_is_spin_pure_where_sf_is_contaminated() {
     let nc = p.n_core;
     let c = &scf.orbitals_alpha;
     let d_open = c.columns(nc, 2) * c.columns(nc, 2).transpose();
-    let k_open = integrals::coulomb_exchange(&basis, &[d_open], &JkOptions::default()).unwrap().k.remove(0);
+    let k_open = integrals::coulomb_exchange(&basis, &[d_open], &JkOptions::default())
+        .unwrap()
+        .k
+        .remove(0);
     let dv = c.transpose() * (&scf.fock_beta - &scf.fock_alpha - k_open * 0.5) * c;
     let expect = 0.5 * (dv[(nc, nc)] + dv[(nc + 1, nc + 1)]);
     let mut eng = engine(&basis);
     let mut mr = Mrsf::new(&basis, &scf, 0.5, &mut eng).unwrap();
     let nt = mr.triplet_dimension();
     let t0 = mr.diagonal(StateSpin::Triplet)[nt - 1];
-    eprintln!("<T0|A|T0> = {:.4} eV (½ Σ ΔV_xc: {:.4} eV)", t0 * 27.211386, expect * 27.211386);
+    eprintln!(
+        "<T0|A|T0> = {:.4} eV (½ Σ ΔV_xc: {:.4} eV)",
+        t0 * 27.211386,
+        expect * 27.211386
+    );
     assert!((t0 - expect).abs() < 1e-10 && t0 > 0.0);
     let mut eng = engine(&basis);
-    let sf = SpinFlip::new(&basis, &scf, 0.5, &mut eng).unwrap().solve(8, &davidson_opts()).unwrap();
+    let sf = SpinFlip::new(&basis, &scf, 0.5, &mut eng)
+        .unwrap()
+        .solve(8, &davidson_opts())
+        .unwrap();
     let mut contaminated = 0;
     for st in &sf.states {
         let s2 = s_squared(p.n_mo, &space.expand(&st.x_plus, &st.x_minus));
-        eprintln!("SF  ΔE {:+.3} eV  <S²> {s2:.4}  {}", st.omega * 27.211386, st.dominant_text());
+        eprintln!(
+            "SF  ΔE {:+.3} eV  <S²> {s2:.4}  {}",
+            st.omega * 27.211386,
+            st.dominant_text()
+        );
         assert!((s2 - st.s_squared).abs() < 1e-9);
         if (s2 - 1.0).abs() < 0.3 {
             contaminated += 1;
@@ -780,11 +994,18 @@ fn mrsf_is_spin_pure_where_sf_is_contaminated() {
     // Without the CV configurations in the singlet block, every singlet is
     // pure (<S²> = 0 on the determinants).
     let mut eng = engine(&basis);
-    let pure = Mrsf::new(&basis, &scf, 0.5, &mut eng).unwrap().with_singlet_cv(false).solve(6, 0, &davidson_opts()).unwrap();
+    let pure = Mrsf::new(&basis, &scf, 0.5, &mut eng)
+        .unwrap()
+        .with_singlet_cv(false)
+        .solve(6, 0, &davidson_opts())
+        .unwrap();
     let with_cv = of_spin(&m, StateSpin::Singlet);
     for (k, st) in pure.states.iter().enumerate() {
         let s2 = s_squared(p.n_mo, &space.expand(&st.x_plus, &st.x_minus));
-        eprintln!("MRSF singlet without CV: <S²> {s2:.1e}, shift {:+.2e} Eh", st.energy - with_cv[k]);
+        eprintln!(
+            "MRSF singlet without CV: <S²> {s2:.1e}, shift {:+.2e} Eh",
+            st.energy - with_cv[k]
+        );
         assert!(s2 < 1e-12 && st.s_squared == 0.0);
     }
 }
@@ -802,26 +1023,50 @@ fn carbon_atom_multiplets_are_degenerate() {
     let basis = BasisSet::builtin(&molecule_of(&[("C", [0.0, 0.0, 0.0])]), "STO-3G").unwrap();
     let scf = rohf(&basis, triplet(&basis));
     let mut eng = engine(&basis);
-    let m = Mrsf::new(&basis, &scf, 1.0, &mut eng).unwrap().solve(6, 4, &dense_opts()).unwrap();
+    let m = Mrsf::new(&basis, &scf, 1.0, &mut eng)
+        .unwrap()
+        .solve(6, 4, &dense_opts())
+        .unwrap();
     let s = of_spin(&m, StateSpin::Singlet);
     let t = of_spin(&m, StateSpin::Triplet);
     let ev = |e: f64| (e - scf.energy) * 27.211386;
-    eprintln!("carbon: triplets (eV) {:?}", t.iter().map(|&e| ev(e)).collect::<Vec<_>>());
-    eprintln!("carbon: singlets (eV) {:?}", s.iter().map(|&e| ev(e)).collect::<Vec<_>>());
-    let spread = |v: &[f64]| v.iter().cloned().fold(f64::MIN, f64::max) - v.iter().cloned().fold(f64::MAX, f64::min);
+    eprintln!(
+        "carbon: triplets (eV) {:?}",
+        t.iter().map(|&e| ev(e)).collect::<Vec<_>>()
+    );
+    eprintln!(
+        "carbon: singlets (eV) {:?}",
+        s.iter().map(|&e| ev(e)).collect::<Vec<_>>()
+    );
+    let spread = |v: &[f64]| {
+        v.iter().cloned().fold(f64::MIN, f64::max) - v.iter().cloned().fold(f64::MAX, f64::min)
+    };
     assert!(spread(&t[..3]) < 1e-6, "³P spread {}", spread(&t[..3]));
     assert!((t[0] - scf.energy).abs() < 1e-6);
     assert!(spread(&s[..4]) < 1e-6, "¹D spread {}", spread(&s[..4]));
-    assert!(s[4] - s[3] > 1e-3, "the fifth singlet is not a ¹D component");
+    assert!(
+        s[4] - s[3] > 1e-3,
+        "the fifth singlet is not a ¹D component"
+    );
     let mut eng = engine(&basis);
-    let sf = SpinFlip::new(&basis, &scf, 1.0, &mut eng).unwrap().solve(8, &dense_opts()).unwrap();
+    let sf = SpinFlip::new(&basis, &scf, 1.0, &mut eng)
+        .unwrap()
+        .solve(8, &dense_opts())
+        .unwrap();
     eprintln!(
         "carbon SF (eV, <S²>): {:?}",
-        sf.states.iter().map(|s| (ev(s.energy), s.s_squared)).collect::<Vec<_>>()
+        sf.states
+            .iter()
+            .map(|s| (ev(s.energy), s.s_squared))
+            .collect::<Vec<_>>()
     );
     // Plain SF holds only one of the two determinants of the ³P/¹D(xz, yz)
     // components, so it returns spin-mixed halves (<S²> = 1) between them.
-    let mixed = sf.states.iter().filter(|s| (s.s_squared - 1.0).abs() < 1e-6 && s.energy < s_max(&s_first4(&m))).count();
+    let mixed = sf
+        .states
+        .iter()
+        .filter(|s| (s.s_squared - 1.0).abs() < 1e-6 && s.energy < s_max(&s_first4(&m)))
+        .count();
     assert!(mixed >= 2);
 }
 
@@ -874,29 +1119,52 @@ fn energies_are_invariant() {
     let opts = davidson_opts();
     let run = |basis: &BasisSet, scf: &ScfResult, cx: f64| -> (Vec<f64>, Vec<f64>) {
         let mut eng = engine(basis);
-        let m = Mrsf::new(basis, scf, cx, &mut eng).unwrap().solve(3, 3, &opts).unwrap();
+        let m = Mrsf::new(basis, scf, cx, &mut eng)
+            .unwrap()
+            .solve(3, 3, &opts)
+            .unwrap();
         let mut eng = engine(basis);
-        let s = SpinFlip::new(basis, scf, cx, &mut eng).unwrap().solve(4, &opts).unwrap();
+        let s = SpinFlip::new(basis, scf, cx, &mut eng)
+            .unwrap()
+            .solve(4, &opts)
+            .unwrap();
         (energies(&m), energies(&s))
     };
     let (m0, s0) = run(&basis, &scf, 0.5);
     for theta in [0.37, std::f64::consts::FRAC_PI_2] {
         let (m1, s1) = run(&basis, &rotate_open_shells(&scf, theta), 0.5);
-        eprintln!("O1/O2 rotation by {theta:.2}: MRSF {:.1e}, SF {:.1e} Eh", max_diff(&m0, &m1), max_diff(&s0, &s1));
+        eprintln!(
+            "O1/O2 rotation by {theta:.2}: MRSF {:.1e}, SF {:.1e} Eh",
+            max_diff(&m0, &m1),
+            max_diff(&s0, &s1)
+        );
         assert!(max_diff(&m0, &m1) < 1e-8 && max_diff(&s0, &s1) < 1e-8);
     }
     let (mm, sm) = run(&basis, &mirrored(&scf), 0.5);
-    eprintln!("from T−: MRSF {:.1e}, SF {:.1e} Eh", max_diff(&m0, &mm), max_diff(&s0, &sm));
+    eprintln!(
+        "from T−: MRSF {:.1e}, SF {:.1e} Eh",
+        max_diff(&m0, &mm),
+        max_diff(&s0, &sm)
+    );
     assert!(max_diff(&m0, &mm) < 1e-10 && max_diff(&s0, &sm) < 1e-10);
-    let moved = BasisSet::builtin(&rotated(&formaldehyde(), 0.0, [1.3, -0.7, 2.1]), "6-31G").unwrap();
+    let moved =
+        BasisSet::builtin(&rotated(&formaldehyde(), 0.0, [1.3, -0.7, 2.1]), "6-31G").unwrap();
     let (mt, st) = run(&moved, &roks(&moved, "bhhlyp"), 0.5);
-    eprintln!("translation: MRSF {:.1e}, SF {:.1e} Eh", max_diff(&m0, &mt), max_diff(&s0, &st));
+    eprintln!(
+        "translation: MRSF {:.1e}, SF {:.1e} Eh",
+        max_diff(&m0, &mt),
+        max_diff(&s0, &st)
+    );
     assert!(max_diff(&m0, &mt) < 1e-8 && max_diff(&s0, &st) < 1e-8);
     let basis = BasisSet::builtin(&water(), "6-31G").unwrap();
     let (w0, ws0) = run(&basis, &rohf(&basis, triplet(&basis)), 1.0);
     let moved = BasisSet::builtin(&rotated(&water(), 1.1, [0.4, 2.0, -1.5]), "6-31G").unwrap();
     let (w1, ws1) = run(&moved, &rohf(&moved, triplet(&moved)), 1.0);
-    eprintln!("rigid rotation + translation (ROHF): MRSF {:.1e}, SF {:.1e} Eh", max_diff(&w0, &w1), max_diff(&ws0, &ws1));
+    eprintln!(
+        "rigid rotation + translation (ROHF): MRSF {:.1e}, SF {:.1e} Eh",
+        max_diff(&w0, &w1),
+        max_diff(&ws0, &ws1)
+    );
     assert!(max_diff(&w0, &w1) < 1e-8 && max_diff(&ws0, &ws1) < 1e-8);
 }
 
@@ -909,23 +1177,53 @@ fn bad_input_gives_clear_errors() {
     let mut eng = engine(&basis);
     let mut mrsf = Mrsf::new(&basis, &scf, 1.0, &mut eng).unwrap();
     let (ns, nt) = (mrsf.singlet_dimension(), mrsf.triplet_dimension());
-    let e = mrsf.solve(ns + 1, 0, &DavidsonOptions::default()).unwrap_err();
+    let e = mrsf
+        .solve(ns + 1, 0, &DavidsonOptions::default())
+        .unwrap_err();
     eprintln!("{e}");
-    assert!(matches!(e, ResponseError::TooManyRoots { kind: "singlet", .. }) && e.to_string().contains(&format!("only {ns}")));
-    let e = mrsf.solve(1, nt + 1, &DavidsonOptions::default()).unwrap_err();
-    assert!(matches!(e, ResponseError::TooManyRoots { kind: "triplet", .. }));
-    let bad = DavidsonOptions { residual_tolerance: 0.0, ..DavidsonOptions::default() };
+    assert!(
+        matches!(
+            e,
+            ResponseError::TooManyRoots {
+                kind: "singlet",
+                ..
+            }
+        ) && e.to_string().contains(&format!("only {ns}"))
+    );
+    let e = mrsf
+        .solve(1, nt + 1, &DavidsonOptions::default())
+        .unwrap_err();
+    assert!(matches!(
+        e,
+        ResponseError::TooManyRoots {
+            kind: "triplet",
+            ..
+        }
+    ));
+    let bad = DavidsonOptions {
+        residual_tolerance: 0.0,
+        ..DavidsonOptions::default()
+    };
     let e = mrsf.solve(1, 0, &bad).unwrap_err();
     eprintln!("{e}");
     assert!(matches!(e, ResponseError::InvalidOption(_)));
     let res = mrsf.solve(2, 1, &DavidsonOptions::default()).unwrap();
     let e = res.transition_dipole(0, 7).unwrap_err();
     eprintln!("{e}");
-    assert!(matches!(e, ResponseError::StateIndex { index: 7, count: 3 }));
+    assert!(matches!(
+        e,
+        ResponseError::StateIndex { index: 7, count: 3 }
+    ));
     let mut eng = engine(&basis);
     let mut sf = SpinFlip::new(&basis, &scf, 1.0, &mut eng).unwrap();
     let n = sf.dimension();
-    assert!(matches!(sf.solve(n + 1, &DavidsonOptions::default()), Err(ResponseError::TooManyRoots { kind: "spin-flip", .. })));
+    assert!(matches!(
+        sf.solve(n + 1, &DavidsonOptions::default()),
+        Err(ResponseError::TooManyRoots {
+            kind: "spin-flip",
+            ..
+        })
+    ));
     let mut eng = engine(&basis);
     let e = SpinFlip::new(&basis, &scf, 1.5, &mut eng).err().unwrap();
     eprintln!("{e}");
@@ -935,11 +1233,17 @@ fn bad_input_gives_clear_errors() {
     let mut eng = engine(&basis);
     let e = Mrsf::new(&basis, &singlet, 1.0, &mut eng).err().unwrap();
     eprintln!("{e}");
-    assert!(matches!(e, ResponseError::NotTriplet { alpha: 5, beta: 5 }) && e.to_string().contains("multiplicity 1"));
+    assert!(
+        matches!(e, ResponseError::NotTriplet { alpha: 5, beta: 5 })
+            && e.to_string().contains("multiplicity 1")
+    );
     // A quintet.
     let quintet = rohf(&basis, Electrons { alpha: 7, beta: 3 });
     let mut eng = engine(&basis);
-    assert!(matches!(SpinFlip::new(&basis, &quintet, 1.0, &mut eng), Err(ResponseError::NotTriplet { .. })));
+    assert!(matches!(
+        SpinFlip::new(&basis, &quintet, 1.0, &mut eng),
+        Err(ResponseError::NotTriplet { .. })
+    ));
     // An odd electron count (the water cation doublet).
     let cation = rohf(&basis, Electrons { alpha: 5, beta: 4 });
     let mut eng = engine(&basis);
@@ -947,13 +1251,23 @@ fn bad_input_gives_clear_errors() {
     eprintln!("{e}");
     assert!(matches!(e, ResponseError::OddElectrons { electrons: 9 }));
     // A closed-shell RHF reference.
-    let rhf = hartree_fock(&basis, Electrons { alpha: 5, beta: 5 }, Reference::Restricted, &Guess::AtomicSuperposition, &tight(), JkOptions::default()).unwrap();
+    let rhf = hartree_fock(
+        &basis,
+        Electrons { alpha: 5, beta: 5 },
+        Reference::Restricted,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap();
     let mut eng = engine(&basis);
     let e = Mrsf::new(&basis, &rhf, 1.0, &mut eng).err().unwrap();
     eprintln!("{e}");
-    assert!(matches!(e, ResponseError::NotRestrictedOpen(Reference::Restricted)));
+    assert!(matches!(
+        e,
+        ResponseError::NotRestrictedOpen(Reference::Restricted)
+    ));
 }
-
 
 // Sources: the torsion of ethylene, a trade-standard case — the ground state
 // rises smoothly to a maximum at 90° (barrier about 2.8 eV, 65 kcal/mol,
@@ -977,11 +1291,17 @@ fn ethylene_twist_topology() {
         let basis = BasisSet::builtin(&ethylene(a), "6-31G").unwrap();
         let scf = roks(&basis, "bhhlyp");
         let mut eng = engine(&basis);
-        let m = Mrsf::new(&basis, &scf, 0.5, &mut eng).unwrap().solve(3, 2, &davidson_opts()).unwrap();
+        let m = Mrsf::new(&basis, &scf, 0.5, &mut eng)
+            .unwrap()
+            .solve(3, 2, &davidson_opts())
+            .unwrap();
         let s = of_spin(&m, StateSpin::Singlet);
         let t = of_spin(&m, StateSpin::Triplet);
         let mut eng = engine(&basis);
-        let sf = SpinFlip::new(&basis, &scf, 0.5, &mut eng).unwrap().solve(4, &davidson_opts()).unwrap();
+        let sf = SpinFlip::new(&basis, &scf, 0.5, &mut eng)
+            .unwrap()
+            .solve(4, &davidson_opts())
+            .unwrap();
         let ch = ReferenceCharacter::from_scf(&scf).unwrap();
         let sigma = match &prev {
             Some((pb, pc)) => ch.compare(&basis, pc, pb).unwrap().singular_values[1],
@@ -994,28 +1314,43 @@ fn ethylene_twist_topology() {
             sf.states.iter().map(|x| (x.s_squared * 100.0).round() / 100.0).collect::<Vec<_>>()
         );
         assert!(sigma > 0.9, "smooth scan flagged as a change of character");
-        sf_mixed += sf.states.iter().filter(|x| x.s_squared > 0.3 && x.s_squared < 1.7).count();
+        sf_mixed += sf
+            .states
+            .iter()
+            .filter(|x| x.s_squared > 0.3 && x.s_squared < 1.7)
+            .count();
         if a == 90.0 {
             assert!(((t[0] - s[0]) * ev).abs() < 0.3, "S0/T1 at 90°");
-            assert!((s[1] - s[0]) * ev > 1.0, "S0 and S1 touch along the pure twist");
+            assert!(
+                (s[1] - s[0]) * ev > 1.0,
+                "S0 and S1 touch along the pure twist"
+            );
             // The diagnostic fires for a different open-shell pair (the
             // highest core orbital and O1 standing in for a new reference).
             let nc = scf.electrons.beta;
-            let other = ReferenceCharacter { open_shells: scf.orbitals_alpha.columns(nc - 1, 2).into_owned() };
+            let other = ReferenceCharacter {
+                open_shells: scf.orbitals_alpha.columns(nc - 1, 2).into_owned(),
+            };
             let check = other.compare(&basis, &ch, &basis).unwrap();
             assert!(check.changed && check.singular_values[1] < 1e-6);
         }
         s0.push(s[0]);
         prev = Some((basis, ch));
     }
-    assert!(sf_mixed >= 3, "SF states with 0.3 < <S²> < 1.7 along the scan: {sf_mixed}");
+    assert!(
+        sf_mixed >= 3,
+        "SF states with 0.3 < <S²> < 1.7 along the scan: {sf_mixed}"
+    );
     let barrier = (s0[6] - s0[0]) * ev;
     assert!((1.5..4.5).contains(&barrier), "barrier {barrier} eV");
     // Smooth and monotonic: rising, second differences small and regular.
     for w in s0.windows(2) {
         assert!(w[1] > w[0]);
     }
-    let d2: Vec<f64> = s0.windows(3).map(|w| (w[2] - 2.0 * w[1] + w[0]) * ev).collect();
+    let d2: Vec<f64> = s0
+        .windows(3)
+        .map(|w| (w[2] - 2.0 * w[1] + w[0]) * ev)
+        .collect();
     eprintln!("S0 barrier {barrier:.3} eV; second differences (eV) {d2:.3?}");
     assert!(d2.iter().all(|x| x.abs() < 0.5));
 }
@@ -1025,7 +1360,9 @@ fn ethylene_twist_topology() {
 /// <D|D'> of two bit-string determinants (ascending creators, α bits 0..n,
 /// β bits n..2n) with MO overlap `s` (bra orbitals × ket orbitals).
 fn determinant_overlap(n: usize, s: &DMatrix<f64>, d1: u128, d2: u128) -> f64 {
-    let occ = |d: u128, off: usize| -> Vec<usize> { (0..n).filter(|&p| (d >> (off + p)) & 1 == 1).collect() };
+    let occ = |d: u128, off: usize| -> Vec<usize> {
+        (0..n).filter(|&p| (d >> (off + p)) & 1 == 1).collect()
+    };
     let mut value = 1.0;
     for off in [0, n] {
         let (a, b) = (occ(d1, off), occ(d2, off));
@@ -1062,8 +1399,20 @@ fn state_overlaps_between_geometries_match_brute_force() {
     let run = |mol: &Molecule, method: Method| {
         let basis = BasisSet::builtin(mol, "6-31G").unwrap();
         let scf = roks(&basis, "bhhlyp");
-        let request = StateRequest { method, singlets: 3, triplets: 2 };
-        let x = excited_states(&basis, &scf, 0.5, &mut engine(&basis), request, &dense_opts()).unwrap();
+        let request = StateRequest {
+            method,
+            singlets: 3,
+            triplets: 2,
+        };
+        let x = excited_states(
+            &basis,
+            &scf,
+            0.5,
+            &mut engine(&basis),
+            request,
+            &dense_opts(),
+        )
+        .unwrap();
         (basis, x)
     };
     for method in [Method::Mrsf, Method::SpinFlip] {
@@ -1076,13 +1425,27 @@ fn state_overlaps_between_geometries_match_brute_force() {
         // Same geometry: orthonormal.
         let same = state_overlaps(&v1, &b1, &v1, &b1).unwrap();
         let eye = DMatrix::<f64>::identity(all.len(), all.len());
-        assert!((&same - &eye).amax() < 1e-10, "{method:?}: not orthonormal: {same:.3e}");
+        assert!(
+            (&same - &eye).amax() < 1e-10,
+            "{method:?}: not orthonormal: {same:.3e}"
+        );
         // Brute force.
         let n = x1.partition.n_mo;
-        let space = Space { n, nc: x1.partition.n_core };
+        let space = Space {
+            n,
+            nc: x1.partition.n_core,
+        };
         let s_mo = x1.orbitals.transpose() * integrals::overlap_between(&b1, &b2) * &x2.orbitals;
-        let psi1: Vec<HashMap<u128, f64>> = x1.states.iter().map(|s| space.expand(&s.x_plus, &s.x_minus)).collect();
-        let psi2: Vec<HashMap<u128, f64>> = x2.states.iter().map(|s| space.expand(&s.x_plus, &s.x_minus)).collect();
+        let psi1: Vec<HashMap<u128, f64>> = x1
+            .states
+            .iter()
+            .map(|s| space.expand(&s.x_plus, &s.x_minus))
+            .collect();
+        let psi2: Vec<HashMap<u128, f64>> = x2
+            .states
+            .iter()
+            .map(|s| space.expand(&s.x_plus, &s.x_minus))
+            .collect();
         let mut worst: f64 = 0.0;
         for (i, p1) in psi1.iter().enumerate() {
             for (j, p2) in psi2.iter().enumerate() {
@@ -1095,10 +1458,17 @@ fn state_overlaps_between_geometries_match_brute_force() {
                 worst = worst.max((brute - fast[(i, j)]).abs());
             }
         }
-        assert!(worst < 1e-12, "{method:?}: string overlaps differ from brute force by {worst:.3e}");
+        assert!(
+            worst < 1e-12,
+            "{method:?}: string overlaps differ from brute force by {worst:.3e}"
+        );
         // A 0.05-bohr move keeps each state close to itself.
         for i in 0..all.len() {
-            assert!(fast[(i, i)].abs() > 0.95, "{method:?}: state {i} self-overlap {}", fast[(i, i)]);
+            assert!(
+                fast[(i, i)].abs() > 0.95,
+                "{method:?}: state {i} self-overlap {}",
+                fast[(i, i)]
+            );
         }
     }
 }

@@ -25,7 +25,6 @@ use flipswarm::electronic::qc::response::davidson::DavidsonOptions;
 use flipswarm::electronic::qc::response::ExcitedStates;
 use flipswarm::electronic::qc::scf::{Electrons, Guess, Reference, ScfOptions, ScfResult};
 
-
 fn setup(name: &str, basis: &str, potential: Potential) -> (ScfEnergy, Vec<[f64; 3]>) {
     let list = test_atoms(name);
     let z: usize = list.iter().map(|(z, _)| *z as usize).sum();
@@ -436,7 +435,15 @@ fn analytic_and_difference_xc_kernels_agree() {
 #[test]
 fn roks_bhhlyp_631gs_water_and_formaldehyde_gradients_match_finite_differences() {
     check_fd("h2o", "6-31G*", bhhlyp(), &["S0", "S1", "T1"], 2, 1, 1e-6);
-    check_fd("ch2o", "6-31G*", bhhlyp(), &["S0", "S1", "S2", "T1"], 3, 1, 1e-6);
+    check_fd(
+        "ch2o",
+        "6-31G*",
+        bhhlyp(),
+        &["S0", "S1", "S2", "T1"],
+        3,
+        1,
+        1e-6,
+    );
 }
 
 // Source: finite-difference check (common practice) near an S1/S0
@@ -449,10 +456,20 @@ fn gradients_near_the_ethylene_s1_s0_intersection_match_finite_differences() {
     let (_, _, x) = states(&calc, &pos, 2, 1);
     let gap = x.states[index_of(&x, "S1")].energy - x.states[index_of(&x, "S0")].energy;
     eprintln!("S1 − S0 = {:.3} eV", gap * 27.211386);
-    assert!(gap > 0.0 && gap < 0.4 / 27.211386, "not near the intersection: {gap} Eh");
-    check_fd("c2h4-tp", "6-31G*", bhhlyp(), &["S0", "S1", "T1"], 2, 1, 1e-6);
+    assert!(
+        gap > 0.0 && gap < 0.4 / 27.211386,
+        "not near the intersection: {gap} Eh"
+    );
+    check_fd(
+        "c2h4-tp",
+        "6-31G*",
+        bhhlyp(),
+        &["S0", "S1", "T1"],
+        2,
+        1,
+        1e-6,
+    );
 }
-
 
 // Source: finite-difference check (common practice) with a hybrid LDA
 // functional (half exact exchange, Slater exchange, VWN correlation through

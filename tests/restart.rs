@@ -71,7 +71,11 @@ struct Scratch(PathBuf);
 impl Scratch {
     fn new(name: &str, trajectories: usize, duration_fs: f64) -> Self {
         static N: AtomicUsize = AtomicUsize::new(0);
-        let dir = std::env::temp_dir().join(format!("flipswarm-restart-{}-{name}-{}", std::process::id(), N.fetch_add(1, Ordering::Relaxed)));
+        let dir = std::env::temp_dir().join(format!(
+            "flipswarm-restart-{}-{name}-{}",
+            std::process::id(),
+            N.fetch_add(1, Ordering::Relaxed)
+        ));
         let _ = std::fs::remove_dir_all(&dir);
         std::fs::create_dir_all(&dir).unwrap();
         std::fs::write(dir.join("model.toml"), MODEL).unwrap();
@@ -97,12 +101,20 @@ fn part(dir: &Path) -> PathBuf {
 }
 
 fn spawn(args: &[&str]) -> Child {
-    Command::new(BIN).args(args).stdout(Stdio::null()).stderr(Stdio::piped()).spawn().expect("start flipswarm")
+    Command::new(BIN)
+        .args(args)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("start flipswarm")
 }
 
 fn finish(child: Child) -> (Option<i32>, String) {
     let out = child.wait_with_output().expect("wait");
-    (out.status.code(), String::from_utf8_lossy(&out.stderr).into_owned())
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
 }
 
 fn run_to_end(args: &[&str]) {
@@ -110,29 +122,71 @@ fn run_to_end(args: &[&str]) {
     assert_eq!(code, Some(0), "flipswarm {args:?} failed: {err}");
 }
 
-
 /// Every dataset of every trajectory equal, bit for bit.
 fn assert_identical(got: &Path, want: &Path) {
     let (g, w) = (common::read_all(got), common::read_all(want));
     assert_eq!(g.len(), w.len(), "trajectory count");
     for (a, b) in g.iter().zip(&w) {
         assert_eq!(a.header, b.header, "trajectory {} header", b.header.index);
-        assert_eq!(a.rows.len(), b.rows.len(), "trajectory {} rows", b.header.index);
+        assert_eq!(
+            a.rows.len(),
+            b.rows.len(),
+            "trajectory {} rows",
+            b.header.index
+        );
         for (ra, rb) in a.rows.iter().zip(&b.rows) {
             let bits = |r: &flipswarm::ensemble::record::StepRow| -> Vec<u64> {
-                let mut v: Vec<u64> = vec![r.step, r.time.to_bits(), r.active as u64, r.kinetic.to_bits(), r.potential.to_bits(), r.total.to_bits()];
-                v.extend(r.q.iter().chain(&r.v).chain(&r.energies).map(|x| x.to_bits()));
-                v.extend(r.amplitudes.iter().flat_map(|c| [c.re.to_bits(), c.im.to_bits()]));
+                let mut v: Vec<u64> = vec![
+                    r.step,
+                    r.time.to_bits(),
+                    r.active as u64,
+                    r.kinetic.to_bits(),
+                    r.potential.to_bits(),
+                    r.total.to_bits(),
+                ];
+                v.extend(
+                    r.q.iter()
+                        .chain(&r.v)
+                        .chain(&r.energies)
+                        .map(|x| x.to_bits()),
+                );
+                v.extend(
+                    r.amplitudes
+                        .iter()
+                        .flat_map(|c| [c.re.to_bits(), c.im.to_bits()]),
+                );
                 v
             };
-            assert_eq!(bits(ra), bits(rb), "trajectory {} step {}", b.header.index, rb.step);
+            assert_eq!(
+                bits(ra),
+                bits(rb),
+                "trajectory {} step {}",
+                b.header.index,
+                rb.step
+            );
         }
         assert_eq!(a.hops, b.hops, "trajectory {} hops", b.header.index);
         // Back-end diagnostics (−1 / NaN for these models) and warnings, bit for bit.
-        assert_eq!(a.diagnostics.len(), a.rows.len(), "trajectory {} diagnostics rows", b.header.index);
-        let dbits = |d: &[flipswarm::ensemble::record::RowDiagnostics]| d.iter().map(|x| x.bits()).collect::<Vec<_>>();
-        assert_eq!(dbits(&a.diagnostics), dbits(&b.diagnostics), "trajectory {} diagnostics", b.header.index);
-        assert_eq!(a.warnings, b.warnings, "trajectory {} warnings", b.header.index);
+        assert_eq!(
+            a.diagnostics.len(),
+            a.rows.len(),
+            "trajectory {} diagnostics rows",
+            b.header.index
+        );
+        let dbits = |d: &[flipswarm::ensemble::record::RowDiagnostics]| {
+            d.iter().map(|x| x.bits()).collect::<Vec<_>>()
+        };
+        assert_eq!(
+            dbits(&a.diagnostics),
+            dbits(&b.diagnostics),
+            "trajectory {} diagnostics",
+            b.header.index
+        );
+        assert_eq!(
+            a.warnings, b.warnings,
+            "trajectory {} warnings",
+            b.header.index
+        );
         assert_eq!(a.status, b.status, "trajectory {} status", b.header.index);
     }
     let r = PartReader::open(got).unwrap();
@@ -141,7 +195,15 @@ fn assert_identical(got: &Path, want: &Path) {
 
 fn reference(s: &Scratch) -> PathBuf {
     let dir = s.run_dir("reference");
-    run_to_end(&["-q", "run", s.ens().to_str().unwrap(), "-o", dir.to_str().unwrap(), "--threads", "2"]);
+    run_to_end(&[
+        "-q",
+        "run",
+        s.ens().to_str().unwrap(),
+        "-o",
+        dir.to_str().unwrap(),
+        "--threads",
+        "2",
+    ]);
     part(&dir)
 }
 
@@ -159,7 +221,15 @@ fn sigkill_at_random_moments_then_resume_is_bit_identical() {
     let mut first = true;
     for _attempt in 0..16 {
         let args: Vec<&str> = if first {
-            vec!["-q", "run", ens.to_str().unwrap(), "-o", d, "--threads", "2"]
+            vec![
+                "-q",
+                "run",
+                ens.to_str().unwrap(),
+                "-o",
+                d,
+                "--threads",
+                "2",
+            ]
         } else {
             vec!["-q", "resume", d, "--threads", "2"]
         };
@@ -205,7 +275,10 @@ fn sigkill_at_random_moments_then_resume_is_bit_identical() {
     let (code, err) = finish(spawn(&["-q", "resume", d]));
     assert_eq!(code, Some(0), "final resume: {err}");
     eprintln!("survived {kills} SIGKILL + resume cycles");
-    assert!(kills >= 5, "only {kills} kills landed before the run finished; lengthen the run");
+    assert!(
+        kills >= 5,
+        "only {kills} kills landed before the run finished; lengthen the run"
+    );
     assert_identical(&part(&dir), &want);
 }
 
@@ -214,11 +287,25 @@ fn stopped_run(s: &Scratch, name: &str) -> PathBuf {
     let dir = s.run_dir(name);
     // Four workers: at the stop, four trajectories are in flight, so that
     // several hold two checkpoints (the damage test needs two such).
-    let child = spawn(&["-q", "run", s.ens().to_str().unwrap(), "-o", dir.to_str().unwrap(), "--threads", "4"]);
+    let child = spawn(&[
+        "-q",
+        "run",
+        s.ens().to_str().unwrap(),
+        "-o",
+        dir.to_str().unwrap(),
+        "--threads",
+        "4",
+    ]);
     let ckpts = dir.join("checkpoints").join("part-0000");
     let t = Instant::now();
     while t.elapsed() < Duration::from_secs(20) {
-        let n = std::fs::read_dir(&ckpts).map(|d| d.flatten().filter(|e| e.path().extension().is_some_and(|x| x == "prev")).count()).unwrap_or(0);
+        let n = std::fs::read_dir(&ckpts)
+            .map(|d| {
+                d.flatten()
+                    .filter(|e| e.path().extension().is_some_and(|x| x == "prev"))
+                    .count()
+            })
+            .unwrap_or(0);
         if n >= 2 {
             break;
         }
@@ -229,8 +316,15 @@ fn stopped_run(s: &Scratch, name: &str) -> PathBuf {
         libc::kill(child.id() as i32, libc::SIGTERM);
     }
     let (code, err) = finish(child);
-    assert_eq!(code, Some(3), "SIGTERM must give the resumable exit code 3: {err}");
-    assert!(err.contains("flipswarm resume"), "the message must say how to continue: {err}");
+    assert_eq!(
+        code,
+        Some(3),
+        "SIGTERM must give the resumable exit code 3: {err}"
+    );
+    assert!(
+        err.contains("flipswarm resume"),
+        "the message must say how to continue: {err}"
+    );
     dir
 }
 
@@ -242,16 +336,29 @@ fn sigterm_stops_cleanly_and_resume_completes_identically() {
     let want = reference(&s);
     let dir = stopped_run(&s, "stopped");
     let r = PartReader::open(&part(&dir)).unwrap();
-    assert_eq!(r.writer_state(), WriterState::Closed, "a graceful stop closes the file");
-    let phases: Vec<Phase> = r.trajectory_indices().iter().map(|&i| r.summary(i).unwrap().phase).collect();
+    assert_eq!(
+        r.writer_state(),
+        WriterState::Closed,
+        "a graceful stop closes the file"
+    );
+    let phases: Vec<Phase> = r
+        .trajectory_indices()
+        .iter()
+        .map(|&i| r.summary(i).unwrap().phase)
+        .collect();
     assert!(phases.contains(&Phase::Stopped), "phases {phases:?}");
     drop(r);
-    let out = Command::new(BIN).args(["inspect", dir.to_str().unwrap()]).output().unwrap();
+    let out = Command::new(BIN)
+        .args(["inspect", dir.to_str().unwrap()])
+        .output()
+        .unwrap();
     assert!(String::from_utf8_lossy(&out.stdout).contains("stopped"));
     run_to_end(&["-q", "resume", dir.to_str().unwrap()]);
     assert_identical(&part(&dir), &want);
     // Finished trajectories leave no checkpoint files behind.
-    let left = std::fs::read_dir(dir.join("checkpoints").join("part-0000")).unwrap().count();
+    let left = std::fs::read_dir(dir.join("checkpoints").join("part-0000"))
+        .unwrap()
+        .count();
     assert_eq!(left, 0, "checkpoint files left after completion");
 }
 
@@ -268,22 +375,39 @@ fn damaged_or_missing_checkpoints_fall_back_and_stay_identical() {
         .unwrap()
         .flatten()
         .map(|e| e.path())
-        .filter(|p| p.extension().is_some_and(|x| x == "ckpt") && p.with_extension("ckpt.prev").exists())
+        .filter(|p| {
+            p.extension().is_some_and(|x| x == "ckpt") && p.with_extension("ckpt.prev").exists()
+        })
         .collect();
     with_prev.sort();
-    assert!(with_prev.len() >= 2, "need two trajectories with two checkpoints each, found {}", with_prev.len());
+    assert!(
+        with_prev.len() >= 2,
+        "need two trajectories with two checkpoints each, found {}",
+        with_prev.len()
+    );
     // Truncate the newest checkpoint of one trajectory to half its length.
     let text = std::fs::read(&with_prev[0]).unwrap();
     std::fs::write(&with_prev[0], &text[..text.len() / 2]).unwrap();
     // Delete both checkpoints of another.
     std::fs::remove_file(&with_prev[1]).unwrap();
     std::fs::remove_file(with_prev[1].with_extension("ckpt.prev")).unwrap();
-    let out = Command::new(BIN).args(["resume", dir.to_str().unwrap(), "--json"]).output().unwrap();
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = Command::new(BIN)
+        .args(["resume", dir.to_str().unwrap(), "--json"])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(report["resumed_from_previous_checkpoint"], 1, "{report}");
     let log = String::from_utf8_lossy(&out.stderr);
-    assert!(log.contains("damaged checkpoint"), "the damaged file must be reported: {log}");
+    assert!(
+        log.contains("damaged checkpoint"),
+        "the damaged file must be reported: {log}"
+    );
     assert_identical(&part(&dir), &want);
 }
 
@@ -294,7 +418,15 @@ fn half_written_part_is_detected_and_never_merged() {
     // Long enough (24 × 1000 fs) that the run is still writing when it is killed.
     let s = Scratch::new("half", 24, 1000.0);
     let dir = s.run_dir("half");
-    let mut child = spawn(&["-q", "run", s.ens().to_str().unwrap(), "-o", dir.to_str().unwrap(), "--threads", "2"]);
+    let mut child = spawn(&[
+        "-q",
+        "run",
+        s.ens().to_str().unwrap(),
+        "-o",
+        dir.to_str().unwrap(),
+        "--threads",
+        "2",
+    ]);
     let t = Instant::now();
     while !part(&dir).exists() && t.elapsed() < Duration::from_secs(10) {
         std::thread::sleep(Duration::from_millis(5));
@@ -302,13 +434,31 @@ fn half_written_part_is_detected_and_never_merged() {
     std::thread::sleep(Duration::from_millis(300));
     child.kill().unwrap();
     let _ = child.wait();
-    let out = Command::new(BIN).args(["inspect", dir.to_str().unwrap()]).output().unwrap();
-    assert!(String::from_utf8_lossy(&out.stdout).contains("never closed"), "{}", String::from_utf8_lossy(&out.stdout));
+    let out = Command::new(BIN)
+        .args(["inspect", dir.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert!(
+        String::from_utf8_lossy(&out.stdout).contains("never closed"),
+        "{}",
+        String::from_utf8_lossy(&out.stdout)
+    );
     let merged = s.0.join("merged.h5");
-    let out = Command::new(BIN).args(["merge", dir.to_str().unwrap(), "-o", merged.to_str().unwrap()]).output().unwrap();
+    let out = Command::new(BIN)
+        .args([
+            "merge",
+            dir.to_str().unwrap(),
+            "-o",
+            merged.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
     assert_eq!(out.status.code(), Some(2));
     let err = String::from_utf8_lossy(&out.stderr);
-    assert!(err.contains(part(&dir).to_str().unwrap()), "message must name the part file: {err}");
+    assert!(
+        err.contains(part(&dir).to_str().unwrap()),
+        "message must name the part file: {err}"
+    );
     assert!(!merged.exists(), "nothing may be written");
 }
 
@@ -344,35 +494,71 @@ impl Backend for FailAt {
 #[test]
 fn a_failing_trajectory_leaves_the_others_complete() {
     let s = Scratch::new("fail", 8, 10.0);
-    let cfg = load_str(&std::fs::read_to_string(s.ens()).unwrap(), "ens.toml", &s.0, &[]).unwrap();
+    let cfg = load_str(
+        &std::fs::read_to_string(s.ens()).unwrap(),
+        "ens.toml",
+        &s.0,
+        &[],
+    )
+    .unwrap();
     let model = cfg.model.clone();
     let factory = move |i: usize| -> Box<dyn Backend> {
         let inner = swarm::make_backend(&model);
         if i == 3 {
-            Box::new(FailAt { inner, calls: 0, fail_at: 100 })
+            Box::new(FailAt {
+                inner,
+                calls: 0,
+                fail_at: 100,
+            })
         } else {
             inner
         }
     };
-    let opts = runner::Options { threads: 2, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let opts = runner::Options {
+        threads: 2,
+        stop: Arc::new(AtomicBool::new(false)),
+        factory: &factory,
+        progress_bar: false,
+    };
     let dir = s.run_dir("run");
     let report = runner::start(&cfg, &dir, (0, 1), &opts).unwrap();
-    assert_eq!((report.finished, report.failed, report.stopped, report.pending), (7, 1, 0, 0));
+    assert_eq!(
+        (
+            report.finished,
+            report.failed,
+            report.stopped,
+            report.pending
+        ),
+        (7, 1, 0, 0)
+    );
     let r = PartReader::open(&part(&dir)).unwrap();
     let steps = (cfg.settings.max_time / cfg.settings.dt).round() as u64;
     for i in 0..8 {
         let sum = r.summary(i).unwrap();
         if i == 3 {
             assert_eq!(sum.phase, Phase::Failed);
-            assert!(sum.failure_reason.as_deref().unwrap_or("").contains("injected failure"), "{:?}", sum.failure_reason);
+            assert!(
+                sum.failure_reason
+                    .as_deref()
+                    .unwrap_or("")
+                    .contains("injected failure"),
+                "{:?}",
+                sum.failure_reason
+            );
             match sum.status {
-                flipswarm::dynamics::Status::Failed { step, .. } => assert!(step > 0 && step < steps, "failure step {step}"),
+                flipswarm::dynamics::Status::Failed { step, .. } => {
+                    assert!(step > 0 && step < steps, "failure step {step}")
+                }
                 other => panic!("status {other:?}"),
             }
         } else {
             assert_eq!(sum.phase, Phase::Finished, "trajectory {i}");
             let data = r.read(i).unwrap();
-            assert_eq!(data.rows.last().unwrap().step, steps, "trajectory {i} complete");
+            assert_eq!(
+                data.rows.last().unwrap().step,
+                steps,
+                "trajectory {i} complete"
+            );
         }
     }
 }
@@ -416,12 +602,24 @@ fn resume_from_a_checkpoint_at_the_last_step_keeps_the_final_row() {
     }
     let flag = stop.clone();
     let m2 = cfg.model.clone();
-    let raising = move |_: usize| -> Box<dyn Backend> { Box::new(Raise(flag.clone(), swarm::make_backend(&m2), 0)) };
+    let raising = move |_: usize| -> Box<dyn Backend> {
+        Box::new(Raise(flag.clone(), swarm::make_backend(&m2), 0))
+    };
     let dir = s.run_dir("stopped");
-    let opts = runner::Options { threads: 1, stop: stop.clone(), factory: &raising, progress_bar: false };
+    let opts = runner::Options {
+        threads: 1,
+        stop: stop.clone(),
+        factory: &raising,
+        progress_bar: false,
+    };
     let first = runner::start(&cfg, &dir, (0, 1), &opts).unwrap();
     assert!(first.stopped + first.pending > 0, "{first:?}");
-    let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let opts = runner::Options {
+        threads: 1,
+        stop: Arc::new(AtomicBool::new(false)),
+        factory: &factory,
+        progress_bar: false,
+    };
     let stored = runner::load_run_config(&dir).unwrap();
     runner::resume(&stored, &dir, (0, 1), &opts).unwrap();
     let reference = s.run_dir("reference");
@@ -465,17 +663,32 @@ impl Backend for NanAt {
 #[test]
 fn non_finite_energies_fail_the_trajectory_and_stay_out_of_the_data() {
     let s = Scratch::new("nan", 3, 10.0);
-    let cfg = load_str(&std::fs::read_to_string(s.ens()).unwrap(), "ens.toml", &s.0, &[]).unwrap();
+    let cfg = load_str(
+        &std::fs::read_to_string(s.ens()).unwrap(),
+        "ens.toml",
+        &s.0,
+        &[],
+    )
+    .unwrap();
     let model = cfg.model.clone();
     let factory = move |i: usize| -> Box<dyn Backend> {
         let inner = swarm::make_backend(&model);
         if i == 1 {
-            Box::new(NanAt { inner, steps: 0, results: Results::default() })
+            Box::new(NanAt {
+                inner,
+                steps: 0,
+                results: Results::default(),
+            })
         } else {
             inner
         }
     };
-    let opts = runner::Options { threads: 1, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let opts = runner::Options {
+        threads: 1,
+        stop: Arc::new(AtomicBool::new(false)),
+        factory: &factory,
+        progress_bar: false,
+    };
     let dir = s.run_dir("run");
     let report = runner::start(&cfg, &dir, (0, 1), &opts).unwrap();
     assert_eq!((report.finished, report.failed), (2, 1));
@@ -491,9 +704,20 @@ fn non_finite_energies_fail_the_trajectory_and_stay_out_of_the_data() {
         other => panic!("status {other:?}"),
     }
     for row in &data.rows {
-        let all = row.q.iter().chain(&row.v).chain(&row.energies).chain([&row.kinetic, &row.potential, &row.total]);
-        assert!(all.copied().all(f64::is_finite), "non-finite value stored at step {}", row.step);
-        assert!(row.amplitudes.iter().all(|c| c.re.is_finite() && c.im.is_finite()));
+        let all = row.q.iter().chain(&row.v).chain(&row.energies).chain([
+            &row.kinetic,
+            &row.potential,
+            &row.total,
+        ]);
+        assert!(
+            all.copied().all(f64::is_finite),
+            "non-finite value stored at step {}",
+            row.step
+        );
+        assert!(row
+            .amplitudes
+            .iter()
+            .all(|c| c.re.is_finite() && c.im.is_finite()));
     }
     assert_eq!(data.rows.last().unwrap().step, 29);
 }

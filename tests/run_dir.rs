@@ -14,7 +14,12 @@ fn scratch(name: &str) -> PathBuf {
 
 fn json(args: &[&str]) -> serde_json::Value {
     let out = Command::new(BIN).args(args).output().unwrap();
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     serde_json::from_slice(&out.stdout).unwrap()
 }
 
@@ -25,7 +30,12 @@ fn json(args: &[&str]) -> serde_json::Value {
 fn saved_run_summary_equals_in_memory_summary() {
     let dir = scratch("tully");
     let ens = "ensembles/tully-1.toml";
-    let set = ["--set", "swarm.trajectories=120", "--set", "output.record_every_steps=7"];
+    let set = [
+        "--set",
+        "swarm.trajectories=120",
+        "--set",
+        "output.record_every_steps=7",
+    ];
     let mut a = vec!["-q", "run", ens, "--json"];
     a.extend(set);
     let memory = json(&a);
@@ -34,7 +44,15 @@ fn saved_run_summary_equals_in_memory_summary() {
     b.extend(set);
     let saved = json(&b);
     let s = &saved["summary"];
-    for key in ["channels", "state_fractions", "mean_populations", "hops_accepted", "hops_frustrated", "finished", "trajectories"] {
+    for key in [
+        "channels",
+        "state_fractions",
+        "mean_populations",
+        "hops_accepted",
+        "hops_frustrated",
+        "finished",
+        "trajectories",
+    ] {
         assert_eq!(s[key], memory[key], "summary field {key} differs");
     }
     assert_eq!(saved["finished"], 120);
@@ -48,7 +66,18 @@ fn lvc_run_directory_is_self_contained() {
     let dir = scratch("lvc");
     let out = dir.join("run");
     let o = out.to_str().unwrap();
-    json(&["-q", "run", "ensembles/three-state-cone.toml", "--json", "-o", o, "--set", "swarm.trajectories=4", "--set", "dynamics.duration_fs=5"]);
+    json(&[
+        "-q",
+        "run",
+        "ensembles/three-state-cone.toml",
+        "--json",
+        "-o",
+        o,
+        "--set",
+        "swarm.trajectories=4",
+        "--set",
+        "dynamics.duration_fs=5",
+    ]);
     let moved = dir.join("moved");
     std::fs::rename(&out, &moved).unwrap();
     let toml = std::fs::read_to_string(moved.join("run.toml")).unwrap();
@@ -65,13 +94,27 @@ fn existing_run_directory_is_refused() {
     let dir = scratch("twice");
     let out = dir.join("run");
     let o = out.to_str().unwrap();
-    let args = ["-q", "run", "ensembles/tully-1.toml", "-o", o, "--set", "swarm.trajectories=3"];
-    assert_eq!(Command::new(BIN).args(args).output().unwrap().status.code(), Some(0));
+    let args = [
+        "-q",
+        "run",
+        "ensembles/tully-1.toml",
+        "-o",
+        o,
+        "--set",
+        "swarm.trajectories=3",
+    ];
+    assert_eq!(
+        Command::new(BIN).args(args).output().unwrap().status.code(),
+        Some(0)
+    );
     let before = std::fs::read(out.join("part-0000-of-0001.h5")).unwrap();
     let second = Command::new(BIN).args(args).output().unwrap();
     assert_eq!(second.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&second.stderr).contains("already holds a run"));
-    assert_eq!(std::fs::read(out.join("part-0000-of-0001.h5")).unwrap(), before);
+    assert_eq!(
+        std::fs::read(out.join("part-0000-of-0001.h5")).unwrap(),
+        before
+    );
     let _ = std::fs::remove_dir_all(&dir);
 }
 
@@ -82,12 +125,30 @@ fn export_csv_has_one_row_per_recorded_step() {
     let dir = scratch("export-csv");
     let out = dir.join("run");
     let o = out.to_str().unwrap();
-    json(&["-q", "run", "ensembles/tully-1.toml", "--json", "-o", o, "--set", "swarm.trajectories=3"]);
+    json(&[
+        "-q",
+        "run",
+        "ensembles/tully-1.toml",
+        "--json",
+        "-o",
+        o,
+        "--set",
+        "swarm.trajectories=3",
+    ]);
     let csv = dir.join("t.csv");
-    let st = Command::new(BIN).args(["export", o, "-t", "1", "-o", csv.to_str().unwrap()]).output().unwrap();
-    assert_eq!(st.status.code(), Some(0), "{}", String::from_utf8_lossy(&st.stderr));
+    let st = Command::new(BIN)
+        .args(["export", o, "-t", "1", "-o", csv.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(
+        st.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&st.stderr)
+    );
     let text = std::fs::read_to_string(&csv).unwrap();
-    let reader = flipswarm::ensemble::h5::PartReader::open(&out.join("part-0000-of-0001.h5")).unwrap();
+    let reader =
+        flipswarm::ensemble::h5::PartReader::open(&out.join("part-0000-of-0001.h5")).unwrap();
     let data = reader.read(1).unwrap();
     let lines: Vec<&str> = text.lines().collect();
     assert_eq!(lines.len(), data.rows.len() + 1);
@@ -100,7 +161,10 @@ fn export_csv_has_one_row_per_recorded_step() {
         assert!((f[tot] - row.total * flipswarm::units::HARTREE_IN_EV).abs() < 1e-12);
     }
     // An existing output file is refused.
-    let again = Command::new(BIN).args(["export", o, "-t", "1", "-o", csv.to_str().unwrap()]).output().unwrap();
+    let again = Command::new(BIN)
+        .args(["export", o, "-t", "1", "-o", csv.to_str().unwrap()])
+        .output()
+        .unwrap();
     assert_eq!(again.status.code(), Some(2));
     let _ = std::fs::remove_dir_all(&dir);
 }
@@ -127,7 +191,14 @@ fn export_xyz_round_trips_through_the_reader() {
         timestep_au: 10.0,
     };
     let mut w = PartWriter::create(&part, &meta).unwrap();
-    w.begin(&TrajectoryHeader { index: 0, q0: vec![0.0; 6], v0: vec![0.0; 6], initial_state: 1, seed: 1 }).unwrap();
+    w.begin(&TrajectoryHeader {
+        index: 0,
+        q0: vec![0.0; 6],
+        v0: vec![0.0; 6],
+        initial_state: 1,
+        seed: 1,
+    })
+    .unwrap();
     let rows: Vec<StepRow> = (0..4)
         .map(|k| StepRow {
             step: k,
@@ -145,8 +216,27 @@ fn export_xyz_round_trips_through_the_reader() {
     w.append(0, &rows, &[]).unwrap();
     w.close().unwrap();
     let xyz = dir.join("t.xyz");
-    let st = Command::new(BIN).args(["export", part.to_str().unwrap(), "-t", "0", "--format", "xyz", "--elements", "H,H", "-o", xyz.to_str().unwrap()]).output().unwrap();
-    assert_eq!(st.status.code(), Some(0), "{}", String::from_utf8_lossy(&st.stderr));
+    let st = Command::new(BIN)
+        .args([
+            "export",
+            part.to_str().unwrap(),
+            "-t",
+            "0",
+            "--format",
+            "xyz",
+            "--elements",
+            "H,H",
+            "-o",
+            xyz.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(
+        st.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&st.stderr)
+    );
     let frames = flipswarm::chem::xyz::read_extxyz_file(&xyz).unwrap();
     assert_eq!(frames.len(), 4);
     for (k, (frame, props)) in frames.iter().enumerate() {
@@ -154,9 +244,27 @@ fn export_xyz_round_trips_through_the_reader() {
         assert!((d - (1.4 + 0.1 * k as f64)).abs() < 1e-9, "frame {k}: {d}");
         assert_eq!(props.get_i64("step"), Some(k as i64));
     }
-    let bad = Command::new(BIN).args(["export", part.to_str().unwrap(), "-t", "0", "--format", "xyz", "--elements", "H,H,O", "-o", dir.join("b.xyz").to_str().unwrap()]).output().unwrap();
+    let bad = Command::new(BIN)
+        .args([
+            "export",
+            part.to_str().unwrap(),
+            "-t",
+            "0",
+            "--format",
+            "xyz",
+            "--elements",
+            "H,H,O",
+            "-o",
+            dir.join("b.xyz").to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
     assert_eq!(bad.status.code(), Some(2));
-    assert!(String::from_utf8_lossy(&bad.stderr).contains("3 atoms"), "{}", String::from_utf8_lossy(&bad.stderr));
+    assert!(
+        String::from_utf8_lossy(&bad.stderr).contains("3 atoms"),
+        "{}",
+        String::from_utf8_lossy(&bad.stderr)
+    );
     let _ = std::fs::remove_dir_all(&dir);
 }
 
@@ -168,20 +276,51 @@ fn runs_that_cannot_fit_on_disk_are_refused_up_front() {
     let dir = scratch("disk");
     let out = dir.join("huge");
     let st = Command::new(BIN)
-        .args(["-q", "run", "ensembles/three-state-cone.toml", "-o", out.to_str().unwrap(), "--set", "swarm.trajectories=10000000", "--set", "dynamics.duration_fs=100000"])
+        .args([
+            "-q",
+            "run",
+            "ensembles/three-state-cone.toml",
+            "-o",
+            out.to_str().unwrap(),
+            "--set",
+            "swarm.trajectories=10000000",
+            "--set",
+            "dynamics.duration_fs=100000",
+        ])
         .output()
         .unwrap();
     assert_eq!(st.status.code(), Some(2));
     let err = String::from_utf8_lossy(&st.stderr);
-    assert!(err.contains("would need about") && err.contains("free"), "{err}");
+    assert!(
+        err.contains("would need about") && err.contains("free"),
+        "{err}"
+    );
     assert!(!out.exists(), "nothing may be created");
     // The estimate bounds a real file from above, within a factor of 3.
     let small = dir.join("small");
-    json(&["-q", "run", "ensembles/three-state-cone.toml", "--json", "-o", small.to_str().unwrap(), "--set", "swarm.trajectories=20"]);
-    let cfg = flipswarm::config::load_file(std::path::Path::new("ensembles/three-state-cone.toml"), &["swarm.trajectories=20".into()]).unwrap();
+    json(&[
+        "-q",
+        "run",
+        "ensembles/three-state-cone.toml",
+        "--json",
+        "-o",
+        small.to_str().unwrap(),
+        "--set",
+        "swarm.trajectories=20",
+    ]);
+    let cfg = flipswarm::config::load_file(
+        std::path::Path::new("ensembles/three-state-cone.toml"),
+        &["swarm.trajectories=20".into()],
+    )
+    .unwrap();
     let estimate = flipswarm::ensemble::runner::estimated_bytes(&cfg, (0, 1)) as f64;
-    let actual = std::fs::metadata(small.join("part-0000-of-0001.h5")).unwrap().len() as f64;
-    assert!(estimate >= actual && estimate < 3.0 * actual, "estimate {estimate} vs actual {actual}");
+    let actual = std::fs::metadata(small.join("part-0000-of-0001.h5"))
+        .unwrap()
+        .len() as f64;
+    assert!(
+        estimate >= actual && estimate < 3.0 * actual,
+        "estimate {estimate} vs actual {actual}"
+    );
     let _ = std::fs::remove_dir_all(&dir);
 }
 
@@ -191,7 +330,18 @@ fn all_rows(part: &std::path::Path) -> Vec<(usize, Vec<u64>)> {
         .into_iter()
         .map(|i| {
             let d = r.read(i).unwrap();
-            let bits = d.rows.iter().flat_map(|row| row.q.iter().chain(&row.v).chain(&row.energies).map(|x| x.to_bits()).chain([row.step, row.active as u64])).collect();
+            let bits = d
+                .rows
+                .iter()
+                .flat_map(|row| {
+                    row.q
+                        .iter()
+                        .chain(&row.v)
+                        .chain(&row.energies)
+                        .map(|x| x.to_bits())
+                        .chain([row.step, row.active as u64])
+                })
+                .collect();
             (i, bits)
         })
         .collect()
@@ -204,37 +354,99 @@ fn slices_merge_into_the_unsliced_run() {
     let dir = scratch("slices");
     let one = dir.join("one");
     let two = dir.join("two");
-    let set = ["--set", "swarm.trajectories=9", "--set", "dynamics.duration_fs=8"];
+    let set = [
+        "--set",
+        "swarm.trajectories=9",
+        "--set",
+        "dynamics.duration_fs=8",
+    ];
     let ens = "ensembles/three-state-cone.toml";
     let mut a = vec!["-q", "run", ens, "-o", one.to_str().unwrap()];
     a.extend(set);
-    assert_eq!(Command::new(BIN).args(&a).output().unwrap().status.code(), Some(0));
+    assert_eq!(
+        Command::new(BIN).args(&a).output().unwrap().status.code(),
+        Some(0)
+    );
     for k in ["0/2", "1/2"] {
         let mut b = vec!["-q", "run", ens, "-o", two.to_str().unwrap(), "--slice", k];
         b.extend(set);
         let out = Command::new(BIN).args(&b).output().unwrap();
-        assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+        assert_eq!(
+            out.status.code(),
+            Some(0),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
     }
     let merged = dir.join("merged.h5");
-    let out = Command::new(BIN).args(["merge", two.to_str().unwrap(), "-o", merged.to_str().unwrap()]).output().unwrap();
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
-    assert_eq!(all_rows(&merged), all_rows(&one.join("part-0000-of-0001.h5")));
+    let out = Command::new(BIN)
+        .args([
+            "merge",
+            two.to_str().unwrap(),
+            "-o",
+            merged.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        all_rows(&merged),
+        all_rows(&one.join("part-0000-of-0001.h5"))
+    );
     // With the second slice's part left out, a merge says what is missing
     // (a warning; with --require-complete a refusal that writes nothing).
     let half = dir.join("half.h5");
     let p0 = two.join("part-0000-of-0002.h5");
-    let out = Command::new(BIN).args(["merge", p0.to_str().unwrap(), "-o", half.to_str().unwrap()]).output().unwrap();
+    let out = Command::new(BIN)
+        .args(["merge", p0.to_str().unwrap(), "-o", half.to_str().unwrap()])
+        .output()
+        .unwrap();
     let err = String::from_utf8_lossy(&out.stderr);
     assert_eq!(out.status.code(), Some(0), "{err}");
-    assert!(err.contains("warning: the run is incomplete") && err.contains("slice(s) [1] of 2 have no part file"), "{err}");
+    assert!(
+        err.contains("warning: the run is incomplete")
+            && err.contains("slice(s) [1] of 2 have no part file"),
+        "{err}"
+    );
     let strict = dir.join("strict.h5");
-    let out = Command::new(BIN).args(["merge", "--require-complete", p0.to_str().unwrap(), "-o", strict.to_str().unwrap()]).output().unwrap();
+    let out = Command::new(BIN)
+        .args([
+            "merge",
+            "--require-complete",
+            p0.to_str().unwrap(),
+            "-o",
+            strict.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
     let err = String::from_utf8_lossy(&out.stderr);
     assert_eq!(out.status.code(), Some(4), "{err}");
-    assert!(err.contains("error: the run is incomplete") && err.contains("nothing written"), "{err}");
+    assert!(
+        err.contains("error: the run is incomplete") && err.contains("nothing written"),
+        "{err}"
+    );
     assert!(!strict.exists());
-    let out = Command::new(BIN).args(["merge", "--require-complete", two.to_str().unwrap(), "-o", strict.to_str().unwrap()]).output().unwrap();
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = Command::new(BIN)
+        .args([
+            "merge",
+            "--require-complete",
+            two.to_str().unwrap(),
+            "-o",
+            strict.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let _ = std::fs::remove_dir_all(&dir);
 }
 
@@ -245,10 +457,24 @@ fn slices_merge_into_the_unsliced_run() {
 fn resume_copes_with_missing_and_unreadable_part_files() {
     let dir = scratch("unreadable");
     let reference = dir.join("ref");
-    let set = ["--set", "swarm.trajectories=4", "--set", "dynamics.duration_fs=5"];
-    let mut a = vec!["-q", "run", "ensembles/three-state-cone.toml", "-o", reference.to_str().unwrap()];
+    let set = [
+        "--set",
+        "swarm.trajectories=4",
+        "--set",
+        "dynamics.duration_fs=5",
+    ];
+    let mut a = vec![
+        "-q",
+        "run",
+        "ensembles/three-state-cone.toml",
+        "-o",
+        reference.to_str().unwrap(),
+    ];
     a.extend(set);
-    assert_eq!(Command::new(BIN).args(&a).output().unwrap().status.code(), Some(0));
+    assert_eq!(
+        Command::new(BIN).args(&a).output().unwrap().status.code(),
+        Some(0)
+    );
     let want = all_rows(&reference.join("part-0000-of-0001.h5"));
     // Only run.toml and the model copy: stopped before anything was written.
     let early = dir.join("early");
@@ -256,16 +482,39 @@ fn resume_copes_with_missing_and_unreadable_part_files() {
     for f in ["run.toml", "lvc-model.toml"] {
         std::fs::copy(reference.join(f), early.join(f)).unwrap();
     }
-    let out = Command::new(BIN).args(["-q", "resume", early.to_str().unwrap()]).output().unwrap();
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let out = Command::new(BIN)
+        .args(["-q", "resume", early.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     assert_eq!(all_rows(&early.join("part-0000-of-0001.h5")), want);
     // A part file of garbage.
-    std::fs::write(early.join("part-0000-of-0001.h5"), b"not an HDF5 file at all").unwrap();
-    let out = Command::new(BIN).args(["resume", early.to_str().unwrap()]).output().unwrap();
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    std::fs::write(
+        early.join("part-0000-of-0001.h5"),
+        b"not an HDF5 file at all",
+    )
+    .unwrap();
+    let out = Command::new(BIN)
+        .args(["resume", early.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     assert!(String::from_utf8_lossy(&out.stderr).contains("computing slice 0/1 again"));
     assert_eq!(all_rows(&early.join("part-0000-of-0001.h5")), want);
-    let kept = std::fs::read_dir(&early).unwrap().flatten().any(|e| e.file_name().to_string_lossy().contains(".unreadable-"));
+    let kept = std::fs::read_dir(&early)
+        .unwrap()
+        .flatten()
+        .any(|e| e.file_name().to_string_lossy().contains(".unreadable-"));
     assert!(kept, "the unreadable file must be kept aside");
     let _ = std::fs::remove_dir_all(&dir);
 }

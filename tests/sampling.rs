@@ -62,7 +62,9 @@ fn linear_triatomic_frequencies_are_analytic() {
     let k = 1.0; // hartree/bohr²
     let r = 2.2;
     let pos = [[0.0, 0.0, -r], [0.0, 0.0, 0.0], [0.0, 0.0, r]];
-    let s = Springs { pairs: vec![(0, 1, k, r), (1, 2, k, r)] };
+    let s = Springs {
+        pairs: vec![(0, 1, k, r), (1, 2, k, r)],
+    };
     let modes = normal_modes(&s.hessian(&flat(&pos)), &pos, &[mx, my, mx]).unwrap();
     assert!(modes.linear);
     assert_eq!(modes.omegas.len(), 4);
@@ -71,8 +73,16 @@ fn linear_triatomic_frequencies_are_analytic() {
     // ω = √|λ| turns rounding of λ (1e-20 against k/m ≈ 3e-5) into ~1e-10.
     let bends: Vec<f64> = modes.wavenumbers()[..2].to_vec();
     assert!(bends.iter().all(|b| b.abs() < 0.01), "bends {bends:?} cm-1");
-    assert!((modes.omegas[2] / ws - 1.0).abs() < 1e-6, "{} vs {ws}", modes.omegas[2]);
-    assert!((modes.omegas[3] / wa - 1.0).abs() < 1e-6, "{} vs {wa}", modes.omegas[3]);
+    assert!(
+        (modes.omegas[2] / ws - 1.0).abs() < 1e-6,
+        "{} vs {ws}",
+        modes.omegas[2]
+    );
+    assert!(
+        (modes.omegas[3] / wa - 1.0).abs() < 1e-6,
+        "{} vs {wa}",
+        modes.omegas[3]
+    );
     // Orthonormal mass-weighted modes.
     let v = &modes.vectors;
     assert!((v.transpose() * v - DMatrix::identity(4, 4)).norm() < 1e-12);
@@ -85,7 +95,9 @@ fn rotation(a: f64, b: f64, c: f64) -> [[f64; 3]; 3] {
     let rx = [[1.0, 0.0, 0.0], [0.0, ca, -sa], [0.0, sa, ca]];
     let ry = [[cb, 0.0, sb], [0.0, 1.0, 0.0], [-sb, 0.0, cb]];
     let rz = [[cc, -sc, 0.0], [sc, cc, 0.0], [0.0, 0.0, 1.0]];
-    let mul = |p: [[f64; 3]; 3], q: [[f64; 3]; 3]| -> [[f64; 3]; 3] { std::array::from_fn(|i| std::array::from_fn(|j| (0..3).map(|k| p[i][k] * q[k][j]).sum())) };
+    let mul = |p: [[f64; 3]; 3], q: [[f64; 3]; 3]| -> [[f64; 3]; 3] {
+        std::array::from_fn(|i| std::array::from_fn(|j| (0..3).map(|k| p[i][k] * q[k][j]).sum()))
+    };
     mul(mul(rx, ry), rz)
 }
 
@@ -95,16 +107,35 @@ fn rotation(a: f64, b: f64, c: f64) -> [[f64; 3]; 3] {
 /// the full Hessian, are below 1 cm⁻¹.
 #[test]
 fn bent_triatomic_is_invariant_under_rigid_motion() {
-    let m = [units::amu_to_me(15.995), units::amu_to_me(1.008), units::amu_to_me(1.008)];
+    let m = [
+        units::amu_to_me(15.995),
+        units::amu_to_me(1.008),
+        units::amu_to_me(1.008),
+    ];
     let pos = [[0.0, 0.0, 0.0], [1.43, 1.11, 0.0], [-1.43, 1.11, 0.0]];
-    let d = |a: [f64; 3], b: [f64; 3]| ((a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2) + (a[2] - b[2]).powi(2)).sqrt();
-    let s = Springs { pairs: vec![(0, 1, 0.5, d(pos[0], pos[1])), (0, 2, 0.5, d(pos[0], pos[2])), (1, 2, 0.05, d(pos[1], pos[2]))] };
+    let d = |a: [f64; 3], b: [f64; 3]| {
+        ((a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2) + (a[2] - b[2]).powi(2)).sqrt()
+    };
+    let s = Springs {
+        pairs: vec![
+            (0, 1, 0.5, d(pos[0], pos[1])),
+            (0, 2, 0.5, d(pos[0], pos[2])),
+            (1, 2, 0.05, d(pos[1], pos[2])),
+        ],
+    };
     let base = normal_modes(&s.hessian(&flat(&pos)), &pos, &m).unwrap();
     assert!(!base.linear);
     assert_eq!(base.omegas.len(), 3);
     assert!(base.omegas.iter().all(|w| *w > 0.0));
     let rot = rotation(0.3, -1.1, 2.0);
-    let moved: Vec<[f64; 3]> = pos.iter().map(|p| std::array::from_fn(|i| (0..3).map(|k| rot[i][k] * p[k]).sum::<f64>() + [3.0, -2.0, 7.5][i])).collect();
+    let moved: Vec<[f64; 3]> = pos
+        .iter()
+        .map(|p| {
+            std::array::from_fn(|i| {
+                (0..3).map(|k| rot[i][k] * p[k]).sum::<f64>() + [3.0, -2.0, 7.5][i]
+            })
+        })
+        .collect();
     let other = normal_modes(&s.hessian(&flat(&moved)), &moved, &m).unwrap();
     for (a, b) in base.omegas.iter().zip(&other.omegas) {
         assert!((a / b - 1.0).abs() < 1e-10, "{a} vs {b}");
@@ -113,10 +144,18 @@ fn bent_triatomic_is_invariant_under_rigid_motion() {
     // Hessian at this stationary geometry are below 1 cm⁻¹.
     let h = s.hessian(&flat(&moved));
     let hm = DMatrix::from_fn(9, 9, |i, j| h[(i, j)] / (m[i / 3] * m[j / 3]).sqrt());
-    let mut ev: Vec<f64> = nalgebra::SymmetricEigen::new(hm).eigenvalues.iter().copied().collect();
+    let mut ev: Vec<f64> = nalgebra::SymmetricEigen::new(hm)
+        .eigenvalues
+        .iter()
+        .copied()
+        .collect();
     ev.sort_by(|a, b| a.abs().total_cmp(&b.abs()));
     for e in &ev[..6] {
-        assert!(units::hartree_to_cm1(e.abs().sqrt()) < 1.0, "external mode {} cm-1", units::hartree_to_cm1(e.abs().sqrt()));
+        assert!(
+            units::hartree_to_cm1(e.abs().sqrt()) < 1.0,
+            "external mode {} cm-1",
+            units::hartree_to_cm1(e.abs().sqrt())
+        );
     }
 }
 
@@ -124,10 +163,23 @@ fn bent_triatomic_is_invariant_under_rigid_motion() {
 /// analytic Hessian to 1e-5 relative (central differences, error O(h²)).
 #[test]
 fn finite_difference_hessian_matches_analytic() {
-    let pos = [[0.0, 0.0, 0.0], [1.5, 1.0, 0.2], [-1.4, 1.2, -0.1], [0.1, -1.6, 0.4]];
+    let pos = [
+        [0.0, 0.0, 0.0],
+        [1.5, 1.0, 0.2],
+        [-1.4, 1.2, -0.1],
+        [0.1, -1.6, 0.4],
+    ];
     let q = flat(&pos);
     // Springs away from their rest lengths: a non-stationary geometry.
-    let s = Springs { pairs: vec![(0, 1, 0.5, 1.7), (0, 2, 0.5, 1.9), (1, 2, 0.1, 2.5), (0, 3, 0.4, 1.8), (2, 3, 0.2, 3.0)] };
+    let s = Springs {
+        pairs: vec![
+            (0, 1, 0.5, 1.7),
+            (0, 2, 0.5, 1.9),
+            (1, 2, 0.1, 2.5),
+            (0, 3, 0.4, 1.8),
+            (2, 3, 0.2, 3.0),
+        ],
+    };
     let fd = finite_difference_hessian::<(), _>(&q, 1e-4, |x| Ok(s.gradient(x))).unwrap();
     let exact = s.hessian(&q);
     let err = (&fd - &exact).abs().max() / exact.abs().max();
@@ -137,9 +189,24 @@ fn finite_difference_hessian_matches_analytic() {
 #[test]
 fn wrong_hessian_shape_names_the_shapes() {
     let e = normal_modes(&DMatrix::zeros(8, 9), &[[0.0; 3]; 3], &[1.0; 3]).unwrap_err();
-    assert_eq!(e, ModesError::Shape { rows: 8, cols: 9, atoms: 3 });
-    assert!(e.to_string().contains("8×9") && e.to_string().contains("9×9"), "{e}");
-    let e = normal_modes(&DMatrix::zeros(6, 6), &[[0.0; 3], [1.0, 0.0, 0.0]], &[1.0, -2.0]).unwrap_err();
+    assert_eq!(
+        e,
+        ModesError::Shape {
+            rows: 8,
+            cols: 9,
+            atoms: 3
+        }
+    );
+    assert!(
+        e.to_string().contains("8×9") && e.to_string().contains("9×9"),
+        "{e}"
+    );
+    let e = normal_modes(
+        &DMatrix::zeros(6, 6),
+        &[[0.0; 3], [1.0, 0.0, 0.0]],
+        &[1.0, -2.0],
+    )
+    .unwrap_err();
     assert!(e.to_string().contains("atom 1"), "{e}");
 }
 
@@ -149,7 +216,11 @@ fn wrong_hessian_shape_names_the_shapes() {
 /// T = 0, 300 K and 3000 K, within 5 standard errors.
 #[test]
 fn wigner_moments_match_the_thermal_harmonic_oscillator() {
-    let omegas = [units::cm1_to_hartree(200.0), units::cm1_to_hartree(1600.0), units::cm1_to_hartree(3700.0)];
+    let omegas = [
+        units::cm1_to_hartree(200.0),
+        units::cm1_to_hartree(1600.0),
+        units::cm1_to_hartree(3700.0),
+    ];
     let n = 100_000;
     for t in [0.0, 300.0, 3000.0] {
         let kt = units::kelvin_to_hartree(t);
@@ -165,14 +236,27 @@ fn wigner_moments_match_the_thermal_harmonic_oscillator() {
         }
         for k in 0..3 {
             let w = omegas[k];
-            let c = if t == 0.0 { 1.0 } else { 1.0 / (w / (2.0 * kt)).tanh() };
+            let c = if t == 0.0 {
+                1.0
+            } else {
+                1.0 / (w / (2.0 * kt)).tanh()
+            };
             let (vq, vp) = (sq[k] / n as f64, sp[k] / n as f64);
             let (eq, ep) = (0.5 * c / w, 0.5 * c * w);
             let tol = 5.0 * (2.0 / n as f64).sqrt();
-            assert!((vq / eq - 1.0).abs() < tol, "T={t} mode {k}: <Q²> {vq} vs {eq}");
-            assert!((vp / ep - 1.0).abs() < tol, "T={t} mode {k}: <P²> {vp} vs {ep}");
+            assert!(
+                (vq / eq - 1.0).abs() < tol,
+                "T={t} mode {k}: <Q²> {vq} vs {eq}"
+            );
+            assert!(
+                (vp / ep - 1.0).abs() < tol,
+                "T={t} mode {k}: <P²> {vp} vs {ep}"
+            );
             let energy = 0.5 * vp + 0.5 * w * w * vq;
-            assert!((energy / (0.5 * w * c) - 1.0).abs() < tol, "T={t} mode {k}: energy");
+            assert!(
+                (energy / (0.5 * w * c) - 1.0).abs() < tol,
+                "T={t} mode {k}: energy"
+            );
         }
     }
     // Frozen modes stay at rest.
@@ -189,16 +273,28 @@ fn net_linear_and_angular_momenta_are_removed() {
     use rand::Rng;
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(4);
     let geometries: [(Vec<f64>, Vec<f64>); 2] = [
-        (vec![0.0, 0.0, 0.0, 1.43, 1.11, 0.1, -1.43, 1.11, -0.2, 0.3, -1.5, 0.9], vec![29000.0, 1837.0, 1837.0, 21900.0]),
-        (vec![0.0, 0.0, -2.2, 0.0, 0.0, 0.0, 0.0, 0.0, 2.2], vec![29000.0, 21900.0, 29000.0]),
+        (
+            vec![
+                0.0, 0.0, 0.0, 1.43, 1.11, 0.1, -1.43, 1.11, -0.2, 0.3, -1.5, 0.9,
+            ],
+            vec![29000.0, 1837.0, 1837.0, 21900.0],
+        ),
+        (
+            vec![0.0, 0.0, -2.2, 0.0, 0.0, 0.0, 0.0, 0.0, 2.2],
+            vec![29000.0, 21900.0, 29000.0],
+        ),
     ];
     for (q, m) in geometries {
         let mut v: Vec<f64> = (0..q.len()).map(|_| rng.gen_range(-1e-3..1e-3)).collect();
         let moments = |v: &[f64]| {
             let n = m.len();
             let total: f64 = m.iter().sum();
-            let com: Vec<f64> = (0..3).map(|k| (0..n).map(|a| m[a] * q[3 * a + k]).sum::<f64>() / total).collect();
-            let p: Vec<f64> = (0..3).map(|k| (0..n).map(|a| m[a] * v[3 * a + k]).sum()).collect();
+            let com: Vec<f64> = (0..3)
+                .map(|k| (0..n).map(|a| m[a] * q[3 * a + k]).sum::<f64>() / total)
+                .collect();
+            let p: Vec<f64> = (0..3)
+                .map(|k| (0..n).map(|a| m[a] * v[3 * a + k]).sum())
+                .collect();
             let mut l = [0.0; 3];
             for a in 0..n {
                 let d: Vec<f64> = (0..3).map(|k| q[3 * a + k] - com[k]).collect();
@@ -207,12 +303,21 @@ fn net_linear_and_angular_momenta_are_removed() {
                 l[1] += m[a] * (d[2] * u[0] - d[0] * u[2]);
                 l[2] += m[a] * (d[0] * u[1] - d[1] * u[0]);
             }
-            (p.iter().map(|x| x * x).sum::<f64>().sqrt(), l.iter().map(|x| x * x).sum::<f64>().sqrt())
+            (
+                p.iter().map(|x| x * x).sum::<f64>().sqrt(),
+                l.iter().map(|x| x * x).sum::<f64>().sqrt(),
+            )
         };
         let (p0, l0) = moments(&v);
         wigner::remove_net_momenta(&q, &mut v, &m);
         let (p1, l1) = moments(&v);
-        assert!(p1 < 1e-12 * p0.max(1e-300) + 1e-18, "linear momentum {p1} (was {p0})");
-        assert!(l1 < 1e-12 * l0.max(1e-300) + 1e-18, "angular momentum {l1} (was {l0})");
+        assert!(
+            p1 < 1e-12 * p0.max(1e-300) + 1e-18,
+            "linear momentum {p1} (was {p0})"
+        );
+        assert!(
+            l1 < 1e-12 * l0.max(1e-300) + 1e-18,
+            "angular momentum {l1} (was {l0})"
+        );
     }
 }

@@ -21,9 +21,6 @@ use flipswarm::electronic::qc::scf::{
 };
 use serde_json::Value;
 
-
-
-
 fn reference_of(method: &str) -> Reference {
     match method {
         "rhf" | "rks" => Reference::Restricted,
@@ -51,7 +48,11 @@ fn case_setup(case: &Value) -> (BasisSet, Electrons, Reference) {
         case["multiplicity"].as_u64().unwrap() as usize,
     )
     .unwrap();
-    (basis, electrons, reference_of(case["method"].as_str().unwrap()))
+    (
+        basis,
+        electrons,
+        reference_of(case["method"].as_str().unwrap()),
+    )
 }
 
 // Source: PySCF 2.14.0 fixtures (scripts/reference/scf_energies.py), 1e-8 Eh.
@@ -86,9 +87,20 @@ fn hartree_fock_energies_match_the_reference_library() {
             err,
             r.iterations
         );
-        assert!(err < 1e-8, "{}: {} vs {}", case["molecule"], r.energy, expect);
+        assert!(
+            err < 1e-8,
+            "{}: {} vs {}",
+            case["molecule"],
+            r.energy,
+            expect
+        );
         if let Some(s2) = case.get("s_squared").and_then(Value::as_f64) {
-            assert!((r.s_squared - s2).abs() < 1e-6, "<S2> {} vs {}", r.s_squared, s2);
+            assert!(
+                (r.s_squared - s2).abs() < 1e-6,
+                "<S2> {} vs {}",
+                r.s_squared,
+                s2
+            );
         }
         worst = worst.max(err);
         n += 1;
@@ -118,10 +130,21 @@ fn water_exercise() -> Molecule {
 fn water_sto3g_matches_the_programming_exercise() {
     let basis = BasisSet::builtin(&water_exercise(), "STO-3G").unwrap();
     let el = Electrons::from_charge_multiplicity(10, 0, 1).unwrap();
-    let r = hartree_fock(&basis, el, Reference::Restricted, &Guess::Core, &tight(), JkOptions::default())
-        .unwrap();
+    let r = hartree_fock(
+        &basis,
+        el,
+        Reference::Restricted,
+        &Guess::Core,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap();
     // The exercise's nuclear repulsion (from memory) pins the geometry.
-    assert!((r.nuclear_repulsion - 8.002367061810450).abs() < 1e-11, "{}", r.nuclear_repulsion);
+    assert!(
+        (r.nuclear_repulsion - 8.002367061810450).abs() < 1e-11,
+        "{}",
+        r.nuclear_repulsion
+    );
     // We and PySCF agree to 1e-13 on this case (fixture); the exercise's
     // integrals were made from STO-3G data rounded differently, which moves
     // its energy by 2.6e-8 Eh, so it is matched to 5e-8.
@@ -132,11 +155,19 @@ fn water_sto3g_matches_the_programming_exercise() {
 #[test]
 fn h2_sto3g_matches_szabo_ostlund() {
     let h = Element::from_symbol("H").unwrap();
-    let mol = Molecule::from_elements_positions_bohr(&[h, h], &[[0.0; 3], [0.0, 0.0, 1.4]]).unwrap();
+    let mol =
+        Molecule::from_elements_positions_bohr(&[h, h], &[[0.0; 3], [0.0, 0.0, 1.4]]).unwrap();
     let basis = BasisSet::builtin(&mol, "STO-3G").unwrap();
     let el = Electrons::from_charge_multiplicity(2, 0, 1).unwrap();
-    let r = hartree_fock(&basis, el, Reference::Restricted, &Guess::Core, &tight(), JkOptions::default())
-        .unwrap();
+    let r = hartree_fock(
+        &basis,
+        el,
+        Reference::Restricted,
+        &Guess::Core,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap();
     assert!((r.energy - -1.1167).abs() < 5e-5, "{}", r.energy);
     // Orbital energies printed there: −0.578 and +0.670 Eh.
     assert!((r.orbital_energies_alpha[0] - -0.578).abs() < 5e-4);
@@ -149,15 +180,29 @@ fn h2_sto3g_matches_szabo_ostlund() {
 fn closed_shell_references_agree() {
     let basis = BasisSet::builtin(&water_exercise(), "6-31G*").unwrap();
     let el = Electrons::from_charge_multiplicity(10, 0, 1).unwrap();
-    let e: Vec<f64> = [Reference::Restricted, Reference::Unrestricted, Reference::RestrictedOpen]
-        .iter()
-        .map(|&r| {
-            hartree_fock(&basis, el, r, &Guess::AtomicSuperposition, &tight(), JkOptions::default())
-                .unwrap()
-                .energy
-        })
-        .collect();
-    assert!((e[0] - e[1]).abs() < 1e-10 && (e[0] - e[2]).abs() < 1e-10, "{e:?}");
+    let e: Vec<f64> = [
+        Reference::Restricted,
+        Reference::Unrestricted,
+        Reference::RestrictedOpen,
+    ]
+    .iter()
+    .map(|&r| {
+        hartree_fock(
+            &basis,
+            el,
+            r,
+            &Guess::AtomicSuperposition,
+            &tight(),
+            JkOptions::default(),
+        )
+        .unwrap()
+        .energy
+    })
+    .collect();
+    assert!(
+        (e[0] - e[1]).abs() < 1e-10 && (e[0] - e[2]).abs() < 1e-10,
+        "{e:?}"
+    );
 }
 
 // Exact identity: integral-direct and in-core builds give the same SCF
@@ -190,7 +235,12 @@ fn direct_and_in_core_scf_agree() {
         let a = run(usize::MAX);
         let b = run(0);
         assert!(a.in_core && !b.in_core);
-        assert!((a.energy - b.energy).abs() < 1e-10, "{method}: {} vs {}", a.energy, b.energy);
+        assert!(
+            (a.energy - b.energy).abs() < 1e-10,
+            "{method}: {} vs {}",
+            a.energy,
+            b.energy
+        );
     }
 }
 
@@ -206,8 +256,15 @@ fn rohf_triplet_is_spin_pure_and_stationary() {
         .find(|c| c["molecule"] == "ch2" && c["method"] == "rohf")
         .unwrap();
     let (basis, electrons, reference) = case_setup(case);
-    let r = hartree_fock(&basis, electrons, reference, &Guess::AtomicSuperposition, &tight(), JkOptions::default())
-        .unwrap();
+    let r = hartree_fock(
+        &basis,
+        electrons,
+        reference,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap();
     assert!((r.s_squared - 2.0).abs() < 1e-10);
     let c = &r.orbitals_alpha;
     let fa = c.transpose() * &r.fock_alpha * c;
@@ -244,20 +301,41 @@ fn hard_cases_converge_or_fail_typed() {
         .find(|c| c["molecule"] == "h2o_stretched")
         .unwrap();
     let (basis, electrons, reference) = case_setup(case);
-    let r = hartree_fock(&basis, electrons, reference, &Guess::Core, &tight(), JkOptions::default())
-        .unwrap();
+    let r = hartree_fock(
+        &basis,
+        electrons,
+        reference,
+        &Guess::Core,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap();
     // Source: PySCF fixture; from the core guess the same solution is found.
     assert!((r.energy - case["energy"].as_f64().unwrap()).abs() < 1e-8);
     let starved = ScfOptions {
         max_iterations: 3,
         ..tight()
     };
-    match hartree_fock(&basis, electrons, reference, &Guess::Core, &starved, JkOptions::default()) {
-        Err(ScfError::NotConverged { iterations, history }) => {
+    match hartree_fock(
+        &basis,
+        electrons,
+        reference,
+        &Guess::Core,
+        &starved,
+        JkOptions::default(),
+    ) {
+        Err(ScfError::NotConverged {
+            iterations,
+            history,
+        }) => {
             assert_eq!(iterations, 3);
             assert_eq!(history.len(), 3);
             assert_eq!(history[2].iteration, 3);
-            let msg = ScfError::NotConverged { iterations, history }.to_string();
+            let msg = ScfError::NotConverged {
+                iterations,
+                history,
+            }
+            .to_string();
             assert!(msg.contains("not converged in 3 iterations"), "{msg}");
         }
         other => panic!("expected NotConverged, got {other:?}"),
@@ -276,8 +354,15 @@ fn previous_orbitals_converge_faster() {
         .find(|c| c["molecule"] == "ch2o" && c["method"] == "rohf")
         .unwrap();
     let (basis, electrons, reference) = case_setup(case);
-    let first = hartree_fock(&basis, electrons, reference, &Guess::AtomicSuperposition, &tight(), JkOptions::default())
-        .unwrap();
+    let first = hartree_fock(
+        &basis,
+        electrons,
+        reference,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap();
     // Move every atom by ~0.01 bohr (the size of a 0.5 fs step of a light atom).
     let mut mol = molecule_from(&case["atoms"]);
     let mut q = mol.positions_flat_bohr();
@@ -286,8 +371,15 @@ fn previous_orbitals_converge_faster() {
     }
     mol.set_positions_flat_bohr(&q).unwrap();
     let moved = BasisSet::builtin(&mol, "6-31G*").unwrap();
-    let cold = hartree_fock(&moved, electrons, reference, &Guess::AtomicSuperposition, &tight(), JkOptions::default())
-        .unwrap();
+    let cold = hartree_fock(
+        &moved,
+        electrons,
+        reference,
+        &Guess::AtomicSuperposition,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap();
     let warm = hartree_fock(
         &moved,
         electrons,
@@ -301,8 +393,16 @@ fn previous_orbitals_converge_faster() {
     )
     .unwrap();
     assert!((warm.energy - cold.energy).abs() < 1e-9);
-    eprintln!("iterations: cold {} warm {}", cold.iterations, warm.iterations);
-    assert!(warm.iterations < cold.iterations, "warm {} cold {}", warm.iterations, cold.iterations);
+    eprintln!(
+        "iterations: cold {} warm {}",
+        cold.iterations, warm.iterations
+    );
+    assert!(
+        warm.iterations < cold.iterations,
+        "warm {} cold {}",
+        warm.iterations,
+        cold.iterations
+    );
 }
 
 // Set-up errors are typed and name the problem.
@@ -317,10 +417,18 @@ fn impossible_electron_counts_are_rejected() {
     assert_eq!((ok.alpha, ok.beta), (5, 3));
     // A restricted calculation of a triplet is a set-up error, not a failure.
     let h = Element::from_symbol("H").unwrap();
-    let mol = Molecule::from_elements_positions_bohr(&[h, h], &[[0.0; 3], [0.0, 0.0, 1.4]]).unwrap();
+    let mol =
+        Molecule::from_elements_positions_bohr(&[h, h], &[[0.0; 3], [0.0, 0.0, 1.4]]).unwrap();
     let basis = BasisSet::builtin(&mol, "STO-3G").unwrap();
     let t = Electrons::from_charge_multiplicity(2, 0, 3).unwrap();
-    let e = hartree_fock(&basis, t, Reference::Restricted, &Guess::Core, &tight(), JkOptions::default())
-        .unwrap_err();
+    let e = hartree_fock(
+        &basis,
+        t,
+        Reference::Restricted,
+        &Guess::Core,
+        &tight(),
+        JkOptions::default(),
+    )
+    .unwrap_err();
     assert!(matches!(e, ScfError::Electrons(_)), "{e}");
 }

@@ -16,7 +16,10 @@ const BIN: &str = env!("CARGO_BIN_EXE_flipswarm");
 const BOHR_IN_ANGSTROM: f64 = 0.529_177_210_903;
 
 fn fixture() -> Value {
-    let path = format!("{}/tests/data/qc/scf_energies.json", env!("CARGO_MANIFEST_DIR"));
+    let path = format!(
+        "{}/tests/data/qc/scf_energies.json",
+        env!("CARGO_MANIFEST_DIR")
+    );
     serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
 }
 
@@ -48,12 +51,20 @@ fn find<'a>(fx: &'a Value, molecule: &str, method: &str, functional: Option<&str
         .as_array()
         .unwrap()
         .iter()
-        .find(|c| c["molecule"] == molecule && c["method"] == method && c["functional"].as_str() == functional)
+        .find(|c| {
+            c["molecule"] == molecule
+                && c["method"] == method
+                && c["functional"].as_str() == functional
+        })
         .unwrap()
 }
 
 fn run(args: &[&str]) -> (i32, String, String) {
-    let out = Command::new(BIN).args(args).env("FLIPSWARM_LOG", "warn").output().unwrap();
+    let out = Command::new(BIN)
+        .args(args)
+        .env("FLIPSWARM_LOG", "warn")
+        .output()
+        .unwrap();
     (
         out.status.code().unwrap_or(-1),
         String::from_utf8_lossy(&out.stdout).into_owned(),
@@ -69,7 +80,17 @@ fn rohf_json_matches_the_reference() {
     let case = find(&fx, "ch2", "rohf", None);
     let dir = scratch("rohf");
     let xyz = write_xyz(&dir, case);
-    let (code, out, err) = run(&["single-point", xyz.to_str().unwrap(), "--method", "rohf", "--basis", "6-31g*", "--multiplicity", "3", "--json"]);
+    let (code, out, err) = run(&[
+        "single-point",
+        xyz.to_str().unwrap(),
+        "--method",
+        "rohf",
+        "--basis",
+        "6-31g*",
+        "--multiplicity",
+        "3",
+        "--json",
+    ]);
     assert_eq!(code, 0, "{err}");
     let v: Value = serde_json::from_str(&out).unwrap();
     let e = v["energy"].as_f64().unwrap();
@@ -81,7 +102,10 @@ fn rohf_json_matches_the_reference() {
     let nb: f64 = occ_b.iter().map(|x| x.as_f64().unwrap()).sum();
     assert_eq!((na, nb), (5.0, 3.0));
     assert!(v["iterations"].as_u64().unwrap() >= 2);
-    assert_eq!(v["history"].as_array().unwrap().len() as u64, v["iterations"].as_u64().unwrap());
+    assert_eq!(
+        v["history"].as_array().unwrap().len() as u64,
+        v["iterations"].as_u64().unwrap()
+    );
 }
 
 // Source: PySCF 2.14.0 fixture (ROKS/BH&HLYP triplet methylene), 1e-6 Eh on
@@ -95,7 +119,10 @@ fn roks_table_matches_the_reference() {
     let (code, out, err) = run(&["single-point", xyz.to_str().unwrap()]);
     assert_eq!(code, 0, "{err}");
     assert!(out.contains("ROKS/bhhlyp, 6-31G*"), "{out}");
-    let line = out.lines().find(|l| l.trim_start().starts_with("total energy")).unwrap();
+    let line = out
+        .lines()
+        .find(|l| l.trim_start().starts_with("total energy"))
+        .unwrap();
     let e: f64 = line.split_whitespace().nth(2).unwrap().parse().unwrap();
     assert!((e - case["energy"].as_f64().unwrap()).abs() < 1e-6, "{e}");
     assert!(out.contains("<S^2>"));
@@ -109,18 +136,59 @@ fn bad_input_is_named_with_a_non_zero_exit() {
     let x = xyz.to_str().unwrap();
     // (arguments, exit code, text the message must contain)
     let cases: Vec<(Vec<&str>, i32, &str)> = vec![
-        (vec!["single-point", "/nonexistent/w.xyz"], 2, "/nonexistent/w.xyz"),
+        (
+            vec!["single-point", "/nonexistent/w.xyz"],
+            2,
+            "/nonexistent/w.xyz",
+        ),
         (vec!["single-point", x, "--basis", "6-31q*"], 2, "6-31q*"),
-        (vec!["single-point", x, "--method", "rhf", "--multiplicity", "3"], 2, "closed-shell"),
-        (vec!["single-point", x, "--method", "rohf", "--multiplicity", "2"], 2, "multiplicity 2"),
-        (vec!["single-point", x, "--method", "rks", "--functional", "b3lpy"], 2, "b3lpy"),
-        (vec!["single-point", x, "--method", "rks", "--grid", "superfine"], 2, "superfine"),
-        (vec!["single-point", x, "--method", "rhf", "--max-iterations", "2"], 4, "not converged in 2 iterations"),
+        (
+            vec!["single-point", x, "--method", "rhf", "--multiplicity", "3"],
+            2,
+            "closed-shell",
+        ),
+        (
+            vec!["single-point", x, "--method", "rohf", "--multiplicity", "2"],
+            2,
+            "multiplicity 2",
+        ),
+        (
+            vec![
+                "single-point",
+                x,
+                "--method",
+                "rks",
+                "--functional",
+                "b3lpy",
+            ],
+            2,
+            "b3lpy",
+        ),
+        (
+            vec!["single-point", x, "--method", "rks", "--grid", "superfine"],
+            2,
+            "superfine",
+        ),
+        (
+            vec![
+                "single-point",
+                x,
+                "--method",
+                "rhf",
+                "--max-iterations",
+                "2",
+            ],
+            4,
+            "not converged in 2 iterations",
+        ),
     ];
     for (args, code, text) in cases {
         let (c, _, err) = run(&args);
         assert_eq!(c, code, "{args:?}: {err}");
-        assert!(err.contains(text), "{args:?}: message lacks {text:?}: {err}");
+        assert!(
+            err.contains(text),
+            "{args:?}: message lacks {text:?}: {err}"
+        );
         assert!(!err.contains("panicked"), "{err}");
     }
     // Two atoms on top of each other.
@@ -142,7 +210,21 @@ fn excited_states_from_the_command_line() {
     let dir = scratch("excited");
     let xyz = write_xyz(&dir, case);
     let x = xyz.to_str().unwrap();
-    let (code, out, err) = run(&["single-point", x, "--method", "rohf", "--basis", "6-31g*", "--excited", "mrsf", "--singlets", "2", "--triplets", "1", "--json"]);
+    let (code, out, err) = run(&[
+        "single-point",
+        x,
+        "--method",
+        "rohf",
+        "--basis",
+        "6-31g*",
+        "--excited",
+        "mrsf",
+        "--singlets",
+        "2",
+        "--triplets",
+        "1",
+        "--json",
+    ]);
     assert_eq!(code, 0, "{err}");
     let v: Value = serde_json::from_str(&out).unwrap();
     let states = v["excited_states"]["states"].as_array().unwrap();
@@ -152,13 +234,27 @@ fn excited_states_from_the_command_line() {
     let t = states.iter().find(|s| s["spin"] == "triplet").unwrap();
     assert!((t["s_squared"].as_f64().unwrap() - 2.0).abs() < 1e-8);
     // energies ascending
-    let e: Vec<f64> = states.iter().map(|s| s["energy"].as_f64().unwrap()).collect();
+    let e: Vec<f64> = states
+        .iter()
+        .map(|s| s["energy"].as_f64().unwrap())
+        .collect();
     assert!(e.windows(2).all(|w| w[0] <= w[1]), "{e:?}");
     // a singlet reference cannot be spin-flipped
     let (code, _, err) = run(&["single-point", x, "--method", "rhf", "--excited", "mrsf"]);
     assert_eq!(code, 2, "{err}");
     assert!(err.contains("triplet reference"), "{err}");
-    let (code, out, err) = run(&["single-point", x, "--method", "rohf", "--basis", "sto-3g", "--excited", "sf", "--singlets", "3"]);
+    let (code, out, err) = run(&[
+        "single-point",
+        x,
+        "--method",
+        "rohf",
+        "--basis",
+        "sto-3g",
+        "--excited",
+        "sf",
+        "--singlets",
+        "3",
+    ]);
     assert_eq!(code, 0, "{err}");
     assert!(out.contains("SF-TDA") && out.contains("<S^2>"), "{out}");
 }
@@ -175,16 +271,49 @@ fn optimize_from_the_command_line() {
     let xyz = write_xyz(&dir, find(&fx, "h2o", "rhf", None));
     let x = xyz.to_str().unwrap();
     let out_xyz = dir.join("opt.xyz");
-    let (code, out, err) = run(&["optimize", x, "-o", out_xyz.to_str().unwrap(), "--method", "rhf", "--basis", "sto-3g"]);
+    let (code, out, err) = run(&[
+        "optimize",
+        x,
+        "-o",
+        out_xyz.to_str().unwrap(),
+        "--method",
+        "rhf",
+        "--basis",
+        "sto-3g",
+    ]);
     assert_eq!(code, 0, "{err}");
     assert!(out.contains("converged in"), "{out}");
-    let g: f64 = out.split("max |gradient| = ").nth(1).unwrap().split_whitespace().next().unwrap().parse().unwrap();
+    let g: f64 = out
+        .split("max |gradient| = ")
+        .nth(1)
+        .unwrap()
+        .split_whitespace()
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap();
     assert!(g < 4.5e-4, "{out}");
     let text = std::fs::read_to_string(&out_xyz).unwrap();
     assert_eq!(text.lines().next().unwrap().trim(), "3");
     let stuck = dir.join("stuck.xyz");
-    let (code, _, err) = run(&["optimize", x, "-o", stuck.to_str().unwrap(), "--method", "rhf", "--basis", "sto-3g", "--max-steps", "1"]);
+    let (code, _, err) = run(&[
+        "optimize",
+        x,
+        "-o",
+        stuck.to_str().unwrap(),
+        "--method",
+        "rhf",
+        "--basis",
+        "sto-3g",
+        "--max-steps",
+        "1",
+    ]);
     assert_eq!(code, 4, "{err}");
-    assert!(err.contains("not converged after 1 steps") && err.contains("last accepted geometry"), "{err}");
-    assert!(std::fs::read_to_string(&stuck).unwrap().contains("not converged"));
+    assert!(
+        err.contains("not converged after 1 steps") && err.contains("last accepted geometry"),
+        "{err}"
+    );
+    assert!(std::fs::read_to_string(&stuck)
+        .unwrap()
+        .contains("not converged"));
 }

@@ -19,7 +19,9 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use flipswarm::config::{load_str, RunConfig};
-use flipswarm::electronic::{Backend, BackendError, BackendInfo, Diagnostics, Request, Results, Snapshot};
+use flipswarm::electronic::{
+    Backend, BackendError, BackendInfo, Diagnostics, Request, Results, Snapshot,
+};
 use flipswarm::ensemble::h5::{PartReader, TrajectoryData, WriterState};
 use flipswarm::ensemble::runner;
 use flipswarm::swarm;
@@ -44,13 +46,29 @@ struct Diagnosed {
 }
 
 fn diagnostics_at(q: &[f64], n_states: usize) -> Diagnostics {
-    let h = q.iter().fold(0x9e37_79b9_7f4a_7c15u64, |h, x| (h ^ x.to_bits()).wrapping_mul(0x0100_0000_01b3));
+    let h = q.iter().fold(0x9e37_79b9_7f4a_7c15u64, |h, x| {
+        (h ^ x.to_bits()).wrapping_mul(0x0100_0000_01b3)
+    });
     let it = (h % 11) as u32 + 2;
     Diagnostics {
         iterations: Some(it),
         response_iterations: (it % 3 == 0).then_some(it + 5),
-        spin_squared: Some((0..n_states).map(|k| if k == 2 { f64::NAN } else { k as f64 + 1e-4 * it as f64 }).collect()),
-        warnings: if h % 97 == 0 { vec![format!("residual above tolerance (hash {h:x})")] } else { vec![] },
+        spin_squared: Some(
+            (0..n_states)
+                .map(|k| {
+                    if k == 2 {
+                        f64::NAN
+                    } else {
+                        k as f64 + 1e-4 * it as f64
+                    }
+                })
+                .collect(),
+        ),
+        warnings: if h % 97 == 0 {
+            vec![format!("residual above tolerance (hash {h:x})")]
+        } else {
+            vec![]
+        },
     }
 }
 
@@ -79,8 +97,18 @@ fn config(base: &Path) -> RunConfig {
 fn run_or_resume(base: &Path, dir: &Path, resume: bool) -> runner::RunReport {
     let cfg = config(base);
     let model = cfg.model.clone();
-    let factory = move |_: usize| -> Box<dyn Backend> { Box::new(Diagnosed { inner: swarm::make_backend(&model), results: Results::default() }) };
-    let opts = runner::Options { threads: 2, stop: Arc::new(AtomicBool::new(false)), factory: &factory, progress_bar: false };
+    let factory = move |_: usize| -> Box<dyn Backend> {
+        Box::new(Diagnosed {
+            inner: swarm::make_backend(&model),
+            results: Results::default(),
+        })
+    };
+    let opts = runner::Options {
+        threads: 2,
+        stop: Arc::new(AtomicBool::new(false)),
+        factory: &factory,
+        progress_bar: false,
+    };
     if resume {
         let stored = runner::load_run_config(dir).unwrap();
         runner::resume(&stored, dir, (0, 1), &opts).unwrap()
@@ -93,7 +121,9 @@ fn run_or_resume(base: &Path, dir: &Path, resume: bool) -> runner::RunReport {
 #[test]
 #[ignore]
 fn soak_child() {
-    let (Ok(dir), Ok(mode)) = (std::env::var(DIR_VAR), std::env::var(MODE_VAR)) else { return };
+    let (Ok(dir), Ok(mode)) = (std::env::var(DIR_VAR), std::env::var(MODE_VAR)) else {
+        return;
+    };
     let dir = PathBuf::from(dir);
     let base = dir.parent().unwrap().to_path_buf();
     run_or_resume(&base, &dir, mode == "resume");
@@ -104,9 +134,25 @@ fn bits(t: &TrajectoryData) -> Vec<Vec<u64>> {
         .iter()
         .zip(&t.diagnostics)
         .map(|(r, d)| {
-            let mut v = vec![r.step, r.time.to_bits(), r.active as u64, r.kinetic.to_bits(), r.potential.to_bits(), r.total.to_bits()];
-            v.extend(r.q.iter().chain(&r.v).chain(&r.energies).map(|x| x.to_bits()));
-            v.extend(r.amplitudes.iter().flat_map(|c| [c.re.to_bits(), c.im.to_bits()]));
+            let mut v = vec![
+                r.step,
+                r.time.to_bits(),
+                r.active as u64,
+                r.kinetic.to_bits(),
+                r.potential.to_bits(),
+                r.total.to_bits(),
+            ];
+            v.extend(
+                r.q.iter()
+                    .chain(&r.v)
+                    .chain(&r.energies)
+                    .map(|x| x.to_bits()),
+            );
+            v.extend(
+                r.amplitudes
+                    .iter()
+                    .flat_map(|c| [c.re.to_bits(), c.im.to_bits()]),
+            );
             v.extend(d.bits());
             v
         })
@@ -115,7 +161,10 @@ fn bits(t: &TrajectoryData) -> Vec<Vec<u64>> {
 
 fn read_all(p: &Path) -> Vec<TrajectoryData> {
     let r = PartReader::open(p).unwrap();
-    r.trajectory_indices().into_iter().map(|i| r.read(i).unwrap()).collect()
+    r.trajectory_indices()
+        .into_iter()
+        .map(|i| r.read(i).unwrap())
+        .collect()
 }
 
 /// Sizes of every file under `dir` (recursively).
@@ -162,9 +211,20 @@ fn soak_sigkill_and_resume_twenty_times_is_bit_identical() {
     let start = Instant::now();
     loop {
         cycles += 1;
-        let mode = if dir.join(runner::part_name(0, 1)).exists() { "resume" } else { "run" };
+        let mode = if dir.join(runner::part_name(0, 1)).exists() {
+            "resume"
+        } else {
+            "run"
+        };
         let mut child = Command::new(&exe)
-            .args(["--exact", "soak_child", "--ignored", "--nocapture", "--test-threads", "1"])
+            .args([
+                "--exact",
+                "soak_child",
+                "--ignored",
+                "--nocapture",
+                "--test-threads",
+                "1",
+            ])
             .env(DIR_VAR, &dir)
             .env(MODE_VAR, mode)
             .stdout(Stdio::null())
@@ -173,11 +233,18 @@ fn soak_sigkill_and_resume_twenty_times_is_bit_identical() {
             .unwrap();
         // Kill 20 ms (the process start) plus 2–8 % of the uninterrupted
         // run's time after the start (after 20 kills, let it finish).
-        let delay = if kills < 20 { Duration::from_millis(20) + t_ref.mul_f64(rng.gen_range(0.02..0.08)) } else { Duration::from_secs(3600) };
+        let delay = if kills < 20 {
+            Duration::from_millis(20) + t_ref.mul_f64(rng.gen_range(0.02..0.08))
+        } else {
+            Duration::from_secs(3600)
+        };
         let t = Instant::now();
         let finished = loop {
             if let Some(status) = child.try_wait().unwrap() {
-                assert!(status.success(), "cycle {cycles}: the {mode} process failed: {status}");
+                assert!(
+                    status.success(),
+                    "cycle {cycles}: the {mode} process failed: {status}"
+                );
                 break true;
             }
             if t.elapsed() >= delay {
@@ -192,29 +259,54 @@ fn soak_sigkill_and_resume_twenty_times_is_bit_identical() {
         for (p, n) in sizes(&dir) {
             let name = p.file_name().unwrap().to_string_lossy().to_string();
             if name.ends_with(".h5") || name.contains(".h5.") {
-                assert!(n <= estimate.part_bytes.max(2 * ref_size), "cycle {cycles}: {} is {n} bytes (estimate {}, uninterrupted file {ref_size})", p.display(), estimate.part_bytes);
+                assert!(
+                    n <= estimate.part_bytes.max(2 * ref_size),
+                    "cycle {cycles}: {} is {n} bytes (estimate {}, uninterrupted file {ref_size})",
+                    p.display(),
+                    estimate.part_bytes
+                );
             } else if name.contains(".ckpt") {
-                assert!(n < 64 * 1024, "cycle {cycles}: checkpoint {} is {n} bytes", p.display());
+                assert!(
+                    n < 64 * 1024,
+                    "cycle {cycles}: checkpoint {} is {n} bytes",
+                    p.display()
+                );
             }
         }
         if finished {
             break;
         }
-        assert!(start.elapsed() < Duration::from_secs(600), "soak did not finish: {kills} kills in {cycles} cycles");
+        assert!(
+            start.elapsed() < Duration::from_secs(600),
+            "soak did not finish: {kills} kills in {cycles} cycles"
+        );
     }
     eprintln!("soak: survived {kills} SIGKILL + resume cycles ({cycles} processes) in {:.1} s; uninterrupted run {:.2} s", start.elapsed().as_secs_f64(), t_ref.as_secs_f64());
     assert!(kills >= 20, "only {kills} kills landed");
 
     let part = dir.join(runner::part_name(0, 1));
-    assert_eq!(PartReader::open(&part).unwrap().writer_state(), WriterState::Closed);
+    assert_eq!(
+        PartReader::open(&part).unwrap().writer_state(),
+        WriterState::Closed
+    );
     let (got, want) = (read_all(&part), read_all(&ref_part));
     assert_eq!(got.len(), want.len());
     let mut warnings = 0;
     for (a, b) in got.iter().zip(&want) {
         assert_eq!(a.header, b.header);
         assert_eq!(bits(a), bits(b), "trajectory {}", b.header.index);
-        assert_eq!((&a.hops, &a.warnings, &a.status), (&b.hops, &b.warnings, &b.status), "trajectory {}", b.header.index);
-        assert_eq!(a.rows.len() as u64, estimate.rows_per_trajectory - 1, "trajectory {} rows", b.header.index);
+        assert_eq!(
+            (&a.hops, &a.warnings, &a.status),
+            (&b.hops, &b.warnings, &b.status),
+            "trajectory {}",
+            b.header.index
+        );
+        assert_eq!(
+            a.rows.len() as u64,
+            estimate.rows_per_trajectory - 1,
+            "trajectory {} rows",
+            b.header.index
+        );
         warnings += a.warnings.len();
     }
     assert!(warnings > 0, "the scenario must produce warnings");
@@ -224,11 +316,24 @@ fn soak_sigkill_and_resume_twenty_times_is_bit_identical() {
     // is bounded above.)
     let left: Vec<_> = sizes(&dir)
         .into_iter()
-        .filter(|(p, _)| p != &part && !p.ends_with("run.toml") && !p.ends_with("model.toml") && !p.ends_with(runner::MODEL_COPY))
-        .filter(|(p, _)| !p.file_name().unwrap().to_string_lossy().contains(".h5.unreadable-"))
+        .filter(|(p, _)| {
+            p != &part
+                && !p.ends_with("run.toml")
+                && !p.ends_with("model.toml")
+                && !p.ends_with(runner::MODEL_COPY)
+        })
+        .filter(|(p, _)| {
+            !p.file_name()
+                .unwrap()
+                .to_string_lossy()
+                .contains(".h5.unreadable-")
+        })
         .collect();
     assert!(left.is_empty(), "files left after completion: {left:?}");
     let size = std::fs::metadata(&part).unwrap().len();
-    assert!(size <= 2 * ref_size, "part file {size} bytes, uninterrupted {ref_size}");
+    assert!(
+        size <= 2 * ref_size,
+        "part file {size} bytes, uninterrupted {ref_size}"
+    );
     let _ = std::fs::remove_dir_all(&base);
 }

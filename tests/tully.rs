@@ -57,12 +57,17 @@ seed = 1990
     let cfg: RunConfig = load_str(&text, "tully-test", Path::new("."), &[]).unwrap();
     let outcomes = swarm::run(&cfg, 1).unwrap();
     let summary = Summary::new(&cfg, &outcomes);
-    assert!(summary.failed.is_empty(), "failed trajectories: {:?}", &summary.failed[..summary.failed.len().min(3)]);
+    assert!(
+        summary.failed.is_empty(),
+        "failed trajectories: {:?}",
+        &summary.failed[..summary.failed.len().min(3)]
+    );
     (exact, summary)
 }
 
 fn p(s: &Summary, c: Channel, state: usize) -> (f64, f64) {
-    s.channel(c, state).map_or((0.0, 0.0), |e| (e.probability, e.standard_error))
+    s.channel(c, state)
+        .map_or((0.0, 0.0), |e| (e.probability, e.standard_error))
 }
 
 /// |FSSH − exact| within 3 standard errors + 0.03 for each channel.
@@ -75,7 +80,10 @@ fn assert_agree(label: &str, exact: &ScatteringResult, s: &Summary) {
     ];
     for (name, (fssh, se), ex) in pairs {
         eprintln!("{label} {name}: FSSH {fssh:.4} ± {se:.4}, exact {ex:.4}");
-        assert!((fssh - ex).abs() <= 3.0 * se + 0.03, "{label} {name}: FSSH {fssh:.4} ± {se:.4} vs exact {ex:.4}");
+        assert!(
+            (fssh - ex).abs() <= 3.0 * se + 0.03,
+            "{label} {name}: FSSH {fssh:.4} ± {se:.4} vs exact {ex:.4}"
+        );
     }
 }
 
@@ -83,9 +91,17 @@ fn assert_agree(label: &str, exact: &ScatteringResult, s: &Summary) {
 /// algorithm is built to satisfy, J. Chem. Phys. 93, 1061 (1990)): the
 /// fraction of trajectories on each state equals the mean |c|².
 fn assert_consistent(label: &str, s: &Summary) {
-    for (state, ((frac, _), pop)) in s.state_fractions.iter().zip(&s.mean_populations).enumerate() {
+    for (state, ((frac, _), pop)) in s
+        .state_fractions
+        .iter()
+        .zip(&s.mean_populations)
+        .enumerate()
+    {
         eprintln!("{label} state {state}: fraction {frac:.4}, mean |c|² {pop:.4}");
-        assert!((frac - pop).abs() < 0.03, "{label} state {state}: fraction {frac:.4} vs mean |c|² {pop:.4}");
+        assert!(
+            (frac - pop).abs() < 0.03,
+            "{label} state {state}: fraction {frac:.4} vs mean |c|² {pop:.4}"
+        );
     }
 }
 
@@ -129,7 +145,10 @@ fn model_3_without_decoherence_gets_reflection_wrong() {
         let (exact, s) = both(TullyModel::ExtendedCoupling, k, "none");
         let (r0, se0) = p(&s, Channel::Reflected, 0);
         let (r1, se1) = p(&s, Channel::Reflected, 1);
-        let (e0, e1) = ((r0 - exact.reflection[0]).abs(), (r1 - exact.reflection[1]).abs());
+        let (e0, e1) = (
+            (r0 - exact.reflection[0]).abs(),
+            (r1 - exact.reflection[1]).abs(),
+        );
         eprintln!("model 3 coherent, k = {k}: R0 {r0:.4} ± {se0:.4} (exact {:.4}), R1 {r1:.4} ± {se1:.4} (exact {:.4})", exact.reflection[0], exact.reflection[1]);
         if k == 10.0 {
             assert!(e0 > 0.07 && e0 > 6.0 * se0, "k = 10: R0 error only {e0:.3}");
@@ -137,7 +156,10 @@ fn model_3_without_decoherence_gets_reflection_wrong() {
         }
         total += e0 + e1;
     }
-    assert!(total > 0.2, "summed reflection error of coherent FSSH only {total:.3}");
+    assert!(
+        total > 0.2,
+        "summed reflection error of coherent FSSH only {total:.3}"
+    );
 }
 
 /// Model 3 with the energy-based decoherence correction (J. Chem. Phys. 126,
@@ -149,8 +171,19 @@ fn model_3_with_energy_based_decoherence_gets_reflection_right() {
         let (exact, s) = both(TullyModel::ExtendedCoupling, k, "energy-based");
         let (r0, _) = p(&s, Channel::Reflected, 0);
         let (r1, _) = p(&s, Channel::Reflected, 1);
-        eprintln!("model 3 decoherent, k = {k}: R0 {r0:.4} (exact {:.4}), R1 {r1:.4} (exact {:.4})", exact.reflection[0], exact.reflection[1]);
-        assert!((r0 - exact.reflection[0]).abs() < 0.05, "k = {k}: R0 {r0:.4} vs {:.4}", exact.reflection[0]);
-        assert!((r1 - exact.reflection[1]).abs() < 0.05, "k = {k}: R1 {r1:.4} vs {:.4}", exact.reflection[1]);
+        eprintln!(
+            "model 3 decoherent, k = {k}: R0 {r0:.4} (exact {:.4}), R1 {r1:.4} (exact {:.4})",
+            exact.reflection[0], exact.reflection[1]
+        );
+        assert!(
+            (r0 - exact.reflection[0]).abs() < 0.05,
+            "k = {k}: R0 {r0:.4} vs {:.4}",
+            exact.reflection[0]
+        );
+        assert!(
+            (r1 - exact.reflection[1]).abs() < 0.05,
+            "k = {k}: R1 {r1:.4} vs {:.4}",
+            exact.reflection[1]
+        );
     }
 }

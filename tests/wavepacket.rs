@@ -2,7 +2,8 @@
 //! (`flipswarm::dynamics::wavepacket`). Each check names its source.
 
 use flipswarm::dynamics::wavepacket::{
-    landau_zener, scatter, Diabatic1D, ScatteringResult, Wavepacket, WavepacketError, WavepacketSetup,
+    landau_zener, scatter, Diabatic1D, ScatteringResult, Wavepacket, WavepacketError,
+    WavepacketSetup,
 };
 use flipswarm::electronic::models::{Tully, TullyModel};
 use std::f64::consts::PI;
@@ -12,17 +13,34 @@ use std::f64::consts::PI;
 /// classified; property of the method as documented in the module).
 fn run(model: &Tully, setup: &WavepacketSetup) -> ScatteringResult {
     let r = scatter(model, setup).expect("valid setup");
-    assert!((r.total() - 1.0).abs() < 1e-5, "channels sum to {}", r.total());
-    assert!(r.unresolved < 1e-4, "density left in the interaction region: {}", r.unresolved);
+    assert!(
+        (r.total() - 1.0).abs() < 1e-5,
+        "channels sum to {}",
+        r.total()
+    );
+    assert!(
+        r.unresolved < 1e-4,
+        "density left in the interaction region: {}",
+        r.unresolved
+    );
     r
 }
 
 fn channels(r: &ScatteringResult) -> [f64; 4] {
-    [r.transmission[0], r.transmission[1], r.reflection[0], r.reflection[1]]
+    [
+        r.transmission[0],
+        r.transmission[1],
+        r.reflection[0],
+        r.reflection[1],
+    ]
 }
 
 fn max_difference(a: &ScatteringResult, b: &ScatteringResult) -> f64 {
-    channels(a).iter().zip(channels(b)).map(|(x, y)| (x - y).abs()).fold(0.0, f64::max)
+    channels(a)
+        .iter()
+        .zip(channels(b))
+        .map(|(x, y)| (x - y).abs())
+        .fold(0.0, f64::max)
 }
 
 /// The split-operator propagator is a product of unitary factors, so without
@@ -30,7 +48,10 @@ fn max_difference(a: &ScatteringResult, b: &ScatteringResult) -> f64 {
 /// method of J. Comput. Phys. 47, 412 (1982), from memory).
 #[test]
 fn norm_is_conserved_without_absorption() {
-    for (model, k) in [(TullyModel::SimpleAvoidedCrossing, 20.0), (TullyModel::DualAvoidedCrossing, 30.0)] {
+    for (model, k) in [
+        (TullyModel::SimpleAvoidedCrossing, 20.0),
+        (TullyModel::DualAvoidedCrossing, 30.0),
+    ] {
         let tully = Tully::new(model);
         let mut setup = WavepacketSetup::for_tully(&tully, k).unwrap();
         setup.absorber_width = 0.0;
@@ -43,7 +64,10 @@ fn norm_is_conserved_without_absorption() {
             packet.step();
         }
         let end = packet.norm();
-        println!("{model:?} k = {k}: |norm − 1| after 3000 steps = {:.2e}", (end - 1.0).abs());
+        println!(
+            "{model:?} k = {k}: |norm − 1| after 3000 steps = {:.2e}",
+            (end - 1.0).abs()
+        );
         assert!((end - 1.0).abs() < 1e-8, "norm after 3000 steps: {end}");
         let pops = packet.adiabatic_populations();
         assert!((pops[0] + pops[1] - end).abs() < 1e-10);
@@ -87,17 +111,29 @@ fn free_packet_moves_and_spreads_as_the_textbook_gaussian() {
     let t = packet.time();
     let x = packet.positions();
     let (a, b) = packet.components();
-    let density: Vec<f64> = a.iter().zip(b).map(|(u, v)| u.norm_sqr() + v.norm_sqr()).collect();
+    let density: Vec<f64> = a
+        .iter()
+        .zip(b)
+        .map(|(u, v)| u.norm_sqr() + v.norm_sqr())
+        .collect();
     let total: f64 = density.iter().sum();
     let mean: f64 = x.iter().zip(&density).map(|(x, d)| x * d).sum::<f64>() / total;
-    let var: f64 = x.iter().zip(&density).map(|(x, d)| (x - mean).powi(2) * d).sum::<f64>() / total;
+    let var: f64 = x
+        .iter()
+        .zip(&density)
+        .map(|(x, d)| (x - mean).powi(2) * d)
+        .sum::<f64>()
+        / total;
     let mass = 2000.0;
     let mean_exact = setup.x0 + setup.k0 * t / mass;
     let var_exact = setup.sigma.powi(2) + (t / (2.0 * mass * setup.sigma)).powi(2);
     println!("free packet: <x> = {mean} (exact {mean_exact}), var = {var} (exact {var_exact})");
     assert!((mean - mean_exact).abs() < 1e-6);
     assert!((var - var_exact).abs() < 1e-6);
-    assert!(b.iter().all(|v| v.norm_sqr() < 1e-20), "uncoupled upper diabat got populated");
+    assert!(
+        b.iter().all(|v| v.norm_sqr() < 1e-20),
+        "uncoupled upper diabat got populated"
+    );
 }
 
 /// Convergence in time step and grid (common practice): halving Δt with twice
@@ -106,7 +142,10 @@ fn free_packet_moves_and_spreads_as_the_textbook_gaussian() {
 /// probabilities by less than 10⁻³.
 #[test]
 fn converged_in_time_step_grid_and_box() {
-    for (model, k) in [(TullyModel::SimpleAvoidedCrossing, 15.0), (TullyModel::DualAvoidedCrossing, 20.0)] {
+    for (model, k) in [
+        (TullyModel::SimpleAvoidedCrossing, 15.0),
+        (TullyModel::DualAvoidedCrossing, 20.0),
+    ] {
         let tully = Tully::new(model);
         let base = WavepacketSetup::for_tully(&tully, k).unwrap();
         let reference = run(&tully, &base);
@@ -125,7 +164,10 @@ fn converged_in_time_step_grid_and_box() {
         wide.x0 -= 8.0;
         let wide_result = run(&tully, &wide);
 
-        let (d_fine, d_wide) = (max_difference(&reference, &fine_result), max_difference(&reference, &wide_result));
+        let (d_fine, d_wide) = (
+            max_difference(&reference, &fine_result),
+            max_difference(&reference, &wide_result),
+        );
         println!(
             "{model:?} k = {k}: channels {:?}; max change for Δt/2 and 2N: {d_fine:.2e}; \
              for a box twice as long: {d_wide:.2e}",
@@ -155,10 +197,16 @@ fn model_1_upper_transmission_follows_landau_zener() {
         let lz = landau_zener(&tully, 0.0, k).unwrap();
         let closed_form = (-2.0 * PI * 0.005f64.powi(2) * 2000.0 / (k * 2.0 * 0.01 * 1.6)).exp();
         println!("k = {k}: exact upper transmission {exact:.6}, Landau–Zener {lz:.6}, difference {:+.2e}", exact - lz);
-        assert!((lz - closed_form).abs() < 1e-12, "W12(0) = C and d(W11 − W22)/dx = 2AB at x = 0");
+        assert!(
+            (lz - closed_form).abs() < 1e-12,
+            "W12(0) = C and d(W11 − W22)/dx = 2AB at x = 0"
+        );
         assert!(exact > previous, "upper transmission must rise with k");
         if k >= 25.0 {
-            assert!((exact - lz).abs() < 0.07, "k = {k}: exact {exact}, Landau–Zener {lz}");
+            assert!(
+                (exact - lz).abs() < 0.07,
+                "k = {k}: exact {exact}, Landau–Zener {lz}"
+            );
         }
         previous = exact;
     }
@@ -180,10 +228,16 @@ fn model_1_high_momentum_limit_is_first_order_perturbation_theory() {
         let exact = run(&tully, &WavepacketSetup::for_tully(&tully, k).unwrap()).transmission[1];
         let scaled = (1.0 - exact) * k * k;
         println!("k = {k}: (1 − P_upper) k² = {scaled:.2} (limit {limit:.2})");
-        assert!(scaled > previous && scaled < limit, "must rise towards the limit from below");
+        assert!(
+            scaled > previous && scaled < limit,
+            "must rise towards the limit from below"
+        );
         previous = scaled;
     }
-    assert!((limit - previous) / limit < 0.05, "at k = 80: {previous} vs {limit}");
+    assert!(
+        (limit - previous) / limit < 0.05,
+        "at k = 80: {previous} vs {limit}"
+    );
 }
 
 /// Energy conservation (common practice): on model 1 the upper state lies
@@ -197,9 +251,21 @@ fn model_1_below_the_upper_threshold() {
     let tully = Tully::new(TullyModel::SimpleAvoidedCrossing);
     let r = run(&tully, &WavepacketSetup::for_tully(&tully, 5.0).unwrap());
     println!("model 1, k = 5: {:?}", channels(&r));
-    assert!(r.transmission[1] < 1e-6, "upper transmission {}", r.transmission[1]);
-    assert!(r.reflection[1] < 1e-6, "upper reflection {}", r.reflection[1]);
-    assert!(r.reflection[0] > 0.01, "lower reflection {}", r.reflection[0]);
+    assert!(
+        r.transmission[1] < 1e-6,
+        "upper transmission {}",
+        r.transmission[1]
+    );
+    assert!(
+        r.reflection[1] < 1e-6,
+        "upper reflection {}",
+        r.reflection[1]
+    );
+    assert!(
+        r.reflection[0] > 0.01,
+        "lower reflection {}",
+        r.reflection[0]
+    );
 }
 
 fn error_parameter(e: WavepacketError) -> (&'static str, String) {
@@ -236,15 +302,22 @@ fn invalid_setups_are_rejected_with_the_parameter_named() {
         let err = Wavepacket::new(&tully, &bad).expect_err(name);
         let (parameter, message) = error_parameter(err);
         assert_eq!(parameter, name, "{message}");
-        assert!(message.contains(name), "message does not name {name}: {message}");
+        assert!(
+            message.contains(name),
+            "message does not name {name}: {message}"
+        );
     }
-    let (parameter, message) = error_parameter(WavepacketSetup::for_tully(&tully, -1.0).unwrap_err());
+    let (parameter, message) =
+        error_parameter(WavepacketSetup::for_tully(&tully, -1.0).unwrap_err());
     assert_eq!(parameter, "k0", "{message}");
     let (parameter, message) = error_parameter(landau_zener(&tully, 0.0, 0.0).unwrap_err());
     assert_eq!(parameter, "momentum", "{message}");
     let mut coarse = good.clone();
     coarse.points = 256;
-    assert!(scatter(&tully, &coarse).unwrap_err().to_string().contains("grid too coarse"));
+    assert!(scatter(&tully, &coarse)
+        .unwrap_err()
+        .to_string()
+        .contains("grid too coarse"));
 
     struct Broken;
     impl Diabatic1D for Broken {
@@ -256,6 +329,8 @@ fn invalid_setups_are_rejected_with_the_parameter_named() {
             [[v, 0.0], [0.0, 0.1]]
         }
     }
-    assert!(matches!(scatter(&Broken, &good), Err(WavepacketError::NonFinitePotential { .. })));
+    assert!(matches!(
+        scatter(&Broken, &good),
+        Err(WavepacketError::NonFinitePotential { .. })
+    ));
 }
-

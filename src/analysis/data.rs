@@ -37,7 +37,10 @@ impl Traj {
     /// Largest |E_tot(t) − E_tot(0)| over the rows (hartree).
     pub fn max_energy_drift(&self) -> f64 {
         let e0 = self.total.first().copied().unwrap_or(0.0);
-        self.total.iter().map(|e| (e - e0).abs()).fold(0.0, f64::max)
+        self.total
+            .iter()
+            .map(|e| (e - e0).abs())
+            .fold(0.0, f64::max)
     }
 
     /// Whether the trajectory failed.
@@ -105,27 +108,52 @@ pub fn load(paths: &[PathBuf], opts: &LoadOptions) -> Result<Ensemble, AnalysisE
         }
         let meta = reader.meta().clone();
         if meta.n_states == 0 {
-            return input(format!("{}: the file declares 0 electronic states", file.display()));
+            return input(format!(
+                "{}: the file declares 0 electronic states",
+                file.display()
+            ));
         }
         match &first {
             None => first = Some((file.clone(), meta.n_states, meta.n_dof, meta.timestep_au)),
             Some((f0, ns, nd, dt)) => {
                 let what = if *ns != meta.n_states {
-                    Some(format!("{} electronic states, but {} has {}", meta.n_states, f0.display(), ns))
+                    Some(format!(
+                        "{} electronic states, but {} has {}",
+                        meta.n_states,
+                        f0.display(),
+                        ns
+                    ))
                 } else if *nd != meta.n_dof {
-                    Some(format!("{} nuclear coordinates, but {} has {}", meta.n_dof, f0.display(), nd))
+                    Some(format!(
+                        "{} nuclear coordinates, but {} has {}",
+                        meta.n_dof,
+                        f0.display(),
+                        nd
+                    ))
                 } else if dt.to_bits() != meta.timestep_au.to_bits() {
-                    Some(format!("time step {} a.u., but {} has {} a.u.", meta.timestep_au, f0.display(), dt))
+                    Some(format!(
+                        "time step {} a.u., but {} has {} a.u.",
+                        meta.timestep_au,
+                        f0.display(),
+                        dt
+                    ))
                 } else {
                     None
                 };
                 if let Some(w) = what {
-                    return input(format!("{}: has {w}: these are not parts of one ensemble", file.display()));
+                    return input(format!(
+                        "{}: has {w}: these are not parts of one ensemble",
+                        file.display()
+                    ));
                 }
             }
         }
         let present = reader.trajectory_indices();
-        pending += meta.trajectories.iter().filter(|i| !present.contains(i)).count();
+        pending += meta
+            .trajectories
+            .iter()
+            .filter(|i| !present.contains(i))
+            .count();
         for i in present {
             if let Some(only) = &opts.only {
                 if !only.contains(&i) {
@@ -133,9 +161,15 @@ pub fn load(paths: &[PathBuf], opts: &LoadOptions) -> Result<Ensemble, AnalysisE
                 }
             }
             if let Some((_, other)) = trajs.get(&i) {
-                return input(format!("trajectory {i} is in both {} and {}", other.display(), file.display()));
+                return input(format!(
+                    "trajectory {i} is in both {} and {}",
+                    other.display(),
+                    file.display()
+                ));
             }
-            let d = reader.read(i).map_err(|e| AnalysisError::Input(e.to_string()))?;
+            let d = reader
+                .read(i)
+                .map_err(|e| AnalysisError::Input(e.to_string()))?;
             let keep_e = opts.energies_of == Some(i);
             let mut t = Traj {
                 index: i,
@@ -161,7 +195,11 @@ pub fn load(paths: &[PathBuf], opts: &LoadOptions) -> Result<Ensemble, AnalysisE
                     ));
                 }
                 if t.steps.last().is_some_and(|&p| p > r.step) {
-                    return input(format!("{}: trajectory {i}: row steps go backwards at step {}", file.display(), r.step));
+                    return input(format!(
+                        "{}: trajectory {i}: row steps go backwards at step {}",
+                        file.display(),
+                        r.step
+                    ));
                 }
                 t.steps.push(r.step);
                 t.times.push(r.time);
@@ -186,11 +224,32 @@ pub fn load(paths: &[PathBuf], opts: &LoadOptions) -> Result<Ensemble, AnalysisE
     let trajs: Vec<Traj> = trajs.into_values().map(|(t, _)| t).collect();
     if trajs.is_empty() {
         let names: Vec<String> = files.iter().map(|f| f.display().to_string()).collect();
-        return input(format!("{}: the ensemble is empty: no trajectory has any data{}", names.join(", "), if opts.only.is_some() { " among those chosen with --trajectories" } else { "" }));
+        return input(format!(
+            "{}: the ensemble is empty: no trajectory has any data{}",
+            names.join(", "),
+            if opts.only.is_some() {
+                " among those chosen with --trajectories"
+            } else {
+                ""
+            }
+        ));
     }
     let record_every = infer_record_every(&trajs);
-    tracing::info!("{} trajectories, {} states, rows every {} steps", trajs.len(), n_states, record_every);
-    Ok(Ensemble { files, n_states, n_dof, timestep_au, record_every, pending, trajs })
+    tracing::info!(
+        "{} trajectories, {} states, rows every {} steps",
+        trajs.len(),
+        n_states,
+        record_every
+    );
+    Ok(Ensemble {
+        files,
+        n_states,
+        n_dof,
+        timestep_au,
+        record_every,
+        pending,
+        trajs,
+    })
 }
 
 /// The row cadence: the greatest common divisor of the recorded steps (the
@@ -198,12 +257,20 @@ pub fn load(paths: &[PathBuf], opts: &LoadOptions) -> Result<Ensemble, AnalysisE
 /// left out when there are others).
 pub fn infer_record_every(trajs: &[Traj]) -> u64 {
     fn gcd(a: u64, b: u64) -> u64 {
-        if b == 0 { a } else { gcd(b, a % b) }
+        if b == 0 {
+            a
+        } else {
+            gcd(b, a % b)
+        }
     }
     let mut g = 0;
     for t in trajs {
         let n = t.steps.len();
-        let body = if n > 1 { &t.steps[..n - 1] } else { &t.steps[..] };
+        let body = if n > 1 {
+            &t.steps[..n - 1]
+        } else {
+            &t.steps[..]
+        };
         for &s in body {
             g = gcd(g, s);
         }
@@ -211,12 +278,20 @@ pub fn infer_record_every(trajs: &[Traj]) -> u64 {
             return 1;
         }
     }
-    if g == 0 { 1 } else { g }
+    if g == 0 {
+        1
+    } else {
+        g
+    }
 }
 
 /// Display helper for file lists.
 pub fn file_list(files: &[PathBuf]) -> String {
-    files.iter().map(|f: &PathBuf| Path::new(f).display().to_string()).collect::<Vec<_>>().join(", ")
+    files
+        .iter()
+        .map(|f: &PathBuf| Path::new(f).display().to_string())
+        .collect::<Vec<_>>()
+        .join(", ")
 }
 
 #[cfg(test)]
@@ -224,14 +299,28 @@ mod tests {
     use super::*;
 
     fn t(steps: Vec<u64>) -> Traj {
-        Traj { index: 0, status: Status::Running, steps, times: vec![], active: vec![], pops: vec![], total: vec![], q: vec![], energies: vec![], hops: vec![] }
+        Traj {
+            index: 0,
+            status: Status::Running,
+            steps,
+            times: vec![],
+            active: vec![],
+            pops: vec![],
+            total: vec![],
+            q: vec![],
+            energies: vec![],
+            hops: vec![],
+        }
     }
 
     /// The cadence is the gcd of the recorded steps, leaving out each last row
     /// (always written): rows 0, 6, 12, 15 → 6. From the writer's rule.
     #[test]
     fn record_every_ignores_last_rows() {
-        assert_eq!(infer_record_every(&[t(vec![0, 6, 12, 15]), t(vec![0, 6, 7])]), 6);
+        assert_eq!(
+            infer_record_every(&[t(vec![0, 6, 12, 15]), t(vec![0, 6, 7])]),
+            6
+        );
         assert_eq!(infer_record_every(&[t(vec![0, 4, 6, 8])]), 2);
         assert_eq!(infer_record_every(&[t(vec![0])]), 1);
     }

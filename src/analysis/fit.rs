@@ -48,7 +48,12 @@ pub fn solve(a: &mut [f64], b: &mut [f64], n: usize) -> Option<Vec<f64>> {
 }
 
 /// Minimise Σ r_i(p)² where `residuals(p, r)` fills `r` (length `m`), from `p0`.
-pub fn levenberg_marquardt<F: FnMut(&[f64], &mut [f64])>(mut residuals: F, m: usize, p0: &[f64], max_iter: usize) -> FitResult {
+pub fn levenberg_marquardt<F: FnMut(&[f64], &mut [f64])>(
+    mut residuals: F,
+    m: usize,
+    p0: &[f64],
+    max_iter: usize,
+) -> FitResult {
     let n = p0.len();
     let mut p = p0.to_vec();
     let mut r = vec![0.0; m];
@@ -58,7 +63,12 @@ pub fn levenberg_marquardt<F: FnMut(&[f64], &mut [f64])>(mut residuals: F, m: us
     residuals(&p, &mut r);
     let mut cost = cost_of(&r);
     if !cost.is_finite() {
-        return FitResult { params: p, cost, iterations: 0, converged: false };
+        return FitResult {
+            params: p,
+            cost,
+            iterations: 0,
+            converged: false,
+        };
     }
     let mut lambda = 1e-3;
     let mut converged = false;
@@ -111,7 +121,11 @@ pub fn levenberg_marquardt<F: FnMut(&[f64], &mut [f64])>(mut residuals: F, m: us
             let c = cost_of(&r_try);
             if c.is_finite() && c < cost {
                 let rel = (cost - c) / cost.max(1e-300);
-                let step = delta.iter().zip(&p).map(|(d, x)| d.abs() / (x.abs() + 1e-8)).fold(0.0, f64::max);
+                let step = delta
+                    .iter()
+                    .zip(&p)
+                    .map(|(d, x)| d.abs() / (x.abs() + 1e-8))
+                    .fold(0.0, f64::max);
                 p.copy_from_slice(&pt);
                 std::mem::swap(&mut r, &mut r_try);
                 cost = c;
@@ -133,5 +147,10 @@ pub fn levenberg_marquardt<F: FnMut(&[f64], &mut [f64])>(mut residuals: F, m: us
             break;
         }
     }
-    FitResult { params: p, cost, iterations: it, converged }
+    FitResult {
+        params: p,
+        cost,
+        iterations: it,
+        converged,
+    }
 }

@@ -25,7 +25,9 @@ fn atoms_of(s: &str, n: usize, opt: &str) -> Result<Vec<usize>, String> {
     let v: Result<Vec<usize>, _> = s.split(',').map(|x| x.trim().parse::<usize>()).collect();
     match v {
         Ok(v) if v.len() == n => Ok(v),
-        _ => Err(format!("{opt} `{s}`: expected {n} atom indices (0-based) separated by commas")),
+        _ => Err(format!(
+            "{opt} `{s}`: expected {n} atom indices (0-based) separated by commas"
+        )),
     }
 }
 
@@ -118,7 +120,11 @@ impl Param {
                 let n1 = cross(b1, b2);
                 let n2 = cross(b2, b3);
                 let d = (norm(b2) * dot(b1, n2)).atan2(dot(n1, n2)).to_degrees();
-                if d <= -180.0 { d + 360.0 } else { d }
+                if d <= -180.0 {
+                    d + 360.0
+                } else {
+                    d
+                }
             }
         }
     }
@@ -134,5 +140,9 @@ fn norm(a: [f64; 3]) -> f64 {
     dot(a, a).sqrt()
 }
 fn cross(a: [f64; 3], b: [f64; 3]) -> [f64; 3] {
-    [a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0]]
+    [
+        a[1] * b[2] - a[2] * b[1],
+        a[2] * b[0] - a[0] * b[2],
+        a[0] * b[1] - a[1] * b[0],
+    ]
 }

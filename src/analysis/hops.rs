@@ -75,7 +75,14 @@ pub struct HopStats {
 }
 
 /// Hop statistics of the non-failed trajectories of `ens` within [from_fs, to_fs].
-pub fn hop_stats(ens: &Ensemble, from_fs: f64, to_fs: f64, states: &[usize], params: &[Param], bins: usize) -> HopStats {
+pub fn hop_stats(
+    ens: &Ensemble,
+    from_fs: f64,
+    to_fs: f64,
+    states: &[usize],
+    params: &[Param],
+    bins: usize,
+) -> HopStats {
     let mut records = Vec::new();
     let nd = ens.n_dof;
     for t in ens.trajs.iter().filter(|t| !t.failed()) {
@@ -83,7 +90,10 @@ pub fn hop_stats(ens: &Ensemble, from_fs: f64, to_fs: f64, states: &[usize], par
             let time_fs = units::au_to_fs(h.time);
             // A small tolerance: times are converted from atomic units.
             let eps = 1e-9 * (1.0 + to_fs.abs());
-            if time_fs < from_fs - eps || time_fs > to_fs + eps || !(states.contains(&h.from) || states.contains(&h.to)) {
+            if time_fs < from_fs - eps
+                || time_fs > to_fs + eps
+                || !(states.contains(&h.from) || states.contains(&h.to))
+            {
                 continue;
             }
             let (mut geometry_step, mut geometry) = (None, Vec::new());
@@ -93,7 +103,11 @@ pub fn hop_stats(ens: &Ensemble, from_fs: f64, to_fs: f64, states: &[usize], par
                     Err(0) => 0,
                     Err(j) if j >= t.steps.len() => t.steps.len() - 1,
                     Err(j) => {
-                        if h.step - t.steps[j - 1] <= t.steps[j] - h.step { j - 1 } else { j }
+                        if h.step - t.steps[j - 1] <= t.steps[j] - h.step {
+                            j - 1
+                        } else {
+                            j
+                        }
                     }
                 };
                 geometry_step = Some(t.steps[j]);
@@ -119,18 +133,38 @@ pub fn hop_stats(ens: &Ensemble, from_fs: f64, to_fs: f64, states: &[usize], par
     let pairs = keys
         .into_iter()
         .map(|(from, to)| {
-            let acc: Vec<&HopRecord> = records.iter().filter(|r| r.from == from && r.to == to && r.accepted).collect();
-            let frustrated = records.iter().filter(|r| r.from == from && r.to == to && !r.accepted).count();
+            let acc: Vec<&HopRecord> = records
+                .iter()
+                .filter(|r| r.from == from && r.to == to && r.accepted)
+                .collect();
+            let frustrated = records
+                .iter()
+                .filter(|r| r.from == from && r.to == to && !r.accepted)
+                .count();
             let n = acc.len() as f64;
             let mean_gap = acc.iter().map(|r| r.gap_ev).sum::<f64>() / n;
-            let sd = if acc.len() > 1 { (acc.iter().map(|r| (r.gap_ev - mean_gap).powi(2)).sum::<f64>() / (n - 1.0)).sqrt() } else { f64::NAN };
-            let mean_geometry = (0..params.len()).map(|g| acc.iter().filter_map(|r| r.geometry.get(g)).sum::<f64>() / n).collect();
+            let sd = if acc.len() > 1 {
+                (acc.iter()
+                    .map(|r| (r.gap_ev - mean_gap).powi(2))
+                    .sum::<f64>()
+                    / (n - 1.0))
+                    .sqrt()
+            } else {
+                f64::NAN
+            };
+            let mean_geometry = (0..params.len())
+                .map(|g| acc.iter().filter_map(|r| r.geometry.get(g)).sum::<f64>() / n)
+                .collect();
             PairStats {
                 from,
                 to,
                 accepted: acc.len(),
                 frustrated,
-                mean_abs_gap_ev: if acc.is_empty() { f64::NAN } else { acc.iter().map(|r| r.gap_ev.abs()).sum::<f64>() / n },
+                mean_abs_gap_ev: if acc.is_empty() {
+                    f64::NAN
+                } else {
+                    acc.iter().map(|r| r.gap_ev.abs()).sum::<f64>() / n
+                },
                 sd_gap_ev: sd,
                 mean_geometry,
             }
@@ -144,7 +178,12 @@ pub fn hop_stats(ens: &Ensemble, from_fs: f64, to_fs: f64, states: &[usize], par
         let b = (((r.time_fs - from_fs) / width).floor() as usize).min(bins - 1);
         counts[b] += 1;
     }
-    HopStats { parameters: params.iter().map(Param::label).collect(), pairs, histogram: Histogram { edges_fs, counts }, records }
+    HopStats {
+        parameters: params.iter().map(Param::label).collect(),
+        pairs,
+        histogram: Histogram { edges_fs, counts },
+        records,
+    }
 }
 
 /// CSV of every hop attempt.
@@ -156,7 +195,17 @@ pub fn records_csv(stats: &HopStats) -> String {
     }
     s.push('\n');
     for r in &stats.records {
-        s.push_str(&format!("{},{:.6},{},{},{},{},{:.8},{}", r.trajectory, r.time_fs, r.step, r.from, r.to, r.accepted, r.gap_ev, r.geometry_step.map_or(String::new(), |x| x.to_string())));
+        s.push_str(&format!(
+            "{},{:.6},{},{},{},{},{:.8},{}",
+            r.trajectory,
+            r.time_fs,
+            r.step,
+            r.from,
+            r.to,
+            r.accepted,
+            r.gap_ev,
+            r.geometry_step.map_or(String::new(), |x| x.to_string())
+        ));
         for g in &r.geometry {
             s.push_str(&format!(",{g:.6}"));
         }

@@ -38,15 +38,27 @@ pub enum Model {
 impl Model {
     /// Parse `decay:S`, `rise:S` or `seq:A,B,C`.
     pub fn parse(s: &str, delay: bool) -> Result<Model, String> {
-        let (kind, rest) = s.split_once(':').ok_or_else(|| format!("--fit `{s}`: expected decay:STATE, rise:STATE or seq:A,B,C"))?;
-        let nums: Result<Vec<usize>, _> = rest.split(',').map(|x| x.trim().parse::<usize>()).collect();
-        let nums = nums.map_err(|_| format!("--fit `{s}`: `{rest}` is not a list of state numbers"))?;
+        let (kind, rest) = s
+            .split_once(':')
+            .ok_or_else(|| format!("--fit `{s}`: expected decay:STATE, rise:STATE or seq:A,B,C"))?;
+        let nums: Result<Vec<usize>, _> =
+            rest.split(',').map(|x| x.trim().parse::<usize>()).collect();
+        let nums =
+            nums.map_err(|_| format!("--fit `{s}`: `{rest}` is not a list of state numbers"))?;
         match (kind.trim(), nums.as_slice()) {
             ("decay", [st]) => Ok(Model::Decay { state: *st, delay }),
             ("rise", [st]) => Ok(Model::Rise { state: *st, delay }),
-            ("seq", [a, b, c]) if a != b && b != c && a != c => Ok(Model::Sequential { a: *a, b: *b, c: *c }),
-            ("seq", [_, _, _]) => Err(format!("--fit `{s}`: the three states of a sequential model must differ")),
-            _ => Err(format!("--fit `{s}`: expected decay:STATE, rise:STATE or seq:A,B,C")),
+            ("seq", [a, b, c]) if a != b && b != c && a != c => Ok(Model::Sequential {
+                a: *a,
+                b: *b,
+                c: *c,
+            }),
+            ("seq", [_, _, _]) => Err(format!(
+                "--fit `{s}`: the three states of a sequential model must differ"
+            )),
+            _ => Err(format!(
+                "--fit `{s}`: expected decay:STATE, rise:STATE or seq:A,B,C"
+            )),
         }
     }
 
@@ -61,7 +73,9 @@ impl Model {
     /// Names and units of the parameters.
     pub fn param_names(&self) -> Vec<&'static str> {
         match self {
-            Model::Decay { delay: true, .. } | Model::Rise { delay: true, .. } => vec!["tau_fs", "t0_fs"],
+            Model::Decay { delay: true, .. } | Model::Rise { delay: true, .. } => {
+                vec!["tau_fs", "t0_fs"]
+            }
             Model::Decay { .. } | Model::Rise { .. } => vec!["tau_fs"],
             Model::Sequential { .. } => vec!["tau1_fs", "tau2_fs"],
         }
@@ -70,8 +84,14 @@ impl Model {
     /// Short description.
     pub fn describe(&self) -> String {
         match self {
-            Model::Decay { state, delay } => format!("decay of state {state}{}", if *delay { " with delay" } else { "" }),
-            Model::Rise { state, delay } => format!("rise of state {state}{}", if *delay { " with delay" } else { "" }),
+            Model::Decay { state, delay } => format!(
+                "decay of state {state}{}",
+                if *delay { " with delay" } else { "" }
+            ),
+            Model::Rise { state, delay } => format!(
+                "rise of state {state}{}",
+                if *delay { " with delay" } else { "" }
+            ),
             Model::Sequential { a, b, c } => format!("sequential {a} -> {b} -> {c}"),
         }
     }
@@ -96,8 +116,16 @@ impl Model {
             Model::Decay { .. } | Model::Rise { .. } => {
                 let tau = phys[0];
                 let t0 = phys.get(1).copied().unwrap_or(0.0);
-                let d = if t <= t0 { 1.0 } else { (-(t - t0) / tau).exp() };
-                out[0] = if matches!(self, Model::Rise { .. }) { 1.0 - d } else { d };
+                let d = if t <= t0 {
+                    1.0
+                } else {
+                    (-(t - t0) / tau).exp()
+                };
+                out[0] = if matches!(self, Model::Rise { .. }) {
+                    1.0 - d
+                } else {
+                    d
+                };
             }
             Model::Sequential { .. } => {
                 let (k1, k2) = (1.0 / phys[0], 1.0 / phys[1]);
@@ -154,13 +182,22 @@ pub struct FitReport {
 }
 
 /// Fraction curves of `states` on the window from weighted counts.
-fn fractions(grid: &Grid, window: &std::ops::Range<usize>, states: &[usize], weights: Option<&[u32]>) -> Vec<f64> {
+fn fractions(
+    grid: &Grid,
+    window: &std::ops::Range<usize>,
+    states: &[usize],
+    weights: Option<&[u32]>,
+) -> Vec<f64> {
     let (counts, denom) = grid.counts(weights);
     let ns = grid.n_states;
     let mut y = Vec::with_capacity(states.len() * window.len());
     for &s in states {
         for k in window.clone() {
-            y.push(if denom[k] > 0.0 { counts[k * ns + s] / denom[k] } else { f64::NAN });
+            y.push(if denom[k] > 0.0 {
+                counts[k * ns + s] / denom[k]
+            } else {
+                f64::NAN
+            });
         }
     }
     y
@@ -196,11 +233,17 @@ fn start(model: &Model, t: &[f64], y: &[f64]) -> Vec<f64> {
         Model::Rise { .. } => y[..t.len()].iter().map(|v| 1.0 - v).collect(),
         _ => y[..t.len()].to_vec(),
     };
-    let cross = t.iter().zip(&decaying).find(|(_, v)| **v <= (-1.0f64).exp()).map(|(tk, _)| *tk);
+    let cross = t
+        .iter()
+        .zip(&decaying)
+        .find(|(_, v)| **v <= (-1.0f64).exp())
+        .map(|(tk, _)| *tk);
     let tau = cross.filter(|c| *c > 0.0).unwrap_or(2.0 * span);
     match model {
         Model::Sequential { .. } => vec![tau.ln(), (2.0 * tau).ln()],
-        Model::Decay { delay: true, .. } | Model::Rise { delay: true, .. } => vec![(0.7 * tau).ln(), 0.3 * tau],
+        Model::Decay { delay: true, .. } | Model::Rise { delay: true, .. } => {
+            vec![(0.7 * tau).ln(), 0.3 * tau]
+        }
         _ => vec![tau.ln()],
     }
 }
@@ -213,20 +256,39 @@ pub fn percentile(sorted: &[f64], q: f64) -> f64 {
     let x = q * (sorted.len() - 1) as f64;
     let i = x.floor() as usize;
     let f = x - i as f64;
-    if i + 1 < sorted.len() { sorted[i] * (1.0 - f) + sorted[i + 1] * f } else { sorted[i] }
+    if i + 1 < sorted.len() {
+        sorted[i] * (1.0 - f) + sorted[i + 1] * f
+    } else {
+        sorted[i]
+    }
 }
 
 /// Fit `model` on grid points `window`, with `resamples` bootstrap resamples seeded by `seed`.
-pub fn fit(grid: &Grid, window: std::ops::Range<usize>, model: &Model, resamples: usize, seed: u64) -> Result<FitReport, AnalysisError> {
+pub fn fit(
+    grid: &Grid,
+    window: std::ops::Range<usize>,
+    model: &Model,
+    resamples: usize,
+    seed: u64,
+) -> Result<FitReport, AnalysisError> {
     for s in model.states() {
         if s >= grid.n_states {
-            return input(format!("--fit {}: state {s} does not exist (the ensemble has {} states, 0 to {})", model.describe(), grid.n_states, grid.n_states - 1));
+            return input(format!(
+                "--fit {}: state {s} does not exist (the ensemble has {} states, 0 to {})",
+                model.describe(),
+                grid.n_states,
+                grid.n_states - 1
+            ));
         }
     }
     let t: Vec<f64> = window.clone().map(|k| grid.times_fs[k]).collect();
     let n_params = model.param_names().len();
     if t.len() <= n_params {
-        return input(format!("--fit {}: only {} time points in the window; need more than {n_params}", model.describe(), t.len()));
+        return input(format!(
+            "--fit {}: only {} time points in the window; need more than {n_params}",
+            model.describe(),
+            t.len()
+        ));
     }
     let states = model.states();
     let y = fractions(grid, &window, &states, None);
@@ -246,7 +308,12 @@ pub fn fit(grid: &Grid, window: std::ops::Range<usize>, model: &Model, resamples
     }
     // Bootstrap over trajectories.
     let n = grid.occ.len();
-    tracing::info!("{}: {} bootstrap resamples over {} trajectories", model.describe(), resamples, n);
+    tracing::info!(
+        "{}: {} bootstrap resamples over {} trajectories",
+        model.describe(),
+        resamples,
+        n
+    );
     let clock = std::time::Instant::now();
     let boots: Vec<Option<Vec<f64>>> = (0..resamples)
         .into_par_iter()
@@ -263,7 +330,11 @@ pub fn fit(grid: &Grid, window: std::ops::Range<usize>, model: &Model, resamples
         })
         .collect();
     let ok: Vec<&Vec<f64>> = boots.iter().flatten().collect();
-    tracing::info!("{}: bootstrap done in {:.2} s", model.describe(), clock.elapsed().as_secs_f64());
+    tracing::info!(
+        "{}: bootstrap done in {:.2} s",
+        model.describe(),
+        clock.elapsed().as_secs_f64()
+    );
     let failed = resamples - ok.len();
     let names = model.param_names();
     let parameters = names
@@ -272,7 +343,12 @@ pub fn fit(grid: &Grid, window: std::ops::Range<usize>, model: &Model, resamples
         .map(|(j, name)| {
             let mut v: Vec<f64> = ok.iter().map(|x| x[j]).collect();
             v.sort_by(f64::total_cmp);
-            Estimate { name: name.to_string(), value: phys[j], lower95: percentile(&v, 0.025), upper95: percentile(&v, 0.975) }
+            Estimate {
+                name: name.to_string(),
+                value: phys[j],
+                lower95: percentile(&v, 0.025),
+                upper95: percentile(&v, 0.975),
+            }
         })
         .collect();
     Ok(FitReport {
@@ -280,7 +356,11 @@ pub fn fit(grid: &Grid, window: std::ops::Range<usize>, model: &Model, resamples
         description: model.describe(),
         parameters,
         residual_rms: (cost / finite.len().max(1) as f64).sqrt(),
-        r_squared: if ss_tot > 0.0 { 1.0 - cost / ss_tot } else { f64::NAN },
+        r_squared: if ss_tot > 0.0 {
+            1.0 - cost / ss_tot
+        } else {
+            f64::NAN
+        },
         converged,
         resamples,
         resamples_failed: failed,
@@ -306,9 +386,20 @@ mod tests {
     /// Model specifications parse, and bad ones are refused naming --fit (from the option's documentation).
     #[test]
     fn model_specs_parse() {
-        assert_eq!(Model::parse("decay:2", false), Ok(Model::Decay { state: 2, delay: false }));
-        assert_eq!(Model::parse("seq:2,1,0", true), Ok(Model::Sequential { a: 2, b: 1, c: 0 }));
-        assert!(Model::parse("seq:1,1,0", false).unwrap_err().contains("--fit"));
+        assert_eq!(
+            Model::parse("decay:2", false),
+            Ok(Model::Decay {
+                state: 2,
+                delay: false
+            })
+        );
+        assert_eq!(
+            Model::parse("seq:2,1,0", true),
+            Ok(Model::Sequential { a: 2, b: 1, c: 0 })
+        );
+        assert!(Model::parse("seq:1,1,0", false)
+            .unwrap_err()
+            .contains("--fit"));
         assert!(Model::parse("decay", false).unwrap_err().contains("--fit"));
     }
 }

@@ -145,10 +145,21 @@ struct Entry {
 fn legend_entries(chart: &Chart) -> Vec<Entry> {
     let mut v = Vec::new();
     if !chart.bars.is_empty() && !chart.bars_label.is_empty() {
-        v.push(Entry { text: chart.bars_label.clone(), colour: 0, sample: Sample::Bar });
+        v.push(Entry {
+            text: chart.bars_label.clone(),
+            colour: 0,
+            sample: Sample::Bar,
+        });
     }
     for l in chart.lines.iter().filter(|l| !l.label.is_empty()) {
-        v.push(Entry { text: l.label.clone(), colour: l.colour, sample: Sample::Line { dashed: l.dashed, width: l.width } });
+        v.push(Entry {
+            text: l.label.clone(),
+            colour: l.colour,
+            sample: Sample::Line {
+                dashed: l.dashed,
+                width: l.width,
+            },
+        });
     }
     v
 }
@@ -180,8 +191,16 @@ where
     // The legend goes in a column right of the plot, so it never hides data.
     let entries = legend_entries(chart);
     let (w, _) = root.dim_in_pixel();
-    let longest = entries.iter().map(|l| l.text.chars().count()).max().unwrap_or(0) as f64;
-    let legend_w = if entries.is_empty() { 0 } else { ((longest * 6.8 + 46.0) as u32).min(w * 17 / 50) };
+    let longest = entries
+        .iter()
+        .map(|l| l.text.chars().count())
+        .max()
+        .unwrap_or(0) as f64;
+    let legend_w = if entries.is_empty() {
+        0
+    } else {
+        ((longest * 6.8 + 46.0) as u32).min(w * 17 / 50)
+    };
     let (plot_area, legend_area) = root.split_horizontally(w - legend_w);
     let mut c = ChartBuilder::on(&plot_area)
         .caption(&chart.title, (FAMILY, 20))
@@ -204,22 +223,47 @@ where
     }
     mesh.draw().map_err(e)?;
     for b in &chart.bands {
-        let mut pts: Vec<(f64, f64)> = b.x.iter().zip(&b.upper).filter(|(x, y)| x.is_finite() && y.is_finite()).map(|(x, y)| (*x, *y)).collect();
-        let lower: Vec<(f64, f64)> = b.x.iter().zip(&b.lower).filter(|(x, y)| x.is_finite() && y.is_finite()).map(|(x, y)| (*x, *y)).collect();
+        let mut pts: Vec<(f64, f64)> =
+            b.x.iter()
+                .zip(&b.upper)
+                .filter(|(x, y)| x.is_finite() && y.is_finite())
+                .map(|(x, y)| (*x, *y))
+                .collect();
+        let lower: Vec<(f64, f64)> =
+            b.x.iter()
+                .zip(&b.lower)
+                .filter(|(x, y)| x.is_finite() && y.is_finite())
+                .map(|(x, y)| (*x, *y))
+                .collect();
         pts.extend(lower.into_iter().rev());
-        c.draw_series(std::iter::once(Polygon::new(pts, colour(b.colour).mix(0.22).filled()))).map_err(e)?;
+        c.draw_series(std::iter::once(Polygon::new(
+            pts,
+            colour(b.colour).mix(0.22).filled(),
+        )))
+        .map_err(e)?;
     }
     if !chart.bars.is_empty() {
         let col = colour(0);
-        c.draw_series(chart.bars.iter().map(|&(x0, x1, h)| Rectangle::new([(x0, 0.0), (x1, h)], col.mix(0.75).filled())))
-            .map_err(e)?;
+        c.draw_series(
+            chart
+                .bars
+                .iter()
+                .map(|&(x0, x1, h)| Rectangle::new([(x0, 0.0), (x1, h)], col.mix(0.75).filled())),
+        )
+        .map_err(e)?;
     }
     for l in &chart.lines {
         let col = colour(l.colour);
         let style = col.stroke_width(l.width);
-        let pts: Vec<(f64, f64)> = l.points.iter().copied().filter(|(x, y)| x.is_finite() && y.is_finite()).collect();
+        let pts: Vec<(f64, f64)> = l
+            .points
+            .iter()
+            .copied()
+            .filter(|(x, y)| x.is_finite() && y.is_finite())
+            .collect();
         if l.dashed {
-            c.draw_series(DashedLineSeries::new(pts, 7, 5, style)).map_err(e)?;
+            c.draw_series(DashedLineSeries::new(pts, 7, 5, style))
+                .map_err(e)?;
         } else {
             c.draw_series(LineSeries::new(pts, style)).map_err(e)?;
         }
@@ -230,22 +274,37 @@ where
         let col = colour(l.colour);
         match l.sample {
             Sample::Bar => {
-                legend_area.draw(&Rectangle::new([(4, y - 6), (26, y + 6)], col.mix(0.75).filled())).map_err(e)?;
+                legend_area
+                    .draw(&Rectangle::new(
+                        [(4, y - 6), (26, y + 6)],
+                        col.mix(0.75).filled(),
+                    ))
+                    .map_err(e)?;
             }
             Sample::Line { dashed, width } => {
                 let st = col.stroke_width(width);
-                let segs: &[(i32, i32)] = if dashed { &[(4, 9), (12, 17), (20, 26)] } else { &[(4, 26)] };
+                let segs: &[(i32, i32)] = if dashed {
+                    &[(4, 9), (12, 17), (20, 26)]
+                } else {
+                    &[(4, 26)]
+                };
                 for &(a, b) in segs {
-                    legend_area.draw(&PathElement::new(vec![(a, y), (b, y)], st)).map_err(e)?;
+                    legend_area
+                        .draw(&PathElement::new(vec![(a, y), (b, y)], st))
+                        .map_err(e)?;
                 }
             }
         }
-        let style = TextStyle::from((FAMILY, 14).into_font()).color(&BLACK).pos(plotters::style::text_anchor::Pos::new(
-            plotters::style::text_anchor::HPos::Left,
-            plotters::style::text_anchor::VPos::Center,
-        ));
+        let style = TextStyle::from((FAMILY, 14).into_font()).color(&BLACK).pos(
+            plotters::style::text_anchor::Pos::new(
+                plotters::style::text_anchor::HPos::Left,
+                plotters::style::text_anchor::VPos::Center,
+            ),
+        );
         for line in wrap(&l.text, max_chars) {
-            legend_area.draw(&Text::new(line, (34, y), style.clone())).map_err(e)?;
+            legend_area
+                .draw(&Text::new(line, (34, y), style.clone()))
+                .map_err(e)?;
             y += 18;
         }
         y += 4;

@@ -73,8 +73,16 @@ impl Grid {
     /// Build the grid of the non-failed trajectories of `ens` under `policy`.
     pub fn new(ens: &Ensemble, policy: Ended) -> Self {
         let r = ens.record_every.max(1);
-        let used: Vec<&Traj> = ens.trajs.iter().filter(|t| !t.failed() && !t.steps.is_empty()).collect();
-        let last = used.iter().filter_map(|t| t.steps.last().copied()).max().unwrap_or(0);
+        let used: Vec<&Traj> = ens
+            .trajs
+            .iter()
+            .filter(|t| !t.failed() && !t.steps.is_empty())
+            .collect();
+        let last = used
+            .iter()
+            .filter_map(|t| t.steps.last().copied())
+            .max()
+            .unwrap_or(0);
         let mut steps: Vec<u64> = (0..=last / r).map(|k| k * r).collect();
         if last % r != 0 {
             steps.push(last);
@@ -122,7 +130,14 @@ impl Grid {
         }
         let dt_fs = crate::units::au_to_fs(ens.timestep_au);
         let times_fs = steps.iter().map(|&s| s as f64 * dt_fs).collect();
-        Self { steps, times_fs, n_states: ns, occ, used: used.iter().map(|t| t.index).collect(), pop_sum }
+        Self {
+            steps,
+            times_fs,
+            n_states: ns,
+            occ,
+            used: used.iter().map(|t| t.index).collect(),
+            pop_sum,
+        }
     }
 
     /// Counts on each state (`n_states` per grid point) and the number of
@@ -209,7 +224,11 @@ impl Populations {
                 let (l, h) = wilson(kk, n, Z95);
                 lo.push(l);
                 hi.push(h);
-                c.push(if n > 0.0 { grid.pop_sum[k * ns + s] / n } else { f64::NAN });
+                c.push(if n > 0.0 {
+                    grid.pop_sum[k * ns + s] / n
+                } else {
+                    f64::NAN
+                });
             }
             p.fraction.push(f);
             p.lower.push(lo);
@@ -223,13 +242,21 @@ impl Populations {
     pub fn to_csv(&self) -> String {
         let mut s = String::from("time_fs,trajectories");
         for st in &self.states {
-            s.push_str(&format!(",fraction_{st},fraction_{st}_lower95,fraction_{st}_upper95,mean_population_{st}"));
+            s.push_str(&format!(
+                ",fraction_{st},fraction_{st}_lower95,fraction_{st}_upper95,mean_population_{st}"
+            ));
         }
         s.push('\n');
         for t in 0..self.times_fs.len() {
             s.push_str(&format!("{:.6},{}", self.times_fs[t], self.used[t]));
             for j in 0..self.states.len() {
-                s.push_str(&format!(",{:.6},{:.6},{:.6},{:.6}", self.fraction[t][j], self.lower[t][j], self.upper[t][j], self.mean_population[t][j]));
+                s.push_str(&format!(
+                    ",{:.6},{:.6},{:.6},{:.6}",
+                    self.fraction[t][j],
+                    self.lower[t][j],
+                    self.upper[t][j],
+                    self.mean_population[t][j]
+                ));
             }
             s.push('\n');
         }

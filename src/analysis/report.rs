@@ -40,7 +40,17 @@ pub struct Options {
 
 impl Default for Options {
     fn default() -> Self {
-        Self { ended: Ended::Hold, from_fs: None, to_fs: None, states: None, fits: Vec::new(), resamples: 1000, seed: 1, params: Vec::new(), bins: 40 }
+        Self {
+            ended: Ended::Hold,
+            from_fs: None,
+            to_fs: None,
+            states: None,
+            fits: Vec::new(),
+            resamples: 1000,
+            seed: 1,
+            params: Vec::new(),
+            bins: 40,
+        }
     }
 }
 
@@ -132,7 +142,11 @@ pub fn analyse(ens: &Ensemble, opts: &Options) -> Result<Analysis, AnalysisError
         Some(s) => {
             for &x in s {
                 if x >= ens.n_states {
-                    return input(format!("--states: state {x} does not exist (the ensemble has {} states, 0 to {})", ens.n_states, ens.n_states - 1));
+                    return input(format!(
+                        "--states: state {x} does not exist (the ensemble has {} states, 0 to {})",
+                        ens.n_states,
+                        ens.n_states - 1
+                    ));
                 }
             }
             s.clone()
@@ -144,13 +158,21 @@ pub fn analyse(ens: &Ensemble, opts: &Options) -> Result<Analysis, AnalysisError
     }
     let grid = Grid::new(ens, opts.ended);
     if grid.occ.is_empty() {
-        return input(format!("{}: no trajectory can be analysed: all {} failed or have no rows", super::data::file_list(&ens.files), ens.trajs.len()));
+        return input(format!(
+            "{}: no trajectory can be analysed: all {} failed or have no rows",
+            super::data::file_list(&ens.files),
+            ens.trajs.len()
+        ));
     }
     let t_end = *grid.times_fs.last().unwrap();
     let from = opts.from_fs.unwrap_or(0.0);
     let to = opts.to_fs.unwrap_or(t_end);
-    if !(from.is_finite() && to.is_finite()) || (opts.from_fs.is_some() && opts.to_fs.is_some() && from > to) {
-        return input(format!("--from-fs {from} / --to-fs {to}: not a time window (need from ≤ to)"));
+    if !(from.is_finite() && to.is_finite())
+        || (opts.from_fs.is_some() && opts.to_fs.is_some() && from > to)
+    {
+        return input(format!(
+            "--from-fs {from} / --to-fs {to}: not a time window (need from ≤ to)"
+        ));
     }
     let lo = grid.times_fs.iter().position(|&t| t >= from - 1e-9);
     let hi = grid.times_fs.iter().rposition(|&t| t <= to + 1e-9);
@@ -173,15 +195,35 @@ pub fn analyse(ens: &Ensemble, opts: &Options) -> Result<Analysis, AnalysisError
         .collect();
     let mut fits = Vec::new();
     for m in &opts.fits {
-        fits.push(kinetics::fit(&grid, window.clone(), m, opts.resamples, opts.seed)?);
+        fits.push(kinetics::fit(
+            &grid,
+            window.clone(),
+            m,
+            opts.resamples,
+            opts.seed,
+        )?);
     }
     let window_fs = (grid.times_fs[window.start], grid.times_fs[window.end - 1]);
-    let hops = hops::hop_stats(ens, window_fs.0, window_fs.1, &states, &opts.params, opts.bins);
+    let hops = hops::hop_stats(
+        ens,
+        window_fs.0,
+        window_fs.1,
+        &states,
+        &opts.params,
+        opts.bins,
+    );
     let used: Vec<&Traj> = ens.trajs.iter().filter(|t| !t.failed()).collect();
-    let per_trajectory: Vec<(usize, f64)> = used.iter().map(|t| (t.index, units::hartree_to_ev(t.max_energy_drift()))).collect();
-    let worst = per_trajectory.iter().copied().max_by(|a, b| a.1.total_cmp(&b.1));
+    let per_trajectory: Vec<(usize, f64)> = used
+        .iter()
+        .map(|t| (t.index, units::hartree_to_ev(t.max_energy_drift())))
+        .collect();
+    let worst = per_trajectory
+        .iter()
+        .copied()
+        .max_by(|a, b| a.1.total_cmp(&b.1));
     let energy = EnergyStats {
-        mean_max_drift_ev: per_trajectory.iter().map(|x| x.1).sum::<f64>() / per_trajectory.len().max(1) as f64,
+        mean_max_drift_ev: per_trajectory.iter().map(|x| x.1).sum::<f64>()
+            / per_trajectory.len().max(1) as f64,
         max_drift_ev: worst.map_or(0.0, |w| w.1),
         worst_trajectory: worst.map(|w| w.0),
         per_trajectory,
@@ -190,7 +232,11 @@ pub fn analyse(ens: &Ensemble, opts: &Options) -> Result<Analysis, AnalysisError
         .trajs
         .iter()
         .filter_map(|t| match &t.status {
-            Status::Failed { step, reason } => Some(Failed { trajectory: t.index, step: *step, reason: reason.clone() }),
+            Status::Failed { step, reason } => Some(Failed {
+                trajectory: t.index,
+                step: *step,
+                reason: reason.clone(),
+            }),
             _ => None,
         })
         .collect();
@@ -200,7 +246,11 @@ pub fn analyse(ens: &Ensemble, opts: &Options) -> Result<Analysis, AnalysisError
         trajectories_read: ens.trajs.len(),
         trajectories_used: grid.occ.len(),
         trajectories_pending: ens.pending,
-        trajectories_unfinished: ens.trajs.iter().filter(|t| matches!(t.status, Status::Running)).count(),
+        trajectories_unfinished: ens
+            .trajs
+            .iter()
+            .filter(|t| matches!(t.status, Status::Running))
+            .count(),
         failed,
         ended_policy: opts.ended,
         record_every_steps: ens.record_every,
@@ -239,24 +289,81 @@ impl Analysis {
                 Ended::Drop => "dropped from the count",
             }
         );
-        let _ = writeln!(s, "window: {:.3} to {:.3} fs; rows every {} steps of {:.4} fs", self.window_fs.0, self.window_fs.1, self.record_every_steps, self.timestep_fs);
-        let _ = writeln!(s, "\nat {:.3} fs ({} trajectories):", self.final_time_fs, self.final_trajectories);
+        let _ = writeln!(
+            s,
+            "window: {:.3} to {:.3} fs; rows every {} steps of {:.4} fs",
+            self.window_fs.0, self.window_fs.1, self.record_every_steps, self.timestep_fs
+        );
+        let _ = writeln!(
+            s,
+            "\nat {:.3} fs ({} trajectories):",
+            self.final_time_fs, self.final_trajectories
+        );
         let _ = writeln!(s, "  state  fraction [95% Wilson]       mean |c|²");
         for f in &self.final_fractions {
-            let _ = writeln!(s, "  {:>5}  {:<26}  {:>9.4}", f.state, fmt_ci(f.fraction, f.lower95, f.upper95), f.mean_population);
+            let _ = writeln!(
+                s,
+                "  {:>5}  {:<26}  {:>9.4}",
+                f.state,
+                fmt_ci(f.fraction, f.lower95, f.upper95),
+                f.mean_population
+            );
         }
         if !self.fits.is_empty() {
-            let _ = writeln!(s, "\nkinetic fits (95% bootstrap intervals over trajectories):");
+            let _ = writeln!(
+                s,
+                "\nkinetic fits (95% bootstrap intervals over trajectories):"
+            );
             for f in &self.fits {
-                let ps: Vec<String> = f.parameters.iter().map(|p| format!("{} = {:.3} [{:.3}, {:.3}]", p.name, p.value, p.lower95, p.upper95)).collect();
-                let _ = writeln!(s, "  {}: {}; residual RMS {:.4}, R² {:.4}; {} resamples ({} failed){}", f.description, ps.join(", "), f.residual_rms, f.r_squared, f.resamples, f.resamples_failed, if f.converged { "" } else { "; point fit did not converge" });
+                let ps: Vec<String> = f
+                    .parameters
+                    .iter()
+                    .map(|p| {
+                        format!(
+                            "{} = {:.3} [{:.3}, {:.3}]",
+                            p.name, p.value, p.lower95, p.upper95
+                        )
+                    })
+                    .collect();
+                let _ = writeln!(
+                    s,
+                    "  {}: {}; residual RMS {:.4}, R² {:.4}; {} resamples ({} failed){}",
+                    f.description,
+                    ps.join(", "),
+                    f.residual_rms,
+                    f.r_squared,
+                    f.resamples,
+                    f.resamples_failed,
+                    if f.converged {
+                        ""
+                    } else {
+                        "; point fit did not converge"
+                    }
+                );
             }
         }
         let _ = writeln!(s, "\nhops in the window:");
-        let _ = writeln!(s, "  from  to  accepted  frustrated  mean |gap| (eV){}", self.hops.parameters.iter().map(|p| format!("  {p}")).collect::<String>());
+        let _ = writeln!(
+            s,
+            "  from  to  accepted  frustrated  mean |gap| (eV){}",
+            self.hops
+                .parameters
+                .iter()
+                .map(|p| format!("  {p}"))
+                .collect::<String>()
+        );
         for p in &self.hops.pairs {
-            let g: String = p.mean_geometry.iter().zip(&self.hops.parameters).map(|(v, l)| format!("  {v:>w$.3}", w = l.len())).collect();
-            let _ = writeln!(s, "  {:>4}  {:>2}  {:>8}  {:>10}  {:>15.4}{g}", p.from, p.to, p.accepted, p.frustrated, p.mean_abs_gap_ev);
+            let g: String = p
+                .mean_geometry
+                .iter()
+                .zip(&self.hops.parameters)
+                .map(|(v, l)| format!("  {v:>w$.3}", w = l.len()))
+                .collect();
+            let _ = writeln!(
+                s,
+                "  {:>4}  {:>2}  {:>8}  {:>10}  {:>15.4}{g}",
+                p.from, p.to, p.accepted, p.frustrated, p.mean_abs_gap_ev
+            );
         }
         if self.hops.pairs.is_empty() {
             let _ = writeln!(s, "  none");
@@ -269,7 +376,11 @@ impl Analysis {
             self.energy.worst_trajectory.map_or(String::new(), |w| format!(" (trajectory {w})"))
         );
         for f in self.failed.iter().take(20) {
-            let _ = writeln!(s, "failed: trajectory {} at step {}: {}", f.trajectory, f.step, f.reason);
+            let _ = writeln!(
+                s,
+                "failed: trajectory {} at step {}: {}",
+                f.trajectory, f.step, f.reason
+            );
         }
         if self.failed.len() > 20 {
             let _ = writeln!(s, "failed: … and {} more", self.failed.len() - 20);
@@ -306,7 +417,10 @@ impl Analysis {
         }
         s.push('\n');
         for p in &self.hops.pairs {
-            s.push_str(&format!("{},{},{},{},{:.6},{:.6}", p.from, p.to, p.accepted, p.frustrated, p.mean_abs_gap_ev, p.sd_gap_ev));
+            s.push_str(&format!(
+                "{},{},{},{},{:.6},{:.6}",
+                p.from, p.to, p.accepted, p.frustrated, p.mean_abs_gap_ev, p.sd_gap_ev
+            ));
             for g in &p.mean_geometry {
                 s.push_str(&format!(",{g:.6}"));
             }
@@ -320,7 +434,11 @@ impl Analysis {
         let h = &self.hops.histogram;
         let mut s = String::from("bin_start_fs,bin_end_fs,accepted_hops\n");
         for (b, c) in h.counts.iter().enumerate() {
-            s.push_str(&format!("{:.6},{:.6},{c}\n", h.edges_fs[b], h.edges_fs[b + 1]));
+            s.push_str(&format!(
+                "{:.6},{:.6},{c}\n",
+                h.edges_fs[b],
+                h.edges_fs[b + 1]
+            ));
         }
         s
     }
@@ -345,17 +463,69 @@ impl Analysis {
             ..Chart::default()
         };
         for (j, &st) in p.states.iter().enumerate() {
-            c.bands.push(Band { x: p.times_fs.clone(), lower: p.lower.iter().map(|r| r[j]).collect(), upper: p.upper.iter().map(|r| r[j]).collect(), colour: st });
-            c.lines.push(Line { label: format!("state {st}: fraction (95% band)"), points: p.times_fs.iter().zip(&p.fraction).map(|(t, r)| (*t, r[j])).collect(), colour: st, dashed: false, width: 2 });
-            c.lines.push(Line { label: format!("state {st}: mean |c|²"), points: p.times_fs.iter().zip(&p.mean_population).map(|(t, r)| (*t, r[j])).collect(), colour: st, dashed: true, width: 1 });
+            c.bands.push(Band {
+                x: p.times_fs.clone(),
+                lower: p.lower.iter().map(|r| r[j]).collect(),
+                upper: p.upper.iter().map(|r| r[j]).collect(),
+                colour: st,
+            });
+            c.lines.push(Line {
+                label: format!("state {st}: fraction (95% band)"),
+                points: p
+                    .times_fs
+                    .iter()
+                    .zip(&p.fraction)
+                    .map(|(t, r)| (*t, r[j]))
+                    .collect(),
+                colour: st,
+                dashed: false,
+                width: 2,
+            });
+            c.lines.push(Line {
+                label: format!("state {st}: mean |c|²"),
+                points: p
+                    .times_fs
+                    .iter()
+                    .zip(&p.mean_population)
+                    .map(|(t, r)| (*t, r[j]))
+                    .collect(),
+                colour: st,
+                dashed: true,
+                width: 1,
+            });
         }
         for (i, f) in self.fits.iter().enumerate() {
             // Black for the first fit, then colours unlikely to be states' (few models have 5+ states).
             let colour = [7, 5, 4, 6][i % 4];
-            let taus: Vec<String> = f.parameters.iter().map(|e| format!("{} = {:.1} fs", e.name.trim_end_matches("_fs").replace("tau", "τ"), e.value)).collect();
+            let taus: Vec<String> = f
+                .parameters
+                .iter()
+                .map(|e| {
+                    format!(
+                        "{} = {:.1} fs",
+                        e.name.trim_end_matches("_fs").replace("tau", "τ"),
+                        e.value
+                    )
+                })
+                .collect();
             for j in 0..f.model.states().len() {
-                let label = if j == 0 { format!("fit, {}: {}", f.description, taus.join(", ")) } else { String::new() };
-                c.lines.push(Line { label, points: p.times_fs.iter().copied().zip(f.curves[j].iter().copied()).collect(), colour, dashed: true, width: 2 });
+                let label = if j == 0 {
+                    format!("fit, {}: {}", f.description, taus.join(", "))
+                } else {
+                    String::new()
+                };
+                c.lines.push(Line {
+                    label,
+                    points: p
+                        .times_fs
+                        .iter()
+                        .copied()
+                        .zip(f.curves[j].iter().copied())
+                        .collect(),
+                    colour,
+                    dashed: true,
+                    width: 2,
+                });
             }
         }
         c
@@ -368,9 +538,20 @@ impl Analysis {
             title: "Accepted hops".into(),
             x_label: "time (fs)".into(),
             y_label: "hops per bin".into(),
-            bars: h.counts.iter().enumerate().map(|(b, &n)| (h.edges_fs[b], h.edges_fs[b + 1], n as f64)).collect(),
-            bars_label: format!("accepted hops ({:.2} fs bins)", h.edges_fs.get(1).map_or(0.0, |e| e - h.edges_fs[0])),
-            y_range: Some((0.0, h.counts.iter().copied().max().unwrap_or(0).max(1) as f64 * 1.15)),
+            bars: h
+                .counts
+                .iter()
+                .enumerate()
+                .map(|(b, &n)| (h.edges_fs[b], h.edges_fs[b + 1], n as f64))
+                .collect(),
+            bars_label: format!(
+                "accepted hops ({:.2} fs bins)",
+                h.edges_fs.get(1).map_or(0.0, |e| e - h.edges_fs[0])
+            ),
+            y_range: Some((
+                0.0,
+                h.counts.iter().copied().max().unwrap_or(0).max(1) as f64 * 1.15,
+            )),
             y_integer: true,
             ..Chart::default()
         }
@@ -382,31 +563,85 @@ pub fn energy_chart(t: &Traj, n_states: usize) -> Chart {
     let per = n_states + 2;
     let rows = t.steps.len();
     let time: Vec<f64> = t.times.iter().map(|x| units::au_to_fs(*x)).collect();
-    let mut c = Chart { title: format!("Trajectory {}", t.index), x_label: "time (fs)".into(), y_label: "energy (eV)".into(), ..Chart::default() };
+    let mut c = Chart {
+        title: format!("Trajectory {}", t.index),
+        x_label: "time (fs)".into(),
+        y_label: "energy (eV)".into(),
+        ..Chart::default()
+    };
     if t.energies.len() != rows * per {
         return c;
     }
     for s in 0..n_states {
         c.lines.push(Line {
             label: format!("state {s}"),
-            points: (0..rows).map(|r| (time[r], units::hartree_to_ev(t.energies[r * per + s]))).collect(),
+            points: (0..rows)
+                .map(|r| (time[r], units::hartree_to_ev(t.energies[r * per + s])))
+                .collect(),
             colour: s,
             dashed: false,
             width: 1,
         });
     }
-    c.lines.push(Line { label: "active state (potential)".into(), points: (0..rows).map(|r| (time[r], units::hartree_to_ev(t.energies[r * per + n_states + 1]))).collect(), colour: 7, dashed: true, width: 2 });
-    c.lines.push(Line { label: "total".into(), points: (0..rows).map(|r| (time[r], units::hartree_to_ev(t.total[r]))).collect(), colour: 7, dashed: false, width: 2 });
-    c.lines.push(Line { label: "kinetic".into(), points: (0..rows).map(|r| (time[r], units::hartree_to_ev(t.energies[r * per + n_states]))).collect(), colour: 5, dashed: true, width: 1 });
+    c.lines.push(Line {
+        label: "active state (potential)".into(),
+        points: (0..rows)
+            .map(|r| {
+                (
+                    time[r],
+                    units::hartree_to_ev(t.energies[r * per + n_states + 1]),
+                )
+            })
+            .collect(),
+        colour: 7,
+        dashed: true,
+        width: 2,
+    });
+    c.lines.push(Line {
+        label: "total".into(),
+        points: (0..rows)
+            .map(|r| (time[r], units::hartree_to_ev(t.total[r])))
+            .collect(),
+        colour: 7,
+        dashed: false,
+        width: 2,
+    });
+    c.lines.push(Line {
+        label: "kinetic".into(),
+        points: (0..rows)
+            .map(|r| {
+                (
+                    time[r],
+                    units::hartree_to_ev(t.energies[r * per + n_states]),
+                )
+            })
+            .collect(),
+        colour: 5,
+        dashed: true,
+        width: 1,
+    });
     c
 }
 
 /// The output files of an analysis in `dir` (the energy plot only with a trajectory).
 pub fn output_files(dir: &Path, trajectory: Option<usize>) -> Vec<PathBuf> {
-    let mut names: Vec<String> = ["summary.json", "summary.txt", "populations.csv", "fits.csv", "hops.csv", "hop_pairs.csv", "hop_times.csv", "energy_drift.csv", "populations.svg", "populations.png", "hop_times.svg", "hop_times.png"]
-        .iter()
-        .map(|s| s.to_string())
-        .collect();
+    let mut names: Vec<String> = [
+        "summary.json",
+        "summary.txt",
+        "populations.csv",
+        "fits.csv",
+        "hops.csv",
+        "hop_pairs.csv",
+        "hop_times.csv",
+        "energy_drift.csv",
+        "populations.svg",
+        "populations.png",
+        "hop_times.svg",
+        "hop_times.png",
+    ]
+    .iter()
+    .map(|s| s.to_string())
+    .collect();
     if let Some(i) = trajectory {
         names.push(format!("energy_trajectory_{i}.svg"));
         names.push(format!("energy_trajectory_{i}.png"));
@@ -415,9 +650,18 @@ pub fn output_files(dir: &Path, trajectory: Option<usize>) -> Vec<PathBuf> {
 }
 
 /// Write every output into `dir`, refusing existing files unless `force`.
-pub fn write_all(a: &Analysis, energy_of: Option<&Traj>, dir: &Path, size: (u32, u32), force: bool) -> Result<Vec<PathBuf>, AnalysisError> {
+pub fn write_all(
+    a: &Analysis,
+    energy_of: Option<&Traj>,
+    dir: &Path,
+    size: (u32, u32),
+    force: bool,
+) -> Result<Vec<PathBuf>, AnalysisError> {
     if dir.exists() && !dir.is_dir() {
-        return input(format!("--out {}: exists and is not a directory", dir.display()));
+        return input(format!(
+            "--out {}: exists and is not a directory",
+            dir.display()
+        ));
     }
     let files = output_files(dir, energy_of.map(|t| t.index));
     if !force {
@@ -425,12 +669,19 @@ pub fn write_all(a: &Analysis, energy_of: Option<&Traj>, dir: &Path, size: (u32,
             return input(format!("{}: exists; refusing to overwrite it (use --force, or choose another --out directory)", f.display()));
         }
     }
-    std::fs::create_dir_all(dir).map_err(|e| AnalysisError::Output(format!("{}: cannot create the directory: {e}", dir.display())))?;
+    std::fs::create_dir_all(dir).map_err(|e| {
+        AnalysisError::Output(format!(
+            "{}: cannot create the directory: {e}",
+            dir.display()
+        ))
+    })?;
     let w = |name: &str, text: String| -> Result<(), AnalysisError> {
         let p = dir.join(name);
-        std::fs::write(&p, text).map_err(|e| AnalysisError::Output(format!("{}: cannot write: {e}", p.display())))
+        std::fs::write(&p, text)
+            .map_err(|e| AnalysisError::Output(format!("{}: cannot write: {e}", p.display())))
     };
-    let json = serde_json::to_string_pretty(a).map_err(|e| AnalysisError::Output(format!("summary.json: {e}")))?;
+    let json = serde_json::to_string_pretty(a)
+        .map_err(|e| AnalysisError::Output(format!("summary.json: {e}")))?;
     w("summary.json", json + "\n")?;
     w("summary.txt", a.to_text())?;
     w("populations.csv", a.populations.to_csv())?;
@@ -442,7 +693,11 @@ pub fn write_all(a: &Analysis, energy_of: Option<&Traj>, dir: &Path, size: (u32,
     plot::write(&a.populations_chart(), &dir.join("populations"), size)?;
     plot::write(&a.histogram_chart(), &dir.join("hop_times"), size)?;
     if let Some(t) = energy_of {
-        plot::write(&energy_chart(t, a.n_states), &dir.join(format!("energy_trajectory_{}", t.index)), size)?;
+        plot::write(
+            &energy_chart(t, a.n_states),
+            &dir.join(format!("energy_trajectory_{}", t.index)),
+            size,
+        )?;
     }
     Ok(files)
 }

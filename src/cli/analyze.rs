@@ -17,7 +17,9 @@ use crate::analysis::AnalysisError;
 
 /// Arguments of `flipswarm analyze`.
 #[derive(Debug, Args)]
-#[command(after_help = "Examples:\n  flipswarm analyze runs/cone --fit decay:2 --fit seq:2,1,0 --out runs/cone/analysis\n  flipswarm analyze part-0000-of-0002.h5 part-0001-of-0002.h5 --ended drop --from-fs 0 --to-fs 200 --json\n\nFits are made to the fractions of trajectories on each state; intervals are percentile bootstrap intervals over trajectories.")]
+#[command(
+    after_help = "Examples:\n  flipswarm analyze runs/cone --fit decay:2 --fit seq:2,1,0 --out runs/cone/analysis\n  flipswarm analyze part-0000-of-0002.h5 part-0001-of-0002.h5 --ended drop --from-fs 0 --to-fs 200 --json\n\nFits are made to the fractions of trajectories on each state; intervals are percentile bootstrap intervals over trajectories."
+)]
 pub struct AnalyzeArgs {
     /// Ensemble files (part files, merged files) or run directories.
     #[arg(required = true)]
@@ -109,7 +111,9 @@ pub fn parse_list(s: &str, opt: &str) -> Result<Vec<usize>, String> {
 
 /// Parse "WxH".
 pub fn parse_size(s: &str) -> Result<(u32, u32), String> {
-    let bad = || format!("--size `{s}`: expected WIDTHxHEIGHT in pixels, e.g. 960x640 (each 100 to 10000)");
+    let bad = || {
+        format!("--size `{s}`: expected WIDTHxHEIGHT in pixels, e.g. 960x640 (each 100 to 10000)")
+    };
     let (w, h) = s.split_once(['x', 'X']).ok_or_else(bad)?;
     let w: u32 = w.trim().parse().map_err(|_| bad())?;
     let h: u32 = h.trim().parse().map_err(|_| bad())?;
@@ -124,22 +128,48 @@ type Parsed = (Options, Option<Vec<usize>>, (u32, u32));
 
 fn options(args: &AnalyzeArgs) -> Result<Parsed, String> {
     let mut params = Vec::new();
-    for (kind, list) in [("bond", &args.bonds), ("angle", &args.angles), ("dihedral", &args.dihedrals)] {
+    for (kind, list) in [
+        ("bond", &args.bonds),
+        ("angle", &args.angles),
+        ("dihedral", &args.dihedrals),
+    ] {
         for s in list {
             params.push(Param::parse(kind, s)?);
         }
     }
-    let fits = args.fits.iter().map(|f| Model::parse(f, args.delay)).collect::<Result<Vec<_>, _>>()?;
+    let fits = args
+        .fits
+        .iter()
+        .map(|f| Model::parse(f, args.delay))
+        .collect::<Result<Vec<_>, _>>()?;
     if !fits.is_empty() && args.resamples == 0 {
         return Err("--resamples 0: need at least one bootstrap resample for the intervals".into());
     }
     if args.bins == 0 {
         return Err("--bins 0: need at least one bin".into());
     }
-    let states = args.states.as_deref().map(|s| parse_list(s, "--states")).transpose()?;
-    let only = args.trajectories.as_deref().map(|s| parse_list(s, "--trajectories")).transpose()?;
+    let states = args
+        .states
+        .as_deref()
+        .map(|s| parse_list(s, "--states"))
+        .transpose()?;
+    let only = args
+        .trajectories
+        .as_deref()
+        .map(|s| parse_list(s, "--trajectories"))
+        .transpose()?;
     let size = parse_size(&args.size)?;
-    let opts = Options { ended: args.ended, from_fs: args.from_fs, to_fs: args.to_fs, states, fits, resamples: args.resamples, seed: args.seed, params, bins: args.bins };
+    let opts = Options {
+        ended: args.ended,
+        from_fs: args.from_fs,
+        to_fs: args.to_fs,
+        states,
+        fits,
+        resamples: args.resamples,
+        seed: args.seed,
+        params,
+        bins: args.bins,
+    };
     Ok((opts, only, size))
 }
 
@@ -178,7 +208,11 @@ pub fn execute(args: &AnalyzeArgs) -> i32 {
         None if args.out.is_some() => first_trajectory(&files, only.as_deref()),
         None => None,
     };
-    let load = LoadOptions { keep_q: !opts.params.is_empty(), energies_of, only };
+    let load = LoadOptions {
+        keep_q: !opts.params.is_empty(),
+        energies_of,
+        only,
+    };
     let ens = match data::load(&args.paths, &load) {
         Ok(e) => e,
         Err(e) => return fail(e),
@@ -199,7 +233,17 @@ pub fn execute(args: &AnalyzeArgs) -> i32 {
         Err(e) => return fail(e),
     };
     if let Some(dir) = &args.out {
-        match report::write_all(&analysis, if args.out.is_some() { energy_traj } else { None }, dir, size, args.force) {
+        match report::write_all(
+            &analysis,
+            if args.out.is_some() {
+                energy_traj
+            } else {
+                None
+            },
+            dir,
+            size,
+            args.force,
+        ) {
             Ok(written) => tracing::info!("wrote {} files into {}", written.len(), dir.display()),
             Err(e) => return fail(e),
         }
@@ -225,7 +269,9 @@ pub fn execute(args: &AnalyzeArgs) -> i32 {
 fn first_trajectory(files: &[PathBuf], only: Option<&[usize]>) -> Option<usize> {
     let mut best: Option<usize> = None;
     for f in files {
-        let Ok(r) = crate::ensemble::h5::PartReader::open(f) else { continue };
+        let Ok(r) = crate::ensemble::h5::PartReader::open(f) else {
+            continue;
+        };
         for i in r.trajectory_indices() {
             if only.is_none_or(|o| o.contains(&i)) {
                 best = Some(best.map_or(i, |b: usize| b.min(i)));

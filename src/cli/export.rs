@@ -57,7 +57,10 @@ pub fn execute(args: &ExportArgs) -> i32 {
 
 fn export(args: &ExportArgs) -> Result<usize, String> {
     if args.output.exists() {
-        return Err(format!("{} exists; choose another name or remove it first", args.output.display()));
+        return Err(format!(
+            "{} exists; choose another name or remove it first",
+            args.output.display()
+        ));
     }
     let mut found: Vec<TrajectoryData> = Vec::new();
     for file in super::inspect::part_files(&args.path)? {
@@ -76,7 +79,9 @@ fn export(args: &ExportArgs) -> Result<usize, String> {
     let mut elements: Vec<Element> = args
         .elements
         .iter()
-        .map(|s| Element::parse_symbol_or_number(s.trim()).map_err(|e| format!("--elements: `{s}`: {e}")))
+        .map(|s| {
+            Element::parse_symbol_or_number(s.trim()).map_err(|e| format!("--elements: `{s}`: {e}"))
+        })
         .collect::<Result<_, _>>()?;
     if elements.is_empty() {
         elements = molecule_elements(&args.path).unwrap_or_default();
@@ -103,7 +108,8 @@ fn export(args: &ExportArgs) -> Result<usize, String> {
         .create_new(true)
         .open(&args.output)
         .map_err(|e| format!("{}: {e}", args.output.display()))?;
-    f.write_all(&text).map_err(|e| format!("{}: {e}", args.output.display()))?;
+    f.write_all(&text)
+        .map_err(|e| format!("{}: {e}", args.output.display()))?;
     Ok(frames)
 }
 
@@ -111,7 +117,8 @@ fn write_csv(out: &mut Vec<u8>, data: &TrajectoryData, header: bool) -> usize {
     let n_states = data.rows.first().map_or(0, |r| r.energies.len());
     let n_dof = data.header.q0.len();
     if header {
-        let mut h = String::from("trajectory,time_fs,step,active_state,kinetic_ev,potential_ev,total_ev");
+        let mut h =
+            String::from("trajectory,time_fs,step,active_state,kinetic_ev,potential_ev,total_ev");
         (0..n_states).for_each(|k| h.push_str(&format!(",energy_{k}_ev")));
         (0..n_states).for_each(|k| h.push_str(&format!(",population_{k}")));
         (0..n_dof).for_each(|k| h.push_str(&format!(",q_{k}")));
@@ -119,9 +126,22 @@ fn write_csv(out: &mut Vec<u8>, data: &TrajectoryData, header: bool) -> usize {
     }
     for r in &data.rows {
         let ev = units::hartree_to_ev;
-        let mut line = format!("{},{},{},{},{},{},{}", data.header.index, units::au_to_fs(r.time), r.step, r.active, ev(r.kinetic), ev(r.potential), ev(r.total));
-        r.energies.iter().for_each(|e| line.push_str(&format!(",{}", ev(*e))));
-        r.amplitudes.iter().for_each(|c| line.push_str(&format!(",{}", c.norm_sqr())));
+        let mut line = format!(
+            "{},{},{},{},{},{},{}",
+            data.header.index,
+            units::au_to_fs(r.time),
+            r.step,
+            r.active,
+            ev(r.kinetic),
+            ev(r.potential),
+            ev(r.total)
+        );
+        r.energies
+            .iter()
+            .for_each(|e| line.push_str(&format!(",{}", ev(*e))));
+        r.amplitudes
+            .iter()
+            .for_each(|c| line.push_str(&format!(",{}", c.norm_sqr())));
         r.q.iter().for_each(|q| line.push_str(&format!(",{q}")));
         let _ = writeln!(out, "{line}");
     }
@@ -132,15 +152,22 @@ fn write_csv(out: &mut Vec<u8>, data: &TrajectoryData, header: bool) -> usize {
 fn molecule_elements(path: &std::path::Path) -> Option<Vec<Element>> {
     let toml = path.join("run.toml");
     match crate::config::load_file(&toml, &[]).ok()?.model {
-        crate::config::ModelSpec::Molecule { spec, .. } => Some(spec.calculation.molecule.elements()),
+        crate::config::ModelSpec::Molecule { spec, .. } => {
+            Some(spec.calculation.molecule.elements())
+        }
         _ => None,
     }
 }
 
-fn write_xyz(out: &mut Vec<u8>, data: &TrajectoryData, elements: &[Element]) -> Result<usize, String> {
+fn write_xyz(
+    out: &mut Vec<u8>,
+    data: &TrajectoryData,
+    elements: &[Element],
+) -> Result<usize, String> {
     for r in &data.rows {
         let positions: Vec<[f64; 3]> = r.q.chunks_exact(3).map(|c| [c[0], c[1], c[2]]).collect();
-        let mol = Molecule::from_elements_positions_bohr(elements, &positions).map_err(|e| e.to_string())?;
+        let mol = Molecule::from_elements_positions_bohr(elements, &positions)
+            .map_err(|e| e.to_string())?;
         let props = FrameProperties::new()
             .int("trajectory", data.header.index as i64)
             .int("step", r.step as i64)

@@ -30,11 +30,18 @@ pub fn part_files(path: &Path) -> Result<Vec<PathBuf>, String> {
         .map(|e| e.path())
         // Part files only: a run directory also holds a copy of its
         // initial-conditions file.
-        .filter(|p| p.extension().is_some_and(|x| x == "h5") && p.file_name().is_some_and(|n| n.to_string_lossy().starts_with("part-")))
+        .filter(|p| {
+            p.extension().is_some_and(|x| x == "h5")
+                && p.file_name()
+                    .is_some_and(|n| n.to_string_lossy().starts_with("part-"))
+        })
         .collect();
     parts.sort();
     if parts.is_empty() {
-        return Err(format!("{}: no part files (part-*.h5) here", path.display()));
+        return Err(format!(
+            "{}: no part files (part-*.h5) here",
+            path.display()
+        ));
     }
     Ok(parts)
 }
@@ -72,11 +79,21 @@ pub fn execute(args: &InspectArgs) -> i32 {
         let half_written = reader.writer_state() == WriterState::Open;
         let meta = reader.meta();
         if !args.json {
-            println!("{} (slice {}/{}, {} trajectories, {} states)", file.display(), meta.slice.0, meta.slice.1, meta.trajectories.len(), meta.n_states);
+            println!(
+                "{} (slice {}/{}, {} trajectories, {} states)",
+                file.display(),
+                meta.slice.0,
+                meta.slice.1,
+                meta.trajectories.len(),
+                meta.n_states
+            );
             if half_written {
                 println!("  warning: the writer never closed this file (still running, or killed): resume the run before merging it");
             }
-            println!("  {:>7}  {:<9} {:>8} {:>12} {:>6} {:>12}  reason", "traj", "status", "rows", "time (fs)", "state", "drift (eV)");
+            println!(
+                "  {:>7}  {:<9} {:>8} {:>12} {:>6} {:>12}  reason",
+                "traj", "status", "rows", "time (fs)", "state", "drift (eV)"
+            );
         }
         let present = reader.trajectory_indices();
         let mut rows = Vec::new();
@@ -115,7 +132,11 @@ pub fn execute(args: &InspectArgs) -> i32 {
             if !args.json {
                 let t = time_fs.map_or("-".into(), |t| format!("{t:.3}"));
                 let a = s.active_state.map_or("-".into(), |a| a.to_string());
-                println!("  {i:>7}  {:<9} {:>8} {t:>12} {a:>6} {drift_ev:>12.3e}  {reason}", s.phase.as_str(), s.steps);
+                println!(
+                    "  {i:>7}  {:<9} {:>8} {t:>12} {a:>6} {drift_ev:>12.3e}  {reason}",
+                    s.phase.as_str(),
+                    s.steps
+                );
             }
             rows.push(serde_json::json!({
                 "index": i, "status": s.phase.as_str(), "rows": s.steps, "hops": s.hops,
@@ -130,10 +151,21 @@ pub fn execute(args: &InspectArgs) -> i32 {
     }
     let names = ["pending", "running", "stopped", "finished", "failed"];
     if args.json {
-        let t: serde_json::Map<String, serde_json::Value> = names.iter().zip(totals).map(|(n, c)| (n.to_string(), c.into())).collect();
-        println!("{}", serde_json::json!({"parts": json_parts, "totals": t, "unreadable": unreadable}));
+        let t: serde_json::Map<String, serde_json::Value> = names
+            .iter()
+            .zip(totals)
+            .map(|(n, c)| (n.to_string(), c.into()))
+            .collect();
+        println!(
+            "{}",
+            serde_json::json!({"parts": json_parts, "totals": t, "unreadable": unreadable})
+        );
     } else {
-        let t: Vec<String> = names.iter().zip(totals).map(|(n, c)| format!("{c} {n}")).collect();
+        let t: Vec<String> = names
+            .iter()
+            .zip(totals)
+            .map(|(n, c)| format!("{c} {n}"))
+            .collect();
         println!("total: {}", t.join(", "));
     }
     if unreadable > 0 {

@@ -55,7 +55,14 @@ pub fn execute(args: &MergeArgs) -> i32 {
     // (Already probed above when completeness was checked.)
     match h5::merge_checked(&files, &args.output, !args.require_complete) {
         Ok(r) => {
-            println!("{}: {} trajectories, {} rows, {} hop attempts from {} part files", r.output.display(), r.trajectories, r.rows, r.hops, r.parts);
+            println!(
+                "{}: {} trajectories, {} rows, {} hop attempts from {} part files",
+                r.output.display(),
+                r.trajectories,
+                r.rows,
+                r.hops,
+                r.parts
+            );
             if !args.require_complete {
                 if let Ok(Some(m)) = not_ended(&files) {
                     eprintln!("warning: {m}; the merged file holds what has been computed so far");
@@ -105,7 +112,9 @@ fn not_ended(files: &[PathBuf]) -> Result<Option<String>, h5::EnsembleError> {
         expected.len()
     );
     if !absent.is_empty() {
-        what.push_str(&format!("; slice(s) {absent:?} of {slicing} have no part file"));
+        what.push_str(&format!(
+            "; slice(s) {absent:?} of {slicing} have no part file"
+        ));
     }
     Ok(Some(what))
 }

@@ -5,8 +5,8 @@ pub mod analyze;
 pub mod export;
 pub mod inspect;
 pub mod merge;
-pub mod optimize;
 pub mod modes;
+pub mod optimize;
 pub mod resume;
 pub mod run;
 pub mod sample;
@@ -120,13 +120,30 @@ pub fn stop_flag() -> std::sync::Arc<std::sync::atomic::AtomicBool> {
 }
 
 /// Run (or resume) into a directory and report; returns the exit code.
-pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (usize, usize), threads: usize, resume: bool, json: bool, populations: Option<&std::path::Path>) -> i32 {
+pub fn run_into(
+    cfg: &crate::config::RunConfig,
+    dir: &std::path::Path,
+    slice: (usize, usize),
+    threads: usize,
+    resume: bool,
+    json: bool,
+    populations: Option<&std::path::Path>,
+) -> i32 {
     use crate::ensemble::runner;
     let stop = stop_flag();
     let model = cfg.model.clone();
     let factory = move |_: usize| crate::swarm::make_backend(&model);
-    let opts = runner::Options { threads, stop: stop.clone(), factory: &factory, progress_bar: true };
-    let result = if resume { runner::resume(cfg, dir, slice, &opts) } else { runner::start(cfg, dir, slice, &opts) };
+    let opts = runner::Options {
+        threads,
+        stop: stop.clone(),
+        factory: &factory,
+        progress_bar: true,
+    };
+    let result = if resume {
+        runner::resume(cfg, dir, slice, &opts)
+    } else {
+        runner::start(cfg, dir, slice, &opts)
+    };
     let report = match result {
         Ok(r) => r,
         Err(e @ (runner::RunError::Directory { .. } | runner::RunError::Config(_))) => {
@@ -166,7 +183,10 @@ pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (u
         });
         println!("{v}");
     } else {
-        println!("{part}: {} finished, {} failed, {} stopped, {} not started", report.finished, report.failed, report.stopped, report.pending);
+        println!(
+            "{part}: {} finished, {} failed, {} stopped, {} not started",
+            report.finished, report.failed, report.stopped, report.pending
+        );
         if report.resumed_from_previous > 0 {
             println!("{} trajectories resumed from their previous checkpoint (the newest was missing or damaged)", report.resumed_from_previous);
         }
@@ -174,7 +194,11 @@ pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (u
         print!("{}", summary.to_text());
     }
     if report.stopped + report.pending > 0 {
-        eprintln!("stopped: {} trajectories can be continued with `flipswarm resume {}`", report.stopped + report.pending, dir.display());
+        eprintln!(
+            "stopped: {} trajectories can be continued with `flipswarm resume {}`",
+            report.stopped + report.pending,
+            dir.display()
+        );
         return exit::STOPPED;
     }
     if report.failed > 0 {
@@ -184,7 +208,9 @@ pub fn run_into(cfg: &crate::config::RunConfig, dir: &std::path::Path, slice: (u
 }
 
 /// Outcomes of the ended trajectories of a part file (for the summary).
-fn read_outcomes(part: &std::path::Path) -> Result<Vec<crate::swarm::Outcome>, crate::ensemble::h5::EnsembleError> {
+fn read_outcomes(
+    part: &std::path::Path,
+) -> Result<Vec<crate::swarm::Outcome>, crate::ensemble::h5::EnsembleError> {
     let reader = crate::ensemble::h5::PartReader::open(part)?;
     let mut out = Vec::new();
     for i in reader.trajectory_indices() {

@@ -10,7 +10,9 @@ use super::exit;
 use crate::config::ModelSpec;
 use crate::electronic::Request;
 use crate::sampling::files::{read_hessian, ModeEntry, ModesFile, MODES_FORMAT};
-use crate::sampling::modes::{finite_difference_hessian, normal_modes, normal_modes_of_coordinates, NormalModes};
+use crate::sampling::modes::{
+    finite_difference_hessian, normal_modes, normal_modes_of_coordinates, NormalModes,
+};
 use crate::units;
 
 /// Gradient norm (hartree/bohr) above which the reference geometry is not
@@ -43,7 +45,9 @@ fn reference_of(model: &ModelSpec) -> Result<Vec<f64>, String> {
         ModelSpec::Lvc { model, .. } => Ok(vec![0.0; model.n_modes()]),
         ModelSpec::Harmonic(h) => Ok(h.centres.clone()),
         ModelSpec::Morse(m) => Ok(vec![m.r_eq]),
-        ModelSpec::Tully(_) => Err("Tully's scattering models have no bound ground state to analyse".into()),
+        ModelSpec::Tully(_) => {
+            Err("Tully's scattering models have no bound ground state to analyse".into())
+        }
         ModelSpec::Molecule { spec, .. } => Ok(spec.reference_coordinates()),
     }
 }
@@ -51,11 +55,17 @@ fn reference_of(model: &ModelSpec) -> Result<Vec<f64>, String> {
 /// Execute; returns the exit code.
 pub fn execute(args: &ModesArgs) -> i32 {
     if args.output.exists() && !args.force {
-        eprintln!("error: {} exists already; choose another --output or pass --force", args.output.display());
+        eprintln!(
+            "error: {} exists already; choose another --output or pass --force",
+            args.output.display()
+        );
         return exit::INPUT;
     }
     if !(args.step_bohr > 0.0 && args.step_bohr.is_finite()) {
-        eprintln!("error: --step-bohr must be positive, got {}", args.step_bohr);
+        eprintln!(
+            "error: --step-bohr must be positive, got {}",
+            args.step_bohr
+        );
         return exit::INPUT;
     }
     let is_xyz = args.input.extension().is_some_and(|e| e == "xyz");
@@ -89,7 +99,18 @@ pub fn execute(args: &ModesArgs) -> i32 {
             }
         };
         let per_coordinate: Vec<f64> = masses.iter().flat_map(|&m| [m, m, m]).collect();
-        let file = modes_file(&modes, "cartesian", &args.input, per_coordinate, mol.positions_flat_bohr(), f64::NAN, mol.atoms.iter().map(|a| a.element.symbol().to_string()).collect());
+        let file = modes_file(
+            &modes,
+            "cartesian",
+            &args.input,
+            per_coordinate,
+            mol.positions_flat_bohr(),
+            f64::NAN,
+            mol.atoms
+                .iter()
+                .map(|a| a.element.symbol().to_string())
+                .collect(),
+        );
         (modes, file)
     } else {
         if args.hessian.is_some() {
@@ -118,7 +139,10 @@ pub fn execute(args: &ModesArgs) -> i32 {
             ModelSpec::Molecule { spec, .. } => {
                 let mut calc = spec.calculation.clone();
                 let z = calc.electrons.alpha + calc.electrons.beta;
-                calc.electrons = crate::electronic::qc::scf::Electrons { alpha: z / 2, beta: z / 2 };
+                calc.electrons = crate::electronic::qc::scf::Electrons {
+                    alpha: z / 2,
+                    beta: z / 2,
+                };
                 calc.reference = crate::electronic::qc::scf::Reference::Restricted;
                 Some(calc)
             }
@@ -128,11 +152,15 @@ pub fn execute(args: &ModesArgs) -> i32 {
             if let Some(calc) = &closed_shell {
                 let p: Vec<[f64; 3]> = q.chunks(3).map(|c| [c[0], c[1], c[2]]).collect();
                 let guess = crate::electronic::qc::scf::Guess::AtomicSuperposition;
-                let (_, g) = calc.analytic_gradient(&p, &guess).map_err(|e| e.to_string())?;
+                let (_, g) = calc
+                    .analytic_gradient(&p, &guess)
+                    .map_err(|e| e.to_string())?;
                 return Ok(g.into_iter().flatten().collect());
             }
             let mut b = crate::swarm::make_backend(&model);
-            let r = b.compute(q, &Request::gradient_of(0)).map_err(|e| e.to_string())?;
+            let r = b
+                .compute(q, &Request::gradient_of(0))
+                .map_err(|e| e.to_string())?;
             Ok(r.gradient(0).expect("requested").to_vec())
         };
         let g0 = match gradient(&q0) {
@@ -143,7 +171,11 @@ pub fn execute(args: &ModesArgs) -> i32 {
             }
         };
         let gnorm = g0.iter().map(|x| x * x).sum::<f64>().sqrt();
-        tracing::info!("finite-difference Hessian: {} gradient evaluations, step {} bohr", 2 * q0.len(), args.step_bohr);
+        tracing::info!(
+            "finite-difference Hessian: {} gradient evaluations, step {} bohr",
+            2 * q0.len(),
+            args.step_bohr
+        );
         let hess = match finite_difference_hessian(&q0, args.step_bohr, gradient) {
             Ok(h) => h,
             Err(e) => {
@@ -168,12 +200,26 @@ pub fn execute(args: &ModesArgs) -> i32 {
             }
         };
         let (coordinates, elements) = match &cfg.model {
-            ModelSpec::Molecule { spec, .. } => {
-                ("cartesian", spec.calculation.molecule.atoms.iter().map(|a| a.element.symbol().to_string()).collect())
-            }
+            ModelSpec::Molecule { spec, .. } => (
+                "cartesian",
+                spec.calculation
+                    .molecule
+                    .atoms
+                    .iter()
+                    .map(|a| a.element.symbol().to_string())
+                    .collect(),
+            ),
             _ => ("model", vec![]),
         };
-        let file = modes_file(&modes, coordinates, &args.input, masses, q0, gnorm, elements);
+        let file = modes_file(
+            &modes,
+            coordinates,
+            &args.input,
+            masses,
+            q0,
+            gnorm,
+            elements,
+        );
         (modes, file)
     };
     if file.gradient_norm_hartree_bohr > STATIONARY_GRADIENT {
@@ -184,14 +230,26 @@ pub fn execute(args: &ModesArgs) -> i32 {
     }
     let imaginary = modes.imaginary();
     if !imaginary.is_empty() {
-        let list: Vec<String> = imaginary.iter().map(|&k| format!("mode {} ({:.1}i cm^-1)", k + 1, -modes.wavenumbers()[k])).collect();
+        let list: Vec<String> = imaginary
+            .iter()
+            .map(|&k| format!("mode {} ({:.1}i cm^-1)", k + 1, -modes.wavenumbers()[k]))
+            .collect();
         eprintln!("warning: imaginary frequencies: {}; `sample` leaves these modes unexcited — the geometry is not a minimum", list.join(", "));
     }
     if let Err(e) = file.write(&args.output) {
         eprintln!("error: {e}");
         return exit::RUNTIME;
     }
-    println!("{}: {} modes{}", args.output.display(), modes.omegas.len(), if modes.linear { " (linear geometry: 5 external degrees of freedom removed)" } else { "" });
+    println!(
+        "{}: {} modes{}",
+        args.output.display(),
+        modes.omegas.len(),
+        if modes.linear {
+            " (linear geometry: 5 external degrees of freedom removed)"
+        } else {
+            ""
+        }
+    );
     println!("  {:>4}  {:>12}", "mode", "cm^-1");
     for (k, w) in modes.wavenumbers().iter().enumerate() {
         println!("  {:>4}  {:>12.2}", k + 1, w);
@@ -199,7 +257,15 @@ pub fn execute(args: &ModesArgs) -> i32 {
     exit::OK
 }
 
-fn modes_file(modes: &NormalModes, coordinates: &str, source: &Path, masses: Vec<f64>, reference: Vec<f64>, gnorm: f64, elements: Vec<String>) -> ModesFile {
+fn modes_file(
+    modes: &NormalModes,
+    coordinates: &str,
+    source: &Path,
+    masses: Vec<f64>,
+    reference: Vec<f64>,
+    gnorm: f64,
+    elements: Vec<String>,
+) -> ModesFile {
     let mode = (0..modes.omegas.len())
         .map(|k| ModeEntry {
             wavenumber_cm1: units::hartree_to_cm1(modes.omegas[k]),

@@ -23,7 +23,9 @@ use crate::electronic::qc::gradient::numerical::{ScfEnergy, Target, DEFAULT_STEP
 use crate::electronic::qc::gradient::scf::Potential;
 use crate::electronic::qc::integrals::JkOptions;
 use crate::electronic::qc::optimize::intersection::CrossingOptions;
-use crate::electronic::qc::optimize::{minimize_energy, minimize_mrsf_crossing, GradientKind, OptimizeError, OptimizeOptions};
+use crate::electronic::qc::optimize::{
+    minimize_energy, minimize_mrsf_crossing, GradientKind, OptimizeError, OptimizeOptions,
+};
 use crate::electronic::qc::response::davidson::DavidsonOptions;
 use crate::electronic::qc::scf::{Reference, ScfOptions};
 
@@ -91,7 +93,12 @@ pub struct OptimizeArgs {
     pub threads: usize,
 }
 
-fn write_geometry(path: &std::path::Path, mol: &Molecule, positions: &[[f64; 3]], comment: &str) -> Result<(), String> {
+fn write_geometry(
+    path: &std::path::Path,
+    mol: &Molecule,
+    positions: &[[f64; 3]],
+    comment: &str,
+) -> Result<(), String> {
     let mut m = mol.clone();
     for (a, p) in m.atoms.iter_mut().zip(positions) {
         a.position_bohr = *p;
@@ -103,28 +110,53 @@ fn write_geometry(path: &std::path::Path, mol: &Molecule, positions: &[[f64; 3]]
 /// Execute; returns the exit code.
 pub fn execute(args: &OptimizeArgs) -> i32 {
     if args.threads > 0 {
-        let _ = rayon::ThreadPoolBuilder::new().num_threads(args.threads).build_global();
+        let _ = rayon::ThreadPoolBuilder::new()
+            .num_threads(args.threads)
+            .build_global();
     }
-    let input = match molecular_input(&args.geometry, &args.basis, args.harmonics, args.charge, args.multiplicity, args.method) {
+    let input = match molecular_input(
+        &args.geometry,
+        &args.basis,
+        args.harmonics,
+        args.charge,
+        args.multiplicity,
+        args.method,
+    ) {
         Ok(i) => i,
         Err(e) => {
             eprintln!("error: {e}");
             return exit::INPUT;
         }
     };
-    let MolecularInput { mol, data, harmonics, basis, electrons, multiplicity } = input;
-    let (reference, is_ks, label) = (args.method.reference(), args.method.is_ks(), args.method.label());
+    let MolecularInput {
+        mol,
+        data,
+        harmonics,
+        basis,
+        electrons,
+        multiplicity,
+    } = input;
+    let (reference, is_ks, label) = (
+        args.method.reference(),
+        args.method.is_ks(),
+        args.method.label(),
+    );
     let crossing = match &args.crossing {
         None => None,
         Some(text) => match text.split_once(',') {
-            Some((a, b)) if !a.trim().is_empty() && !b.trim().is_empty() => Some((a.trim().to_string(), b.trim().to_string())),
+            Some((a, b)) if !a.trim().is_empty() && !b.trim().is_empty() => {
+                Some((a.trim().to_string(), b.trim().to_string()))
+            }
             _ => {
                 eprintln!("error: --crossing {text:?}: give two state labels separated by a comma, e.g. S0,S1");
                 return exit::INPUT;
             }
         },
     };
-    let state = args.state.clone().or_else(|| crossing.as_ref().map(|(a, _)| a.clone()));
+    let state = args
+        .state
+        .clone()
+        .or_else(|| crossing.as_ref().map(|(a, _)| a.clone()));
     let target = match &state {
         None => Target::Ground,
         Some(s) => {
@@ -153,7 +185,11 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
     } else {
         Potential::HartreeFock
     };
-    if !(args.step.is_finite() && args.step > 0.0 && args.criteria_scale.is_finite() && args.criteria_scale > 0.0) {
+    if !(args.step.is_finite()
+        && args.step > 0.0
+        && args.criteria_scale.is_finite()
+        && args.criteria_scale > 0.0)
+    {
         eprintln!("error: --step and --criteria-scale must be positive");
         return exit::INPUT;
     }
@@ -197,7 +233,11 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
         "{}: optimising {what} ({} basis, {} gradients)",
         args.geometry.display(),
         basis.name,
-        if gradient == GradientKind::Analytic { "analytic" } else { "numerical" }
+        if gradient == GradientKind::Analytic {
+            "analytic"
+        } else {
+            "numerical"
+        }
     );
     let t = std::time::Instant::now();
     if let Some((lower, upper)) = &crossing {
@@ -205,19 +245,49 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
             eprintln!("error: --gap-tolerance must be positive");
             return exit::INPUT;
         }
-        let copts = CrossingOptions { stage: opts, gap_tolerance: args.gap_tolerance, ..CrossingOptions::default() };
-        let kind = if args.numerical { GradientKind::Numerical(args.step) } else { GradientKind::Analytic };
-        return match minimize_mrsf_crossing(&calc, &start, lower, upper, args.singlets, args.triplets, kind, &copts) {
+        let copts = CrossingOptions {
+            stage: opts,
+            gap_tolerance: args.gap_tolerance,
+            ..CrossingOptions::default()
+        };
+        let kind = if args.numerical {
+            GradientKind::Numerical(args.step)
+        } else {
+            GradientKind::Analytic
+        };
+        return match minimize_mrsf_crossing(
+            &calc,
+            &start,
+            lower,
+            upper,
+            args.singlets,
+            args.triplets,
+            kind,
+            &copts,
+        ) {
             Ok(c) => {
-                let comment = format!("{what}: E({lower}) = {:.10} Eh, E({upper}) = {:.10} Eh, gap {:.2e} Eh", c.states.lower, c.states.upper, c.gap);
+                let comment = format!(
+                    "{what}: E({lower}) = {:.10} Eh, E({upper}) = {:.10} Eh, gap {:.2e} Eh",
+                    c.states.lower, c.states.upper, c.gap
+                );
                 if let Err(e) = write_geometry(&args.output, &mol, &c.positions, &comment) {
                     eprintln!("error: {e}");
                     return exit::RUNTIME;
                 }
-                println!("{what} found in {:.1} s: {c}; written to {}", t.elapsed().as_secs_f64(), args.output.display());
+                println!(
+                    "{what} found in {:.1} s: {c}; written to {}",
+                    t.elapsed().as_secs_f64(),
+                    args.output.display()
+                );
                 println!("branching-plane gradient difference (unit vector, per atom):");
                 for (a, v) in mol.atoms.iter().zip(&c.gradient_difference) {
-                    println!("  {:<2} {:>12.6} {:>12.6} {:>12.6}", a.element.symbol(), v[0], v[1], v[2]);
+                    println!(
+                        "  {:<2} {:>12.6} {:>12.6} {:>12.6}",
+                        a.element.symbol(),
+                        v[0],
+                        v[1],
+                        v[2]
+                    );
                 }
                 exit::OK
             }
@@ -246,13 +316,22 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
 }
 
 /// Report a failed optimisation, saving the last accepted geometry.
-fn fail(geometry: &std::path::Path, output: &std::path::Path, mol: &Molecule, what: &str, e: OptimizeError) -> i32 {
+fn fail(
+    geometry: &std::path::Path,
+    output: &std::path::Path,
+    mol: &Molecule,
+    what: &str,
+    e: OptimizeError,
+) -> i32 {
     eprintln!("error: {}: {e}", geometry.display());
     let first_failed = matches!(e, OptimizeError::Evaluation { step: 1, .. });
     if let (Some(last), false) = (e.last_positions(), first_failed) {
         let comment = format!("{what}: not converged (last accepted geometry)");
         match write_geometry(output, mol, last, &comment) {
-            Ok(()) => eprintln!("the last accepted geometry was written to {}", output.display()),
+            Ok(()) => eprintln!(
+                "the last accepted geometry was written to {}",
+                output.display()
+            ),
             Err(w) => eprintln!("error: {w}"),
         }
     }

@@ -31,7 +31,10 @@ pub fn execute(args: &ResumeArgs) -> i32 {
             return exit::INPUT;
         }
     };
-    let slice = args.slice.or_else(|| single_slice(&args.dir)).unwrap_or((0, 1));
+    let slice = args
+        .slice
+        .or_else(|| single_slice(&args.dir))
+        .unwrap_or((0, 1));
     super::run_into(&cfg, &args.dir, slice, args.threads, true, args.json, None)
 }
 
@@ -40,7 +43,10 @@ fn single_slice(dir: &std::path::Path) -> Option<(usize, usize)> {
     let mut found = Vec::new();
     for e in std::fs::read_dir(dir).ok()?.flatten() {
         let name = e.file_name().to_string_lossy().to_string();
-        if let Some(rest) = name.strip_prefix("part-").and_then(|r| r.strip_suffix(".h5")) {
+        if let Some(rest) = name
+            .strip_prefix("part-")
+            .and_then(|r| r.strip_suffix(".h5"))
+        {
             if let Some((k, n)) = rest.split_once("-of-") {
                 if let (Ok(k), Ok(n)) = (k.parse(), n.parse()) {
                     found.push((k, n));

@@ -10,7 +10,9 @@ use crate::swarm::{self, PopulationCurves, Summary};
 
 /// Arguments of `flipswarm run`.
 #[derive(Debug, Args)]
-#[command(after_help = "Example:\n  flipswarm run ensembles/tully-1.toml --set start.momentum_au=20 --set start.width_bohr=1.0 --threads 2\n\nSee `flipswarm keys` for every key, its unit and its default.")]
+#[command(
+    after_help = "Example:\n  flipswarm run ensembles/tully-1.toml --set start.momentum_au=20 --set start.width_bohr=1.0 --threads 2\n\nSee `flipswarm keys` for every key, its unit and its default."
+)]
 pub struct RunArgs {
     /// The ensemble definition (TOML).
     pub ensemble: PathBuf,
@@ -39,9 +41,17 @@ pub struct RunArgs {
 
 /// Parse "K/N" with 0 ≤ K < N.
 pub fn parse_slice(s: &str) -> Result<(usize, usize), String> {
-    let (k, n) = s.split_once('/').ok_or_else(|| format!("`{s}` is not of the form K/N, e.g. 0/4"))?;
-    let k: usize = k.trim().parse().map_err(|_| format!("`{k}` in `{s}` is not a whole number"))?;
-    let n: usize = n.trim().parse().map_err(|_| format!("`{n}` in `{s}` is not a whole number"))?;
+    let (k, n) = s
+        .split_once('/')
+        .ok_or_else(|| format!("`{s}` is not of the form K/N, e.g. 0/4"))?;
+    let k: usize = k
+        .trim()
+        .parse()
+        .map_err(|_| format!("`{k}` in `{s}` is not a whole number"))?;
+    let n: usize = n
+        .trim()
+        .parse()
+        .map_err(|_| format!("`{n}` in `{s}` is not a whole number"))?;
     if n == 0 || k >= n {
         return Err(format!("slice {k}/{n}: need 0 ≤ K < N"));
     }
@@ -59,7 +69,10 @@ pub fn execute(args: &RunArgs) -> i32 {
     };
     if let Some(p) = &args.populations {
         if p.exists() {
-            eprintln!("error: {} exists; choose another name or remove it first", p.display());
+            eprintln!(
+                "error: {} exists; choose another name or remove it first",
+                p.display()
+            );
             return exit::INPUT;
         }
     }
@@ -73,7 +86,15 @@ pub fn execute(args: &RunArgs) -> i32 {
         (cfg.settings.max_time / cfg.settings.dt).ceil()
     );
     if let Some(dir) = &args.out {
-        return super::run_into(&cfg, dir, args.slice.unwrap_or((0, 1)), args.threads, false, args.json, args.populations.as_deref());
+        return super::run_into(
+            &cfg,
+            dir,
+            args.slice.unwrap_or((0, 1)),
+            args.threads,
+            false,
+            args.json,
+            args.populations.as_deref(),
+        );
     }
     if args.slice.is_some() {
         eprintln!("error: --slice needs --out (a slice is only useful when its results are saved)");

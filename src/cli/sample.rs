@@ -58,9 +58,17 @@ pub struct SampleArgs {
 }
 
 fn parse_window(s: &str) -> Result<(f64, f64), String> {
-    let (a, b) = s.split_once(':').ok_or_else(|| format!("--window-ev {s:?}: expected LO:HI in eV, e.g. 3.9:4.6"))?;
-    let lo: f64 = a.trim().parse().map_err(|_| format!("--window-ev: {a:?} is not a number"))?;
-    let hi: f64 = b.trim().parse().map_err(|_| format!("--window-ev: {b:?} is not a number"))?;
+    let (a, b) = s
+        .split_once(':')
+        .ok_or_else(|| format!("--window-ev {s:?}: expected LO:HI in eV, e.g. 3.9:4.6"))?;
+    let lo: f64 = a
+        .trim()
+        .parse()
+        .map_err(|_| format!("--window-ev: {a:?} is not a number"))?;
+    let hi: f64 = b
+        .trim()
+        .parse()
+        .map_err(|_| format!("--window-ev: {b:?} is not a number"))?;
     if !(lo.is_finite() && hi.is_finite() && lo < hi) {
         return Err(format!("--window-ev {s}: needs LO < HI"));
     }
@@ -74,11 +82,17 @@ pub fn execute(args: &SampleArgs) -> i32 {
         return exit::INPUT;
     }
     if !(args.temperature_k >= 0.0 && args.temperature_k.is_finite()) {
-        eprintln!("error: --temperature-k must be zero or positive, got {}", args.temperature_k);
+        eprintln!(
+            "error: --temperature-k must be zero or positive, got {}",
+            args.temperature_k
+        );
         return exit::INPUT;
     }
     if args.output.exists() {
-        eprintln!("error: {} exists already; choose another --output", args.output.display());
+        eprintln!(
+            "error: {} exists already; choose another --output",
+            args.output.display()
+        );
         return exit::INPUT;
     }
     if args.excite.is_none() && (args.state.is_some() || args.window_ev.is_some()) {
@@ -105,7 +119,11 @@ pub fn execute(args: &SampleArgs) -> i32 {
     let mut frozen: Vec<usize> = Vec::new();
     for (k, m) in modes.mode.iter().enumerate() {
         if m.omega_hartree <= 0.0 {
-            eprintln!("warning: mode {} has an imaginary frequency ({:.1}i cm^-1) and stays at rest", k + 1, -m.wavenumber_cm1);
+            eprintln!(
+                "warning: mode {} has an imaginary frequency ({:.1}i cm^-1) and stays at rest",
+                k + 1,
+                -m.wavenumber_cm1
+            );
             frozen.push(k);
         } else if args.freeze_below_cm1.is_some_and(|w| m.wavenumber_cm1 < w) {
             frozen.push(k);
@@ -162,30 +180,61 @@ pub fn execute(args: &SampleArgs) -> i32 {
         eprintln!("error: {e}");
         return exit::RUNTIME;
     }
-    println!("{}: {} initial conditions at {} K ({} of {} modes excited)", args.output.display(), set.len(), args.temperature_k, omegas.len() - frozen.len(), omegas.len());
+    println!(
+        "{}: {} initial conditions at {} K ({} of {} modes excited)",
+        args.output.display(),
+        set.len(),
+        args.temperature_k,
+        omegas.len() - frozen.len(),
+        omegas.len()
+    );
     if let Some(x) = &set.excitation {
         let chosen = x.initial_state.iter().filter(|s| s.is_some()).count();
-        println!("  initial states: {} ({} of {} geometries selected)", x.selection, chosen, set.len());
+        println!(
+            "  initial states: {} ({} of {} geometries selected)",
+            x.selection,
+            chosen,
+            set.len()
+        );
         let ns = x.energies.first().map_or(0, |r| r.len());
         for n in 1..ns {
             let k = x.initial_state.iter().filter(|s| **s == Some(n)).count();
             let mean_e = x.energies.iter().map(|r| r[n]).sum::<f64>() / set.len() as f64;
-            let mean_f = x.oscillator_strengths.iter().map(|r| r[n]).sum::<f64>() / set.len() as f64;
-            println!("  state {n}: mean excitation {:.3} eV, mean f {:.4}, {k} trajectories start here", units::hartree_to_ev(mean_e), mean_f);
+            let mean_f =
+                x.oscillator_strengths.iter().map(|r| r[n]).sum::<f64>() / set.len() as f64;
+            println!(
+                "  state {n}: mean excitation {:.3} eV, mean f {:.4}, {k} trajectories start here",
+                units::hartree_to_ev(mean_e),
+                mean_f
+            );
         }
     }
     exit::OK
 }
 
-fn excite(set: &InitialConditions, ensemble: &std::path::Path, fixed: Option<usize>, window: Option<(f64, f64)>, seed: u64) -> Result<Excitation, String> {
+fn excite(
+    set: &InitialConditions,
+    ensemble: &std::path::Path,
+    fixed: Option<usize>,
+    window: Option<(f64, f64)>,
+    seed: u64,
+) -> Result<Excitation, String> {
     let cfg = crate::config::load_file(ensemble, &[]).map_err(|e| e.to_string())?;
     let n_states = cfg.model.n_states();
     if cfg.model.n_dof() != set.masses.len() {
-        return Err(format!("--excite {}: the model has {} coordinates but the modes have {}", ensemble.display(), cfg.model.n_dof(), set.masses.len()));
+        return Err(format!(
+            "--excite {}: the model has {} coordinates but the modes have {}",
+            ensemble.display(),
+            cfg.model.n_dof(),
+            set.masses.len()
+        ));
     }
     if let Some(s) = fixed {
         if s >= n_states {
-            return Err(format!("--state {s}: the model has {n_states} states, numbered 0–{}", n_states - 1));
+            return Err(format!(
+                "--state {s}: the model has {n_states} states, numbered 0–{}",
+                n_states - 1
+            ));
         }
     }
     let mut backend = crate::swarm::make_backend(&cfg.model);
@@ -193,25 +242,50 @@ fn excite(set: &InitialConditions, ensemble: &std::path::Path, fixed: Option<usi
     let mut osc = Vec::with_capacity(set.len());
     for q in &set.positions {
         let r = backend
-            .compute(q, &Request { transition_dipoles: true, ..Request::default() })
+            .compute(
+                q,
+                &Request {
+                    transition_dipoles: true,
+                    ..Request::default()
+                },
+            )
             .map_err(|e| format!("--excite {}: {e}", ensemble.display()))?;
         let e0 = r.energies[0];
-        let mu = r.transition_dipoles.as_ref().ok_or("the back end returned no transition dipoles")?;
+        let mu = r
+            .transition_dipoles
+            .as_ref()
+            .ok_or("the back end returned no transition dipoles")?;
         let de: Vec<f64> = r.energies.iter().map(|e| e - e0).collect();
         let f: Vec<f64> = (0..n_states)
-            .map(|n| if n == 0 { 0.0 } else { 2.0 / 3.0 * de[n] * (mu[n][0] * mu[n][0] + mu[n][1] * mu[n][1] + mu[n][2] * mu[n][2]) })
+            .map(|n| {
+                if n == 0 {
+                    0.0
+                } else {
+                    2.0 / 3.0
+                        * de[n]
+                        * (mu[n][0] * mu[n][0] + mu[n][1] * mu[n][1] + mu[n][2] * mu[n][2])
+                }
+            })
             .collect();
         energies.push(de);
         osc.push(f);
     }
     let (initial_state, selection) = match (fixed, window) {
         (Some(s), _) => (vec![Some(s); set.len()], format!("fixed: state {s}")),
-        (None, None) => (vec![None; set.len()], "none (energies and oscillator strengths only)".to_string()),
+        (None, None) => (
+            vec![None; set.len()],
+            "none (energies and oscillator strengths only)".to_string(),
+        ),
         (None, Some((lo, hi))) => {
             let (lo_h, hi_h) = (units::ev_to_hartree(lo), units::ev_to_hartree(hi));
             let in_window = |de: f64| de >= lo_h && de <= hi_h;
             let sums: Vec<f64> = (0..set.len())
-                .map(|i| (1..n_states).filter(|&n| in_window(energies[i][n])).map(|n| osc[i][n]).sum())
+                .map(|i| {
+                    (1..n_states)
+                        .filter(|&n| in_window(energies[i][n]))
+                        .map(|n| osc[i][n])
+                        .sum()
+                })
                 .collect();
             let fmax = sums.iter().copied().fold(0.0, f64::max);
             if fmax <= 0.0 {
@@ -235,8 +309,16 @@ fn excite(set: &InitialConditions, ensemble: &std::path::Path, fixed: Option<usi
                 }
                 states.push(chosen);
             }
-            (states, format!("window {lo}:{hi} eV, probability f/F_max with F_max = {fmax:.6}"))
+            (
+                states,
+                format!("window {lo}:{hi} eV, probability f/F_max with F_max = {fmax:.6}"),
+            )
         }
     };
-    Ok(Excitation { energies, oscillator_strengths: osc, initial_state, selection })
+    Ok(Excitation {
+        energies,
+        oscillator_strengths: osc,
+        initial_state,
+        selection,
+    })
 }

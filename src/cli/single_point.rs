@@ -172,7 +172,9 @@ pub(crate) fn molecular_input(
     multiplicity: Option<usize>,
     method: Method,
 ) -> Result<MolecularInput, String> {
-    let mol = read_single_xyz_file(geometry).map_err(|e| e.to_string())?.molecule;
+    let mol = read_single_xyz_file(geometry)
+        .map_err(|e| e.to_string())?
+        .molecule;
     let data = if std::path::Path::new(basis_name).is_file() {
         BasisSetData::from_file(std::path::Path::new(basis_name), Harmonics::Spherical)
     } else {
@@ -183,7 +185,8 @@ pub(crate) fn molecular_input(
         HarmonicsArg::Cartesian => Harmonics::Cartesian,
         HarmonicsArg::Spherical => Harmonics::Spherical,
     });
-    let basis = BasisSet::new(&mol, &data, harmonics).map_err(|e| format!("{}: {e}", geometry.display()))?;
+    let basis = BasisSet::new(&mol, &data, harmonics)
+        .map_err(|e| format!("{}: {e}", geometry.display()))?;
     let z = scf::nuclear_charge(&basis);
     let multiplicity = multiplicity.unwrap_or(match method {
         Method::Rohf | Method::Roks => 3,
@@ -199,23 +202,44 @@ pub(crate) fn molecular_input(
             if method.is_ks() { "roks" } else { "rohf" }
         ));
     }
-    Ok(MolecularInput { mol, data, harmonics, basis, electrons, multiplicity })
+    Ok(MolecularInput {
+        mol,
+        data,
+        harmonics,
+        basis,
+        electrons,
+        multiplicity,
+    })
 }
 
 /// Execute; returns the exit code.
 pub fn execute(args: &SinglePointArgs) -> i32 {
     if args.threads > 0 {
         // The global pool may already exist (tests); then keep it.
-        let _ = rayon::ThreadPoolBuilder::new().num_threads(args.threads).build_global();
+        let _ = rayon::ThreadPoolBuilder::new()
+            .num_threads(args.threads)
+            .build_global();
     }
-    let input = match molecular_input(&args.geometry, &args.basis, args.harmonics, args.charge, args.multiplicity, args.method) {
+    let input = match molecular_input(
+        &args.geometry,
+        &args.basis,
+        args.harmonics,
+        args.charge,
+        args.multiplicity,
+        args.method,
+    ) {
         Ok(i) => i,
         Err(e) => {
             eprintln!("error: {e}");
             return exit::INPUT;
         }
     };
-    let MolecularInput { basis, electrons, multiplicity, .. } = input;
+    let MolecularInput {
+        basis,
+        electrons,
+        multiplicity,
+        ..
+    } = input;
     let reference = args.method.reference();
     if args.excited.is_some() {
         if reference != Reference::RestrictedOpen || multiplicity != 3 {
@@ -296,14 +320,27 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
     };
     let excited = match (args.excited, engine_keep.as_mut()) {
         (Some(kind), Some(engine)) => {
-            use crate::electronic::qc::response::{self, davidson::DavidsonOptions, Method as RMethod, StateRequest};
+            use crate::electronic::qc::response::{
+                self, davidson::DavidsonOptions, Method as RMethod, StateRequest,
+            };
             let request = StateRequest {
-                method: if kind == Excited::Mrsf { RMethod::Mrsf } else { RMethod::SpinFlip },
+                method: if kind == Excited::Mrsf {
+                    RMethod::Mrsf
+                } else {
+                    RMethod::SpinFlip
+                },
                 singlets: args.singlets,
                 triplets: args.triplets,
             };
             let t = std::time::Instant::now();
-            match response::excited_states(&basis, &r, exact_exchange, engine, request, &DavidsonOptions::default()) {
+            match response::excited_states(
+                &basis,
+                &r,
+                exact_exchange,
+                engine,
+                request,
+                &DavidsonOptions::default(),
+            ) {
                 Ok(x) => Some((x, t.elapsed().as_secs_f64())),
                 Err(e) => {
                     eprintln!("error: --excited: {e}");
@@ -390,9 +427,15 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
     println!();
     let unrestricted = reference == Reference::Unrestricted;
     if unrestricted {
-        println!("  {:>4}  {:>14} {:>10} {:>4}   {:>14} {:>10} {:>4}", "k", "alpha (Eh)", "(eV)", "occ", "beta (Eh)", "(eV)", "occ");
+        println!(
+            "  {:>4}  {:>14} {:>10} {:>4}   {:>14} {:>10} {:>4}",
+            "k", "alpha (Eh)", "(eV)", "occ", "beta (Eh)", "(eV)", "occ"
+        );
     } else {
-        println!("  {:>4}  {:>14} {:>10} {:>4}", "k", "energy (Eh)", "(eV)", "occ");
+        println!(
+            "  {:>4}  {:>14} {:>10} {:>4}",
+            "k", "energy (Eh)", "(eV)", "occ"
+        );
     }
     let nmo = r.orbital_energies_alpha.len();
     let homo = electrons.alpha.max(1);
@@ -429,23 +472,52 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
         println!();
         println!(
             "{} states ({:.2} s); energies relative to S0, the lowest singlet{}",
-            if x.method == crate::electronic::qc::response::Method::Mrsf { "MRSF-TDDFT" } else { "SF-TDA (spin-unadapted)" },
+            if x.method == crate::electronic::qc::response::Method::Mrsf {
+                "MRSF-TDDFT"
+            } else {
+                "SF-TDA (spin-unadapted)"
+            },
             secs,
-            if x.ground.is_none() { " (none computed: relative to the lowest state)" } else { "" }
+            if x.ground.is_none() {
+                " (none computed: relative to the lowest state)"
+            } else {
+                ""
+            }
         );
-        println!("  {:<6} {:<9} {:>18} {:>9} {:>8} {:>8}  dominant configurations", "state", "spin", "energy (Eh)", "dE (eV)", "<S^2>", "f");
+        println!(
+            "  {:<6} {:<9} {:>18} {:>9} {:>8} {:>8}  dominant configurations",
+            "state", "spin", "energy (Eh)", "dE (eV)", "<S^2>", "f"
+        );
         for i in 0..x.states.len() {
             let s = &x.states[i];
             let label = x.label(i).unwrap_or_default();
-            let de = s.excitation.map_or("-".to_string(), |e| format!("{:.4}", e * units::HARTREE_IN_EV));
-            let f = x.oscillator_from_ground(i).ok().flatten().map_or("-".to_string(), |f| format!("{f:.4}"));
-            println!("  {:<6} {:<9} {:>18.10} {:>9} {:>8.4} {:>8}  {}", label, s.spin.to_string(), s.energy, de, s.s_squared, f, s.dominant_text());
+            let de = s.excitation.map_or("-".to_string(), |e| {
+                format!("{:.4}", e * units::HARTREE_IN_EV)
+            });
+            let f = x
+                .oscillator_from_ground(i)
+                .ok()
+                .flatten()
+                .map_or("-".to_string(), |f| format!("{f:.4}"));
+            println!(
+                "  {:<6} {:<9} {:>18.10} {:>9} {:>8.4} {:>8}  {}",
+                label,
+                s.spin.to_string(),
+                s.energy,
+                de,
+                s.s_squared,
+                f,
+                s.dominant_text()
+            );
         }
     }
     exit::OK
 }
 
-fn excited_json(x: &crate::electronic::qc::response::ExcitedStates, seconds: f64) -> serde_json::Value {
+fn excited_json(
+    x: &crate::electronic::qc::response::ExcitedStates,
+    seconds: f64,
+) -> serde_json::Value {
     let states: Vec<serde_json::Value> = (0..x.states.len())
         .map(|i| {
             let s = &x.states[i];

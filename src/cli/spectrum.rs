@@ -63,7 +63,10 @@ pub fn execute(args: &SpectrumArgs) -> i32 {
         }
     };
     let Some(x) = &set.excitation else {
-        eprintln!("error: {}: no excitation data; make it with `flipswarm sample --excite ENSEMBLE.toml`", args.input.display());
+        eprintln!(
+            "error: {}: no excitation data; make it with `flipswarm sample --excite ENSEMBLE.toml`",
+            args.input.display()
+        );
         return exit::INPUT;
     };
     let ns = x.energies.first().map_or(0, |r| r.len());
@@ -74,16 +77,36 @@ pub fn execute(args: &SpectrumArgs) -> i32 {
         }
     }
     if transitions.is_empty() {
-        eprintln!("error: {}: the model has one state only; there is nothing to absorb", args.input.display());
+        eprintln!(
+            "error: {}: the model has one state only; there is nothing to absorb",
+            args.input.display()
+        );
         return exit::INPUT;
     }
-    let lo = args.from_ev.unwrap_or_else(|| transitions.iter().map(|t| t.1).fold(f64::INFINITY, f64::min) - 1.0).max(1e-3);
-    let hi = args.to_ev.unwrap_or_else(|| transitions.iter().map(|t| t.1).fold(f64::NEG_INFINITY, f64::max) + 1.0);
+    let lo = args
+        .from_ev
+        .unwrap_or_else(|| {
+            transitions
+                .iter()
+                .map(|t| t.1)
+                .fold(f64::INFINITY, f64::min)
+                - 1.0
+        })
+        .max(1e-3);
+    let hi = args.to_ev.unwrap_or_else(|| {
+        transitions
+            .iter()
+            .map(|t| t.1)
+            .fold(f64::NEG_INFINITY, f64::max)
+            + 1.0
+    });
     if lo.partial_cmp(&hi) != Some(std::cmp::Ordering::Less) {
         eprintln!("error: --from-ev {lo} must be below --to-ev {hi}");
         return exit::INPUT;
     }
-    let grid: Vec<f64> = (0..args.points).map(|k| lo + (hi - lo) * k as f64 / (args.points - 1) as f64).collect();
+    let grid: Vec<f64> = (0..args.points)
+        .map(|k| lo + (hi - lo) * k as f64 / (args.points - 1) as f64)
+        .collect();
     let shape = match args.shape {
         Shape::Gaussian => LineShape::Gaussian,
         Shape::Lorentzian => LineShape::Lorentzian,
@@ -100,7 +123,11 @@ pub fn execute(args: &SpectrumArgs) -> i32 {
     }
     let mut lines = vec![Line {
         label: "total".into(),
-        points: grid.iter().copied().zip(sp.cross_section_a2.iter().copied()).collect(),
+        points: grid
+            .iter()
+            .copied()
+            .zip(sp.cross_section_a2.iter().copied())
+            .collect(),
         colour: 0,
         dashed: false,
         width: 2,
@@ -108,14 +135,24 @@ pub fn execute(args: &SpectrumArgs) -> i32 {
     for n in 1..ns {
         lines.push(Line {
             label: format!("S0 -> state {n}"),
-            points: grid.iter().copied().zip(sp.per_state_a2[n].iter().copied()).collect(),
+            points: grid
+                .iter()
+                .copied()
+                .zip(sp.per_state_a2[n].iter().copied())
+                .collect(),
             colour: n,
             dashed: true,
             width: 1,
         });
     }
     let chart = Chart {
-        title: format!("absorption, {} geometries, {:?} HWHM {} eV", set.len(), args.shape, args.width_ev).to_lowercase(),
+        title: format!(
+            "absorption, {} geometries, {:?} HWHM {} eV",
+            set.len(),
+            args.shape,
+            args.width_ev
+        )
+        .to_lowercase(),
         x_label: "photon energy (eV)".into(),
         y_label: "cross section (Å²)".into(),
         lines,
@@ -126,9 +163,32 @@ pub fn execute(args: &SpectrumArgs) -> i32 {
         return exit::RUNTIME;
     }
     let peak = sp.cross_section_a2.iter().copied().fold(0.0, f64::max);
-    let k = sp.cross_section_a2.iter().position(|&s| s == peak).unwrap_or(0);
-    println!("{}: {} geometries, {} transitions; maximum {:.4e} Å² ({:.4e} M^-1 cm^-1) at {:.3} eV", args.input.display(), set.len(), transitions.len(), peak, sp.molar_absorption()[k], grid[k]);
-    println!("  integral {:.6e} eV·Å² (sum rule: {:.6e} eV·Å² for the mean oscillator strength)", sp.integral(), crate::sampling::spectrum::cross_section_prefactor_ev_a2() * transitions.iter().map(|t| t.2).sum::<f64>() / set.len() as f64);
-    println!("  written: {}, {}, {}", csv.display(), args.out.join("spectrum.svg").display(), args.out.join("spectrum.png").display());
+    let k = sp
+        .cross_section_a2
+        .iter()
+        .position(|&s| s == peak)
+        .unwrap_or(0);
+    println!(
+        "{}: {} geometries, {} transitions; maximum {:.4e} Å² ({:.4e} M^-1 cm^-1) at {:.3} eV",
+        args.input.display(),
+        set.len(),
+        transitions.len(),
+        peak,
+        sp.molar_absorption()[k],
+        grid[k]
+    );
+    println!(
+        "  integral {:.6e} eV·Å² (sum rule: {:.6e} eV·Å² for the mean oscillator strength)",
+        sp.integral(),
+        crate::sampling::spectrum::cross_section_prefactor_ev_a2()
+            * transitions.iter().map(|t| t.2).sum::<f64>()
+            / set.len() as f64
+    );
+    println!(
+        "  written: {}, {}, {}",
+        csv.display(),
+        args.out.join("spectrum.svg").display(),
+        args.out.join("spectrum.png").display()
+    );
     exit::OK
 }

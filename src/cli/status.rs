@@ -22,7 +22,12 @@ pub struct StatusArgs {
 fn slices(dir: &std::path::Path) -> Option<usize> {
     for e in std::fs::read_dir(dir).ok()?.flatten() {
         let name = e.file_name().to_string_lossy().to_string();
-        if let Some(n) = name.strip_prefix("part-").and_then(|r| r.strip_suffix(".h5")).and_then(|r| r.split_once("-of-")).and_then(|(_, n)| n.parse().ok()) {
+        if let Some(n) = name
+            .strip_prefix("part-")
+            .and_then(|r| r.strip_suffix(".h5"))
+            .and_then(|r| r.split_once("-of-"))
+            .and_then(|(_, n)| n.parse().ok())
+        {
             return Some(n);
         }
     }
@@ -31,7 +36,10 @@ fn slices(dir: &std::path::Path) -> Option<usize> {
 
 /// State of each array task of job `id` from `squeue` (task → state).
 fn squeue(id: &str) -> Option<Vec<(String, String)>> {
-    let out = std::process::Command::new("squeue").args(["-h", "-r", "-j", id, "-o", "%i %T %r"]).output().ok()?;
+    let out = std::process::Command::new("squeue")
+        .args(["-h", "-r", "-j", id, "-o", "%i %T %r"])
+        .output()
+        .ok()?;
     if !out.status.success() {
         return None;
     }
@@ -40,7 +48,12 @@ fn squeue(id: &str) -> Option<Vec<(String, String)>> {
             .lines()
             .filter_map(|l| {
                 let mut it = l.split_whitespace();
-                Some((it.next()?.to_string(), format!("{} {}", it.next()?, it.next().unwrap_or("")).trim().to_string()))
+                Some((
+                    it.next()?.to_string(),
+                    format!("{} {}", it.next()?, it.next().unwrap_or(""))
+                        .trim()
+                        .to_string(),
+                ))
             })
             .collect(),
     )
@@ -49,13 +62,26 @@ fn squeue(id: &str) -> Option<Vec<(String, String)>> {
 /// Execute; returns the exit code.
 pub fn execute(args: &StatusArgs) -> i32 {
     if !args.dir.join("run.toml").exists() {
-        eprintln!("error: {}: not a run directory (no run.toml)", args.dir.display());
+        eprintln!(
+            "error: {}: not a run directory (no run.toml)",
+            args.dir.display()
+        );
         return exit::INPUT;
     }
     let jobs_text = std::fs::read_to_string(args.dir.join("slurm/jobs.jsonl")).unwrap_or_default();
-    let last_job: Option<serde_json::Value> = jobs_text.lines().rev().find_map(|l| serde_json::from_str(l).ok());
-    let n = last_job.as_ref().and_then(|j| j["tasks"].as_u64()).map(|t| t as usize).or_else(|| slices(&args.dir)).unwrap_or(1);
-    let array = last_job.as_ref().and_then(|j| j["array"].as_str().map(str::to_string));
+    let last_job: Option<serde_json::Value> = jobs_text
+        .lines()
+        .rev()
+        .find_map(|l| serde_json::from_str(l).ok());
+    let n = last_job
+        .as_ref()
+        .and_then(|j| j["tasks"].as_u64())
+        .map(|t| t as usize)
+        .or_else(|| slices(&args.dir))
+        .unwrap_or(1);
+    let array = last_job
+        .as_ref()
+        .and_then(|j| j["array"].as_str().map(str::to_string));
     let queue = array.as_deref().and_then(squeue).unwrap_or_default();
     let mut rows = Vec::new();
     let (mut ended_all, mut total_all) = (0, 0);
@@ -74,15 +100,18 @@ pub fn execute(args: &StatusArgs) -> i32 {
         ended_all += ended;
         total_all += total;
         let task = array.as_ref().map(|a| format!("{a}_{k}"));
-        let state = task.as_ref().and_then(|t| queue.iter().find(|(id, _)| id == t).map(|(_, s)| s.clone())).unwrap_or_else(|| {
-            if progress.is_none() {
-                "not started".into()
-            } else if ended == total {
-                "done".into()
-            } else {
-                "not queued (resume or resubmit)".into()
-            }
-        });
+        let state = task
+            .as_ref()
+            .and_then(|t| queue.iter().find(|(id, _)| id == t).map(|(_, s)| s.clone()))
+            .unwrap_or_else(|| {
+                if progress.is_none() {
+                    "not started".into()
+                } else if ended == total {
+                    "done".into()
+                } else {
+                    "not queued (resume or resubmit)".into()
+                }
+            });
         rows.push((k, ended, total, task, state));
     }
     if args.json {
@@ -90,13 +119,26 @@ pub fn execute(args: &StatusArgs) -> i32 {
             .iter()
             .map(|(k, e, t, task, s)| serde_json::json!({"slice": k, "ended": e, "trajectories": t, "job": task, "state": s}))
             .collect();
-        println!("{}", serde_json::json!({"dir": args.dir, "slices": v, "ended": ended_all, "trajectories": total_all, "array_job": array}));
+        println!(
+            "{}",
+            serde_json::json!({"dir": args.dir, "slices": v, "ended": ended_all, "trajectories": total_all, "array_job": array})
+        );
         return exit::OK;
     }
-    println!("{}: {ended_all} of {total_all} trajectories ended{}", args.dir.display(), array.as_ref().map_or(String::new(), |a| format!(" (array job {a})")));
+    println!(
+        "{}: {ended_all} of {total_all} trajectories ended{}",
+        args.dir.display(),
+        array
+            .as_ref()
+            .map_or(String::new(), |a| format!(" (array job {a})"))
+    );
     println!("  {:>5}  {:>12}  {:<14} state", "slice", "ended", "job");
     for (k, e, t, task, s) in rows {
-        println!("  {k:>5}  {:>12}  {:<14} {s}", format!("{e}/{t}"), task.unwrap_or_else(|| "-".into()));
+        println!(
+            "  {k:>5}  {:>12}  {:<14} {s}",
+            format!("{e}/{t}"),
+            task.unwrap_or_else(|| "-".into())
+        );
     }
     if args.dir.join("merged.h5").exists() {
         println!("merged: {}", args.dir.join("merged.h5").display());

@@ -209,7 +209,8 @@ exit "$code"
 }
 
 fn on_path(program: &str) -> bool {
-    std::env::var_os("PATH").is_some_and(|p| std::env::split_paths(&p).any(|d| d.join(program).is_file()))
+    std::env::var_os("PATH")
+        .is_some_and(|p| std::env::split_paths(&p).any(|d| d.join(program).is_file()))
 }
 
 fn sbatch(script: &Path, dependency: Option<&str>) -> Result<String, String> {
@@ -218,11 +219,23 @@ fn sbatch(script: &Path, dependency: Option<&str>) -> Result<String, String> {
     if let Some(d) = dependency {
         cmd.arg(format!("--dependency=afterany:{d}"));
     }
-    let out = cmd.arg(script).output().map_err(|e| format!("cannot run sbatch: {e}"))?;
+    let out = cmd
+        .arg(script)
+        .output()
+        .map_err(|e| format!("cannot run sbatch: {e}"))?;
     if !out.status.success() {
-        return Err(format!("sbatch {} failed: {}", script.display(), String::from_utf8_lossy(&out.stderr).trim()));
+        return Err(format!(
+            "sbatch {} failed: {}",
+            script.display(),
+            String::from_utf8_lossy(&out.stderr).trim()
+        ));
     }
-    let id = String::from_utf8_lossy(&out.stdout).trim().split(';').next().unwrap_or("").to_string();
+    let id = String::from_utf8_lossy(&out.stdout)
+        .trim()
+        .split(';')
+        .next()
+        .unwrap_or("")
+        .to_string();
     if id.is_empty() {
         return Err(format!("sbatch {} printed no job id", script.display()));
     }
@@ -256,14 +269,20 @@ pub fn execute(args: &SubmitArgs) -> i32 {
         Err(e) => return fail(e.to_string()),
     };
     if args.tasks > cfg.trajectories {
-        return fail(format!("--tasks {}: the ensemble has only {} trajectories", args.tasks, cfg.trajectories));
+        return fail(format!(
+            "--tasks {}: the ensemble has only {} trajectories",
+            args.tasks, cfg.trajectories
+        ));
     }
     // Parts of another slicing, or a complete run, are refused before anything is written.
     if args.out.exists() {
         if let Ok(entries) = std::fs::read_dir(&args.out) {
             for e in entries.flatten() {
                 let name = e.file_name().to_string_lossy().to_string();
-                if name.starts_with("part-") && name.ends_with(".h5") && !name.ends_with(&format!("-of-{:04}.h5", args.tasks)) {
+                if name.starts_with("part-")
+                    && name.ends_with(".h5")
+                    && !name.ends_with(&format!("-of-{:04}.h5", args.tasks))
+                {
                     return fail(format!(
                         "{}: holds part files of another number of slices ({name}); submit with the same --tasks or choose another directory",
                         args.out.display()
@@ -296,8 +315,20 @@ pub fn execute(args: &SubmitArgs) -> i32 {
         Err(e) => return fail(format!("{}: {e}", args.out.display())),
     };
     let program = std::env::current_exe().unwrap_or_else(|_| PathBuf::from("flipswarm"));
-    let stem = args.ensemble.file_stem().map_or("ensemble".into(), |s| s.to_string_lossy().to_string());
-    let name: String = format!("flipswarm-{stem}").chars().map(|c| if c.is_ascii_alphanumeric() || c == '-' || c == '_' { c } else { '_' }).collect();
+    let stem = args
+        .ensemble
+        .file_stem()
+        .map_or("ensemble".into(), |s| s.to_string_lossy().to_string());
+    let name: String = format!("flipswarm-{stem}")
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '-' || c == '_' {
+                c
+            } else {
+                '_'
+            }
+        })
+        .collect();
     let s = scripts(args, &dir, &program, &name);
     let slurm = dir.join("slurm");
     if let Err(e) = std::fs::create_dir_all(&slurm) {
@@ -310,9 +341,17 @@ pub fn execute(args: &SubmitArgs) -> i32 {
             return exit::RUNTIME;
         }
     }
-    println!("{}: run directory ready; scripts {} and {}", dir.display(), array_path.display(), merge_path.display());
+    println!(
+        "{}: run directory ready; scripts {} and {}",
+        dir.display(),
+        array_path.display(),
+        merge_path.display()
+    );
     if args.dry_run {
-        println!("dry run: nothing submitted (submit with `sbatch {}`)", array_path.display());
+        println!(
+            "dry run: nothing submitted (submit with `sbatch {}`)",
+            array_path.display()
+        );
         return exit::OK;
     }
     let array_id = match sbatch(&array_path, None) {
@@ -328,7 +367,9 @@ pub fn execute(args: &SubmitArgs) -> i32 {
         match sbatch(&merge_path, Some(&array_id)) {
             Ok(id) => Some(id),
             Err(e) => {
-                eprintln!("error: the array {array_id} is submitted, but the merge job is not: {e}");
+                eprintln!(
+                    "error: the array {array_id} is submitted, but the merge job is not: {e}"
+                );
                 return exit::RUNTIME;
             }
         }
@@ -337,9 +378,17 @@ pub fn execute(args: &SubmitArgs) -> i32 {
     let mut log = std::fs::read_to_string(slurm.join("jobs.jsonl")).unwrap_or_default();
     log.push_str(&format!("{record}\n"));
     if let Err(e) = std::fs::write(slurm.join("jobs.jsonl"), log) {
-        eprintln!("warning: cannot record the job ids in {}: {e}", slurm.display());
+        eprintln!(
+            "warning: cannot record the job ids in {}: {e}",
+            slurm.display()
+        );
     }
-    println!("submitted array job {array_id} ({} tasks, at most {} at once){}", args.tasks, args.throttle, merge_id.map_or(String::new(), |m| format!(" and merge job {m} after it")));
+    println!(
+        "submitted array job {array_id} ({} tasks, at most {} at once){}",
+        args.tasks,
+        args.throttle,
+        merge_id.map_or(String::new(), |m| format!(" and merge job {m} after it"))
+    );
     println!("follow it with `flipswarm status {}`", dir.display());
     exit::OK
 }

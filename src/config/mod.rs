@@ -117,7 +117,10 @@ pub enum ModelSpec {
     /// A Morse oscillator.
     Morse(Morse),
     /// MRSF-TDDFT singlets of a molecule and the geometry file it came from.
-    Molecule { path: PathBuf, spec: std::sync::Arc<MolecularSpec> },
+    Molecule {
+        path: PathBuf,
+        spec: std::sync::Arc<MolecularSpec>,
+    },
 }
 
 impl ModelSpec {
@@ -162,7 +165,11 @@ pub enum Sampling {
     /// Every trajectory starts at the same point.
     Fixed { position: f64, momentum: f64 },
     /// Wigner distribution of a Gaussian wavepacket in 1D: x ~ N(x0, σ²), p ~ N(p0, (1/2σ)²).
-    Wavepacket { position: f64, momentum: f64, width: f64 },
+    Wavepacket {
+        position: f64,
+        momentum: f64,
+        width: f64,
+    },
     /// Harmonic ground-state Wigner distribution in every LVC mode.
     HarmonicGround,
     /// LVC or a molecule at its reference geometry, at rest.
@@ -225,7 +232,12 @@ pub fn load_file(path: &Path, overrides: &[String]) -> Result<RunConfig, ConfigE
 }
 
 /// Validate ensemble text; relative model files are resolved against `base`.
-pub fn load_str(text: &str, origin: &str, base: &Path, overrides: &[String]) -> Result<RunConfig, ConfigError> {
+pub fn load_str(
+    text: &str,
+    origin: &str,
+    base: &Path,
+    overrides: &[String],
+) -> Result<RunConfig, ConfigError> {
     let r = Reader::parse(text, origin, overrides)?;
     check_keys(&r)?;
     let model = build_model(&r, base)?;
@@ -239,9 +251,17 @@ pub fn load_str(text: &str, origin: &str, base: &Path, overrides: &[String]) -> 
     }
     let sampling = build_sampling(&r, &model, base)?;
     let settings = build_settings(&r, &model, &sampling)?;
-    let trajectories = r.u64("swarm.trajectories")?.ok_or_else(|| r.error("swarm.trajectories", "missing (how many trajectories to run)"))?;
+    let trajectories = r.u64("swarm.trajectories")?.ok_or_else(|| {
+        r.error(
+            "swarm.trajectories",
+            "missing (how many trajectories to run)",
+        )
+    })?;
     if trajectories == 0 || trajectories > 10_000_000 {
-        return Err(r.error("swarm.trajectories", format!("must be between 1 and 10 000 000, found {trajectories}")));
+        return Err(r.error(
+            "swarm.trajectories",
+            format!("must be between 1 and 10 000 000, found {trajectories}"),
+        ));
     }
     if let Sampling::File { path, rows } = &sampling {
         if (trajectories as usize) > rows.len() {
@@ -251,14 +271,23 @@ pub fn load_str(text: &str, origin: &str, base: &Path, overrides: &[String]) -> 
             ));
         }
     }
-    let seed = r.u64("swarm.seed")?.ok_or_else(|| r.error("swarm.seed", "missing (the ensemble seed makes runs reproducible)"))?;
+    let seed = r.u64("swarm.seed")?.ok_or_else(|| {
+        r.error(
+            "swarm.seed",
+            "missing (the ensemble seed makes runs reproducible)",
+        )
+    })?;
     let record_every = r.u64("output.record_every_steps")?.unwrap_or(1);
     if record_every == 0 {
         return Err(r.error("output.record_every_steps", "must be at least 1"));
     }
     let checkpoint_every = r.u64("output.checkpoint_every_steps")?.unwrap_or(0);
     let checkpoint_interval_s = positive(&r, "output.checkpoint_interval_s")?.unwrap_or(60.0);
-    let output = OutputSettings { record_every, checkpoint_every, checkpoint_interval_s };
+    let output = OutputSettings {
+        record_every,
+        checkpoint_every,
+        checkpoint_interval_s,
+    };
     Ok(RunConfig {
         output,
         title: r.string("title")?.unwrap_or_default(),
@@ -275,13 +304,21 @@ pub fn load_str(text: &str, origin: &str, base: &Path, overrides: &[String]) -> 
 fn check_keys(r: &Reader) -> Result<(), ConfigError> {
     let known: Vec<&str> = SCHEMA.iter().map(|k| k.path).collect();
     for (path, is_table) in r.all_keys() {
-        let ok = if is_table { TABLES.contains(&path.as_str()) } else { known.contains(&path.as_str()) };
+        let ok = if is_table {
+            TABLES.contains(&path.as_str())
+        } else {
+            known.contains(&path.as_str())
+        };
         if ok {
             continue;
         }
         let leaf = path.rsplit('.').next().unwrap_or(&path);
         let leaf_of = |k: &'static str| k.rsplit('.').next().unwrap_or(k);
-        let same_kind: Vec<&str> = if is_table { TABLES.to_vec() } else { known.clone() };
+        let same_kind: Vec<&str> = if is_table {
+            TABLES.to_vec()
+        } else {
+            known.clone()
+        };
         // The right key in the wrong table first, then the nearest spelling.
         let hint = same_kind
             .iter()
@@ -299,7 +336,11 @@ fn check_keys(r: &Reader) -> Result<(), ConfigError> {
             })
             .map(|k| format!("; did you mean `{k}`?"))
             .unwrap_or_else(|| "; see `flipswarm keys` for the valid keys".into());
-        let what = if is_table { "unknown table" } else { "unknown key" };
+        let what = if is_table {
+            "unknown table"
+        } else {
+            "unknown key"
+        };
         return Err(r.error(&path, format!("{what}{hint}")));
     }
     Ok(())
@@ -318,7 +359,10 @@ fn require<T>(r: &Reader, key: &str, v: Option<T>, why: &str) -> Result<T, Confi
 
 /// Keys that only some model kinds use; any other kind rejects them.
 const MODEL_KEYS: &[(&str, &[&str])] = &[
-    ("model.mass_au", &["tully-1", "tully-2", "tully-3", "harmonic", "morse"]),
+    (
+        "model.mass_au",
+        &["tully-1", "tully-2", "tully-3", "harmonic", "morse"],
+    ),
     ("model.file", &["lvc"]),
     ("model.frequency_au", &["harmonic"]),
     ("model.depth_hartree", &["morse"]),
@@ -337,11 +381,21 @@ const MODEL_KEYS: &[(&str, &[&str])] = &[
 ];
 
 fn build_model(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
-    let kinds = ["tully-1", "tully-2", "tully-3", "lvc", "harmonic", "morse", "molecule"];
-    let kind = r.choice("model.kind", &kinds)?.ok_or_else(|| r.error("model.kind", "missing (which model to run)"))?;
+    let kinds = [
+        "tully-1", "tully-2", "tully-3", "lvc", "harmonic", "morse", "molecule",
+    ];
+    let kind = r
+        .choice("model.kind", &kinds)?
+        .ok_or_else(|| r.error("model.kind", "missing (which model to run)"))?;
     for (key, users) in MODEL_KEYS {
         if r.has(key) && !users.contains(&kind.as_str()) {
-            return Err(r.error(key, format!("not used by model kind \"{kind}\" (only by {})", users.join(", "))));
+            return Err(r.error(
+                key,
+                format!(
+                    "not used by model kind \"{kind}\" (only by {})",
+                    users.join(", ")
+                ),
+            ));
         }
     }
     let proton_mass = units::amu_to_me(1.007_276_466_621);
@@ -354,23 +408,52 @@ fn build_model(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
                 "tully-2" => TullyModel::DualAvoidedCrossing,
                 _ => TullyModel::ExtendedCoupling,
             };
-            ModelSpec::Tully(Tully { model: which, mass: mass.unwrap_or(2000.0) })
+            ModelSpec::Tully(Tully {
+                model: which,
+                mass: mass.unwrap_or(2000.0),
+            })
         }
         "lvc" => {
-            let file = r.string("model.file")?.ok_or_else(|| r.error("model.file", "missing (the LVC model file)"))?;
+            let file = r
+                .string("model.file")?
+                .ok_or_else(|| r.error("model.file", "missing (the LVC model file)"))?;
             let path = base.join(&file);
             let model = Lvc::from_file(&path).map_err(|e| r.error("model.file", e.to_string()))?;
             ModelSpec::Lvc { path, model }
         }
         "molecule" => build_molecule(r, base)?,
         "harmonic" => {
-            let w = require(r, "model.frequency_au", positive(r, "model.frequency_au")?, "the angular frequency")?;
-            ModelSpec::Harmonic(Harmonic { masses: vec![mass.unwrap_or(proton_mass)], omegas: vec![w], centres: vec![centre] })
+            let w = require(
+                r,
+                "model.frequency_au",
+                positive(r, "model.frequency_au")?,
+                "the angular frequency",
+            )?;
+            ModelSpec::Harmonic(Harmonic {
+                masses: vec![mass.unwrap_or(proton_mass)],
+                omegas: vec![w],
+                centres: vec![centre],
+            })
         }
         _ => {
-            let depth = require(r, "model.depth_hartree", positive(r, "model.depth_hartree")?, "the well depth")?;
-            let alpha = require(r, "model.range_per_bohr", positive(r, "model.range_per_bohr")?, "the range parameter")?;
-            ModelSpec::Morse(Morse { mass: mass.unwrap_or(proton_mass), depth, alpha, r_eq: centre })
+            let depth = require(
+                r,
+                "model.depth_hartree",
+                positive(r, "model.depth_hartree")?,
+                "the well depth",
+            )?;
+            let alpha = require(
+                r,
+                "model.range_per_bohr",
+                positive(r, "model.range_per_bohr")?,
+                "the range parameter",
+            )?;
+            ModelSpec::Morse(Morse {
+                mass: mass.unwrap_or(proton_mass),
+                depth,
+                alpha,
+                r_eq: centre,
+            })
         }
     })
 }
@@ -385,48 +468,81 @@ fn build_molecule(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
     use crate::electronic::qc::integrals::JkOptions;
     use crate::electronic::qc::response::davidson::DavidsonOptions;
     use crate::electronic::qc::scf::{nuclear_charge, Electrons, Reference, ScfOptions};
-    let file = r.string("model.geometry")?.ok_or_else(|| r.error("model.geometry", "missing (the molecule's XYZ file)"))?;
+    let file = r
+        .string("model.geometry")?
+        .ok_or_else(|| r.error("model.geometry", "missing (the molecule's XYZ file)"))?;
     let path = base.join(&file);
-    let molecule = crate::chem::xyz::read_single_xyz_file(&path).map_err(|e| r.error("model.geometry", e.to_string()))?.molecule;
+    let molecule = crate::chem::xyz::read_single_xyz_file(&path)
+        .map_err(|e| r.error("model.geometry", e.to_string()))?
+        .molecule;
     let basis_name = r.string("model.basis")?.unwrap_or_else(|| "6-31G*".into());
     let basis_file = base.join(&basis_name);
     let data = if basis_file.is_file() {
-        BasisSetData::from_file(&basis_file, crate::electronic::qc::basis::Harmonics::Spherical)
+        BasisSetData::from_file(
+            &basis_file,
+            crate::electronic::qc::basis::Harmonics::Spherical,
+        )
     } else {
         BasisSetData::builtin(&basis_name)
     }
     .map_err(|e| r.error("model.basis", e.to_string()))?;
-    let basis = BasisSet::new(&molecule, &data, None).map_err(|e| r.error("model.basis", format!("{}: {e}", path.display())))?;
+    let basis = BasisSet::new(&molecule, &data, None)
+        .map_err(|e| r.error("model.basis", format!("{}: {e}", path.display())))?;
     let charge = match r.f64("model.charge")? {
         None => 0,
         Some(q) if q.fract() == 0.0 && q.abs() < 1000.0 => q as i64,
-        Some(q) => return Err(r.error("model.charge", format!("must be a whole number, found {q}"))),
+        Some(q) => {
+            return Err(r.error("model.charge", format!("must be a whole number, found {q}")))
+        }
     };
     let electrons = Electrons::from_charge_multiplicity(nuclear_charge(&basis), charge, 3)
-        .map_err(|e| r.error("model.charge", format!("the triplet reference of charge {charge}: {e}")))?;
-    let functional = r.string("model.functional")?.unwrap_or_else(|| "bhhlyp".into());
+        .map_err(|e| {
+            r.error(
+                "model.charge",
+                format!("the triplet reference of charge {charge}: {e}"),
+            )
+        })?;
+    let functional = r
+        .string("model.functional")?
+        .unwrap_or_else(|| "bhhlyp".into());
     let potential = if functional.eq_ignore_ascii_case("hf") {
         Potential::HartreeFock
     } else {
-        Functional::preset_or_libxc(&functional, Spin::Polarized).map_err(|e| r.error("model.functional", e.to_string()))?;
+        Functional::preset_or_libxc(&functional, Spin::Polarized)
+            .map_err(|e| r.error("model.functional", e.to_string()))?;
         let level = r.string("model.grid")?.unwrap_or_else(|| "medium".into());
         let grid = GridSpec::level(&level).map_err(|e| r.error("model.grid", e.to_string()))?;
-        Potential::KohnSham { functional: functional.clone(), grid }
+        Potential::KohnSham {
+            functional: functional.clone(),
+            grid,
+        }
     };
     if matches!(potential, Potential::HartreeFock) && r.has("model.grid") {
-        return Err(r.error("model.grid", "not used with functional = \"hf\" (no exchange–correlation grid)"));
+        return Err(r.error(
+            "model.grid",
+            "not used with functional = \"hf\" (no exchange–correlation grid)",
+        ));
     }
     let singlets = r.u64("model.singlets")?.unwrap_or(3);
     if !(1..=50).contains(&singlets) {
-        return Err(r.error("model.singlets", format!("must be between 1 and 50, found {singlets}")));
+        return Err(r.error(
+            "model.singlets",
+            format!("must be between 1 and 50, found {singlets}"),
+        ));
     }
     let step = positive(r, "model.gradient_step_bohr")?.unwrap_or(1e-3);
     if step > 0.05 {
-        return Err(r.error("model.gradient_step_bohr", format!("{step} bohr is too large for a derivative (use 1e-4 to 1e-2)")));
+        return Err(r.error(
+            "model.gradient_step_bohr",
+            format!("{step} bohr is too large for a derivative (use 1e-4 to 1e-2)"),
+        ));
     }
     let scf_tol = positive(r, "model.scf_tolerance")?.unwrap_or(1e-8);
     let response_tol = positive(r, "model.response_tolerance")?.unwrap_or(1e-6);
-    for (key, v) in [("model.scf_tolerance", scf_tol), ("model.response_tolerance", response_tol)] {
+    for (key, v) in [
+        ("model.scf_tolerance", scf_tol),
+        ("model.response_tolerance", response_tol),
+    ] {
         if v > 1e-3 {
             return Err(r.error(key, format!("{v} is too loose for dynamics (gradients are differences of energies; use ≤ 1e-5)")));
         }
@@ -438,9 +554,16 @@ fn build_molecule(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
         electrons,
         reference: Reference::RestrictedOpen,
         potential,
-        scf: ScfOptions { gradient_tolerance: scf_tol, energy_tolerance: 1e-10, ..ScfOptions::default() },
+        scf: ScfOptions {
+            gradient_tolerance: scf_tol,
+            energy_tolerance: 1e-10,
+            ..ScfOptions::default()
+        },
         jk: JkOptions::default(),
-        davidson: DavidsonOptions { residual_tolerance: response_tol, ..DavidsonOptions::default() },
+        davidson: DavidsonOptions {
+            residual_tolerance: response_tol,
+            ..DavidsonOptions::default()
+        },
     };
     // Refuse what cannot fit before any work: one calculation must fit in
     // the available memory; the displaced calculations of a gradient run in
@@ -469,61 +592,128 @@ fn build_molecule(r: &Reader, base: &Path) -> Result<ModelSpec, ConfigError> {
             ));
         }
         let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
-        tracing::debug!("memory per calculation about {estimate}; {cores} in parallel need {}", crate::electronic::qc::estimate::human(cores * estimate.total()));
+        tracing::debug!(
+            "memory per calculation about {estimate}; {cores} in parallel need {}",
+            crate::electronic::qc::estimate::human(cores * estimate.total())
+        );
     }
     let label = format!("MRSF-TDDFT {}/{}", functional.to_uppercase(), basis_name);
-    let gradients = match r.choice("model.gradients", &["analytic", "numerical"])?.as_deref() {
+    let gradients = match r
+        .choice("model.gradients", &["analytic", "numerical"])?
+        .as_deref()
+    {
         Some("numerical") => GradientMethod::Numerical { step },
-        _ => GradientMethod::Analytic { zvector: Default::default(), coupling_step: step },
+        _ => GradientMethod::Analytic {
+            zvector: Default::default(),
+            coupling_step: step,
+        },
     };
-    let spec = MolecularSpec { calculation, singlets: singlets as usize, gradients, label };
-    Ok(ModelSpec::Molecule { path, spec: std::sync::Arc::new(spec) })
+    let spec = MolecularSpec {
+        calculation,
+        singlets: singlets as usize,
+        gradients,
+        label,
+    };
+    Ok(ModelSpec::Molecule {
+        path,
+        spec: std::sync::Arc::new(spec),
+    })
 }
 
 fn build_sampling(r: &Reader, model: &ModelSpec, base: &Path) -> Result<Sampling, ConfigError> {
-    let kind = r.choice("start.sampling", &["fixed", "wigner", "file"])?.unwrap_or_else(|| "fixed".into());
+    let kind = r
+        .choice("start.sampling", &["fixed", "wigner", "file"])?
+        .unwrap_or_else(|| "fixed".into());
     if kind == "file" {
-        for key in ["start.position_bohr", "start.momentum_au", "start.width_bohr"] {
+        for key in [
+            "start.position_bohr",
+            "start.momentum_au",
+            "start.width_bohr",
+        ] {
             if r.has(key) {
-                return Err(r.error(key, "not used with sampling = \"file\" (the file holds positions and velocities)"));
+                return Err(r.error(
+                    key,
+                    "not used with sampling = \"file\" (the file holds positions and velocities)",
+                ));
             }
         }
-        let file = r
-            .string("start.initial_conditions")?
-            .ok_or_else(|| r.error("start.initial_conditions", "missing (the file written by `flipswarm sample`)"))?;
+        let file = r.string("start.initial_conditions")?.ok_or_else(|| {
+            r.error(
+                "start.initial_conditions",
+                "missing (the file written by `flipswarm sample`)",
+            )
+        })?;
         let path = base.join(&file);
-        let set = crate::sampling::files::InitialConditions::read(&path).map_err(|e| r.error("start.initial_conditions", e.to_string()))?;
+        let set = crate::sampling::files::InitialConditions::read(&path)
+            .map_err(|e| r.error("start.initial_conditions", e.to_string()))?;
         let dof = model.n_dof();
         if set.masses.len() != dof {
             return Err(r.error(
                 "start.initial_conditions",
-                format!("{}: {} coordinates per initial condition but the model has {dof}", path.display(), set.masses.len()),
+                format!(
+                    "{}: {} coordinates per initial condition but the model has {dof}",
+                    path.display(),
+                    set.masses.len()
+                ),
             ));
         }
         let model_masses = model.masses();
-        if let Some(k) = (0..dof).find(|&k| (set.masses[k] - model_masses[k]).abs() > 1e-9 * model_masses[k].abs().max(1.0)) {
+        if let Some(k) = (0..dof).find(|&k| {
+            (set.masses[k] - model_masses[k]).abs() > 1e-9 * model_masses[k].abs().max(1.0)
+        }) {
             return Err(r.error(
                 "start.initial_conditions",
-                format!("{}: coordinate {k} has mass {} in the file but {} in the model", path.display(), set.masses[k], model_masses[k]),
+                format!(
+                    "{}: coordinate {k} has mass {} in the file but {} in the model",
+                    path.display(),
+                    set.masses[k],
+                    model_masses[k]
+                ),
             ));
         }
         let n_states = model.n_states();
         let rows: Vec<(Vec<f64>, Vec<f64>, Option<usize>)> = match &set.excitation {
             Some(x) => (0..set.len())
-                .filter_map(|i| x.initial_state[i].map(|st| (set.positions[i].clone(), set.velocities[i].clone(), Some(st))))
+                .filter_map(|i| {
+                    x.initial_state[i].map(|st| {
+                        (
+                            set.positions[i].clone(),
+                            set.velocities[i].clone(),
+                            Some(st),
+                        )
+                    })
+                })
                 .collect(),
-            None => (0..set.len()).map(|i| (set.positions[i].clone(), set.velocities[i].clone(), None)).collect(),
+            None => (0..set.len())
+                .map(|i| (set.positions[i].clone(), set.velocities[i].clone(), None))
+                .collect(),
         };
         if let Some(st) = rows.iter().filter_map(|r| r.2).find(|&s| s >= n_states) {
-            return Err(r.error("start.initial_conditions", format!("{}: initial state {st} but the model has {n_states} states", path.display())));
+            return Err(r.error(
+                "start.initial_conditions",
+                format!(
+                    "{}: initial state {st} but the model has {n_states} states",
+                    path.display()
+                ),
+            ));
         }
-        return Ok(Sampling::File { path, rows: std::sync::Arc::new(rows) });
+        return Ok(Sampling::File {
+            path,
+            rows: std::sync::Arc::new(rows),
+        });
     }
     if r.has("start.initial_conditions") {
-        return Err(r.error("start.initial_conditions", "only used with sampling = \"file\""));
+        return Err(r.error(
+            "start.initial_conditions",
+            "only used with sampling = \"file\"",
+        ));
     }
     if let ModelSpec::Molecule { .. } = model {
-        for key in ["start.position_bohr", "start.momentum_au", "start.width_bohr"] {
+        for key in [
+            "start.position_bohr",
+            "start.momentum_au",
+            "start.width_bohr",
+        ] {
             if r.has(key) {
                 return Err(r.error(key, "not used by molecules (they start from model.geometry at rest, or from an initial-conditions file)"));
             }
@@ -537,60 +727,125 @@ fn build_sampling(r: &Reader, model: &ModelSpec, base: &Path) -> Result<Sampling
         return Ok(Sampling::Origin);
     }
     if !model.is_one_dimensional() {
-        for key in ["start.position_bohr", "start.momentum_au", "start.width_bohr"] {
+        for key in [
+            "start.position_bohr",
+            "start.momentum_au",
+            "start.width_bohr",
+        ] {
             if r.has(key) {
                 return Err(r.error(key, "not used by LVC models (they start from their reference geometry or its Wigner distribution)"));
             }
         }
-        return Ok(if kind == "wigner" { Sampling::HarmonicGround } else { Sampling::Origin });
+        return Ok(if kind == "wigner" {
+            Sampling::HarmonicGround
+        } else {
+            Sampling::Origin
+        });
     }
-    let position = require(r, "start.position_bohr", r.f64("start.position_bohr")?, "where the trajectories start")?;
+    let position = require(
+        r,
+        "start.position_bohr",
+        r.f64("start.position_bohr")?,
+        "where the trajectories start",
+    )?;
     let momentum = r.f64("start.momentum_au")?.unwrap_or(0.0);
     let width = positive(r, "start.width_bohr")?;
     match (kind.as_str(), width) {
-        ("fixed", Some(_)) => Err(r.error("start.width_bohr", "only used with sampling = \"wigner\"")),
+        ("fixed", Some(_)) => {
+            Err(r.error("start.width_bohr", "only used with sampling = \"wigner\""))
+        }
         ("fixed", None) => Ok(Sampling::Fixed { position, momentum }),
-        (_, None) => Err(r.error("start.width_bohr", "missing (the wavepacket width is needed for sampling = \"wigner\")")),
-        (_, Some(width)) => Ok(Sampling::Wavepacket { position, momentum, width }),
+        (_, None) => Err(r.error(
+            "start.width_bohr",
+            "missing (the wavepacket width is needed for sampling = \"wigner\")",
+        )),
+        (_, Some(width)) => Ok(Sampling::Wavepacket {
+            position,
+            momentum,
+            width,
+        }),
     }
 }
 
 fn one_of(r: &Reader, fs_key: &str, au_key: &str, what: &str) -> Result<f64, ConfigError> {
     match (positive(r, fs_key)?, positive(r, au_key)?) {
-        (Some(_), Some(_)) => Err(r.error(au_key, format!("give the {what} once: both `{fs_key}` and `{au_key}` are set"))),
+        (Some(_), Some(_)) => Err(r.error(
+            au_key,
+            format!("give the {what} once: both `{fs_key}` and `{au_key}` are set"),
+        )),
         (Some(fs), None) => Ok(units::fs_to_au(fs)),
         (None, Some(au)) => Ok(au),
-        (None, None) => Err(r.error(fs_key, format!("missing (the {what}, as `{fs_key}` or `{au_key}`)"))),
+        (None, None) => Err(r.error(
+            fs_key,
+            format!("missing (the {what}, as `{fs_key}` or `{au_key}`)"),
+        )),
     }
 }
 
-fn build_settings(r: &Reader, model: &ModelSpec, sampling: &Sampling) -> Result<Settings, ConfigError> {
-    let dt = one_of(r, "dynamics.timestep_fs", "dynamics.timestep_au", "time step")?;
-    let duration = one_of(r, "dynamics.duration_fs", "dynamics.duration_au", "simulated time")?;
+fn build_settings(
+    r: &Reader,
+    model: &ModelSpec,
+    sampling: &Sampling,
+) -> Result<Settings, ConfigError> {
+    let dt = one_of(
+        r,
+        "dynamics.timestep_fs",
+        "dynamics.timestep_au",
+        "time step",
+    )?;
+    let duration = one_of(
+        r,
+        "dynamics.duration_fs",
+        "dynamics.duration_au",
+        "simulated time",
+    )?;
     if duration < dt {
-        let key = if r.has("dynamics.duration_fs") { "dynamics.duration_fs" } else { "dynamics.duration_au" };
+        let key = if r.has("dynamics.duration_fs") {
+            "dynamics.duration_fs"
+        } else {
+            "dynamics.duration_au"
+        };
         return Err(r.error(key, "shorter than one time step"));
     }
     let steps = duration / dt;
     if steps > 1e9 {
-        let key = if r.has("dynamics.timestep_fs") { "dynamics.timestep_fs" } else { "dynamics.timestep_au" };
+        let key = if r.has("dynamics.timestep_fs") {
+            "dynamics.timestep_fs"
+        } else {
+            "dynamics.timestep_au"
+        };
         return Err(r.error(key, format!("{steps:.3e} steps per trajectory is more than 10⁹; lengthen the time step or shorten the run")));
     }
     let substeps = r.u64("dynamics.substeps")?.unwrap_or(20);
     if !(1..=100_000).contains(&substeps) {
-        return Err(r.error("dynamics.substeps", format!("must be between 1 and 100 000, found {substeps}")));
+        return Err(r.error(
+            "dynamics.substeps",
+            format!("must be between 1 and 100 000, found {substeps}"),
+        ));
     }
-    let hop_direction = match r.choice("dynamics.hop_direction", &["coupling", "velocity", "gradient-difference"])?.as_deref() {
+    let hop_direction = match r
+        .choice(
+            "dynamics.hop_direction",
+            &["coupling", "velocity", "gradient-difference"],
+        )?
+        .as_deref()
+    {
         Some("velocity") => HopDirection::Velocity,
         Some("gradient-difference") => HopDirection::GradientDifference,
         _ => HopDirection::Coupling,
     };
-    let frustrated = match r.choice("dynamics.frustrated", &["keep", "reflect"])?.as_deref() {
+    let frustrated = match r
+        .choice("dynamics.frustrated", &["keep", "reflect"])?
+        .as_deref()
+    {
         Some("reflect") => FrustratedHops::Reflect,
         _ => FrustratedHops::Keep,
     };
     let c = positive(r, "dynamics.decoherence_constant_hartree")?.unwrap_or(0.1);
-    let decoherence = match r.choice("dynamics.decoherence", &["none", "energy-based"])?.as_deref() {
+    let decoherence = match r
+        .choice("dynamics.decoherence", &["none", "energy-based"])?
+        .as_deref()
+    {
         Some("none") => DecoherenceScheme::None,
         _ => DecoherenceScheme::EnergyBased { c },
     };
@@ -598,7 +853,12 @@ fn build_settings(r: &Reader, model: &ModelSpec, sampling: &Sampling) -> Result<
     let min_overlap_determinant = match r.f64("dynamics.min_overlap_determinant")? {
         None => 0.3,
         Some(x) if (0.0..1.0).contains(&x) => x,
-        Some(x) => return Err(r.error("dynamics.min_overlap_determinant", format!("must be at least 0 and below 1, found {x}"))),
+        Some(x) => {
+            return Err(r.error(
+                "dynamics.min_overlap_determinant",
+                format!("must be at least 0 and below 1, found {x}"),
+            ))
+        }
     };
     let exit_region = r.pair("dynamics.exit_region_bohr")?;
     if let Some((lo, hi)) = exit_region {

@@ -16,13 +16,29 @@ pub struct Reader {
 }
 
 fn line_of(text: &str, offset: usize) -> usize {
-    text.as_bytes()[..offset.min(text.len())].iter().filter(|&&b| b == b'\n').count() + 1
+    text.as_bytes()[..offset.min(text.len())]
+        .iter()
+        .filter(|&&b| b == b'\n')
+        .count()
+        + 1
 }
 
-fn collect_lines(text: &str, prefix: &str, table: &toml_edit::Table, out: &mut BTreeMap<String, usize>) {
+fn collect_lines(
+    text: &str,
+    prefix: &str,
+    table: &toml_edit::Table,
+    out: &mut BTreeMap<String, usize>,
+) {
     for (key, item) in table.iter() {
-        let path = if prefix.is_empty() { key.to_string() } else { format!("{prefix}.{key}") };
-        let span = table.key(key).and_then(|k| k.span()).or_else(|| item.span());
+        let path = if prefix.is_empty() {
+            key.to_string()
+        } else {
+            format!("{prefix}.{key}")
+        };
+        let span = table
+            .key(key)
+            .and_then(|k| k.span())
+            .or_else(|| item.span());
         if let Some(span) = span {
             out.insert(path.clone(), line_of(text, span.start));
         }
@@ -38,12 +54,22 @@ impl Reader {
         let im = ImDocument::parse(text.to_string()).map_err(|e| {
             let line = e.span().map(|s| line_of(text, s.start));
             let msg = e.message().trim_end().to_string();
-            ConfigError { origin: origin.into(), line, key: None, message: format!("not valid TOML: {msg}") }
+            ConfigError {
+                origin: origin.into(),
+                line,
+                key: None,
+                message: format!("not valid TOML: {msg}"),
+            }
         })?;
         let mut lines = BTreeMap::new();
         collect_lines(text, "", im.as_table(), &mut lines);
         let doc = im.into_mut();
-        let mut reader = Self { origin: origin.into(), doc, lines, overridden: BTreeSet::new() };
+        let mut reader = Self {
+            origin: origin.into(),
+            doc,
+            lines,
+            overridden: BTreeSet::new(),
+        };
         for o in overrides {
             reader.apply_override(o)?;
         }
@@ -64,7 +90,10 @@ impl Reader {
         let raw = raw.trim();
         let parts: Vec<&str> = path.split('.').collect();
         if path.is_empty() || parts.iter().any(|p| p.is_empty()) {
-            return Err(err(None, format!("`{path}` is not a key path such as dynamics.timestep_fs")));
+            return Err(err(
+                None,
+                format!("`{path}` is not a key path such as dynamics.timestep_fs"),
+            ));
         }
         // A value that is not valid TOML (a bare word) is taken as a string.
         let value: Value = raw.parse().unwrap_or_else(|_| Value::from(raw));
@@ -73,7 +102,12 @@ impl Reader {
             let entry = table.entry(part).or_insert(toml_edit::table());
             table = match entry.as_table_mut() {
                 Some(t) => t,
-                None => return Err(err(Some(path.into()), format!("`{part}` is a value, not a table"))),
+                None => {
+                    return Err(err(
+                        Some(path.into()),
+                        format!("`{part}` is a value, not a table"),
+                    ))
+                }
             };
         }
         table.insert(parts[parts.len() - 1], Item::Value(value));
@@ -94,13 +128,24 @@ impl Reader {
     /// An error about `key`, located at its line (or at the override).
     pub fn error(&self, key: &str, message: impl Into<String>) -> ConfigError {
         if self.overridden.contains(key) {
-            return ConfigError { origin: "--set".into(), line: None, key: Some(key.into()), message: message.into() };
+            return ConfigError {
+                origin: "--set".into(),
+                line: None,
+                key: Some(key.into()),
+                message: message.into(),
+            };
         }
         let line = self.lines.get(key).copied().or_else(|| {
             // A missing key: point at its table header if there is one.
-            key.rsplit_once('.').and_then(|(t, _)| self.lines.get(t).copied())
+            key.rsplit_once('.')
+                .and_then(|(t, _)| self.lines.get(t).copied())
         });
-        ConfigError { origin: self.origin.clone(), line, key: Some(key.into()), message: message.into() }
+        ConfigError {
+            origin: self.origin.clone(),
+            line,
+            key: Some(key.into()),
+            message: message.into(),
+        }
     }
 
     fn item(&self, path: &str) -> Option<&Item> {
@@ -121,7 +166,11 @@ impl Reader {
     pub fn all_keys(&self) -> Vec<(String, bool)> {
         fn walk(prefix: &str, t: &dyn toml_edit::TableLike, out: &mut Vec<(String, bool)>) {
             for (k, item) in t.iter() {
-                let path = if prefix.is_empty() { k.to_string() } else { format!("{prefix}.{k}") };
+                let path = if prefix.is_empty() {
+                    k.to_string()
+                } else {
+                    format!("{prefix}.{k}")
+                };
                 match item.as_table_like() {
                     Some(inner) => {
                         out.push((path.clone(), true));
@@ -154,11 +203,18 @@ impl Reader {
 
     /// A number (integers are accepted), if present.
     pub fn f64(&self, path: &str) -> Result<Option<f64>, ConfigError> {
-        let Some(item) = self.item(path) else { return Ok(None) };
+        let Some(item) = self.item(path) else {
+            return Ok(None);
+        };
         let x = match item.as_value() {
             Some(Value::Float(f)) => *f.value(),
             Some(Value::Integer(i)) => *i.value() as f64,
-            _ => return Err(self.error(path, format!("expected a number, found {}", Self::type_name(item)))),
+            _ => {
+                return Err(self.error(
+                    path,
+                    format!("expected a number, found {}", Self::type_name(item)),
+                ))
+            }
         };
         if !x.is_finite() {
             return Err(self.error(path, format!("must be finite, found {x}")));
@@ -168,30 +224,48 @@ impl Reader {
 
     /// A non-negative integer, if present.
     pub fn u64(&self, path: &str) -> Result<Option<u64>, ConfigError> {
-        let Some(item) = self.item(path) else { return Ok(None) };
+        let Some(item) = self.item(path) else {
+            return Ok(None);
+        };
         match item.as_value() {
             Some(Value::Integer(i)) if *i.value() >= 0 => Ok(Some(*i.value() as u64)),
-            Some(Value::Integer(i)) => Err(self.error(path, format!("must not be negative, found {}", i.value()))),
-            _ => Err(self.error(path, format!("expected a whole number, found {}", Self::type_name(item)))),
+            Some(Value::Integer(i)) => {
+                Err(self.error(path, format!("must not be negative, found {}", i.value())))
+            }
+            _ => Err(self.error(
+                path,
+                format!("expected a whole number, found {}", Self::type_name(item)),
+            )),
         }
     }
 
     /// A string, if present.
     pub fn string(&self, path: &str) -> Result<Option<String>, ConfigError> {
-        let Some(item) = self.item(path) else { return Ok(None) };
+        let Some(item) = self.item(path) else {
+            return Ok(None);
+        };
         match item.as_str() {
             Some(s) => Ok(Some(s.to_string())),
-            None => Err(self.error(path, format!("expected a string, found {}", Self::type_name(item)))),
+            None => Err(self.error(
+                path,
+                format!("expected a string, found {}", Self::type_name(item)),
+            )),
         }
     }
 
     /// One of `choices`, if present; the message lists them and the nearest.
     pub fn choice(&self, path: &str, choices: &[&str]) -> Result<Option<String>, ConfigError> {
-        let Some(s) = self.string(path)? else { return Ok(None) };
+        let Some(s) = self.string(path)? else {
+            return Ok(None);
+        };
         if choices.contains(&s.as_str()) {
             return Ok(Some(s));
         }
-        let list = choices.iter().map(|c| format!("\"{c}\"")).collect::<Vec<_>>().join(", ");
+        let list = choices
+            .iter()
+            .map(|c| format!("\"{c}\""))
+            .collect::<Vec<_>>()
+            .join(", ");
         let hint = super::suggest::nearest(&s, choices.iter().copied())
             .map(|n| format!("; did you mean \"{n}\"?"))
             .unwrap_or_default();
@@ -200,7 +274,9 @@ impl Reader {
 
     /// A pair of numbers [a, b], if present.
     pub fn pair(&self, path: &str) -> Result<Option<(f64, f64)>, ConfigError> {
-        let Some(item) = self.item(path) else { return Ok(None) };
+        let Some(item) = self.item(path) else {
+            return Ok(None);
+        };
         let arr = item.as_array().filter(|a| a.len() == 2);
         let nums: Option<Vec<f64>> = arr.map(|a| {
             a.iter()
@@ -214,7 +290,13 @@ impl Reader {
         });
         match nums {
             Some(v) if v.len() == 2 => Ok(Some((v[0], v[1]))),
-            _ => Err(self.error(path, format!("expected two numbers [low, high], found {}", Self::type_name(item)))),
+            _ => Err(self.error(
+                path,
+                format!(
+                    "expected two numbers [low, high], found {}",
+                    Self::type_name(item)
+                ),
+            )),
         }
     }
 }

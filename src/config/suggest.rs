@@ -9,7 +9,11 @@ pub fn distance(a: &str, b: &str) -> usize {
         row[0] = i + 1;
         for (j, &cb) in b.iter().enumerate() {
             let cur = row[j + 1];
-            row[j + 1] = if ca == cb { prev } else { 1 + prev.min(row[j]).min(cur) };
+            row[j + 1] = if ca == cb {
+                prev
+            } else {
+                1 + prev.min(row[j]).min(cur)
+            };
             prev = cur;
         }
     }
@@ -18,7 +22,10 @@ pub fn distance(a: &str, b: &str) -> usize {
 
 /// The candidate closest to `word`, if it is reasonably close.
 pub fn nearest<'a>(word: &str, candidates: impl IntoIterator<Item = &'a str>) -> Option<&'a str> {
-    let best = candidates.into_iter().map(|c| (distance(word, c), c)).min_by_key(|(d, _)| *d)?;
+    let best = candidates
+        .into_iter()
+        .map(|c| (distance(word, c), c))
+        .min_by_key(|(d, _)| *d)?;
     let limit = (word.chars().count() / 2).max(2);
     (best.0 <= limit).then_some(best.1)
 }

@@ -98,13 +98,21 @@ impl Exchanged {
 /// the first untracked one, harmless for the dynamics — they are returned
 /// for [`Exchanged::patch`] and a warning. Checked against
 /// `dynamics.min_overlap_determinant`.
-pub fn check_tracking(s: &DMatrix<f64>, floor: f64, active: usize, amplitudes: &[Complex64]) -> Result<Option<Exchanged>, OverlapError> {
+pub fn check_tracking(
+    s: &DMatrix<f64>,
+    floor: f64,
+    active: usize,
+    amplitudes: &[Complex64],
+) -> Result<Option<Exchanged>, OverlapError> {
     // Every step: skip the LU when a cheap lower bound already clears the
     // floor. For a column diagonally dominant matrix
     // |det S| ≥ Π_j (|S_jj| − Σ_{i≠j} |S_ij|) (Ostrowski's bound), and a
     // smooth step has S close to a signed identity.
     let bound = (0..s.ncols()).try_fold(1.0, |acc: f64, j| {
-        let off: f64 = (0..s.nrows()).filter(|&i| i != j).map(|i| s[(i, j)].abs()).sum();
+        let off: f64 = (0..s.nrows())
+            .filter(|&i| i != j)
+            .map(|i| s[(i, j)].abs())
+            .sum();
         let margin = s[(j, j)].abs() - off;
         (margin > 0.0).then_some(acc * margin)
     });
@@ -117,13 +125,24 @@ pub fn check_tracking(s: &DMatrix<f64>, floor: f64, active: usize, amplitudes: &
     }
     let kept = |j: usize| s.row(j).norm().min(s.column(j).norm());
     let lost: Vec<usize> = (0..s.ncols()).filter(|&j| kept(j).powi(2) < 0.5).collect();
-    let least = (0..s.ncols()).min_by(|&a, &b| kept(a).total_cmp(&kept(b))).unwrap_or(0);
-    let matters = |j: &usize| *j == active || amplitudes.get(*j).is_some_and(|c| c.norm_sqr() > 0.01);
+    let least = (0..s.ncols())
+        .min_by(|&a, &b| kept(a).total_cmp(&kept(b)))
+        .unwrap_or(0);
+    let matters =
+        |j: &usize| *j == active || amplitudes.get(*j).is_some_and(|c| c.norm_sqr() > 0.01);
     if lost.is_empty() || lost.iter().any(matters) {
         let state = lost.iter().copied().find(matters).unwrap_or(least);
-        return Err(OverlapError::TrackingLost { determinant, floor, state, norm: kept(state) });
+        return Err(OverlapError::TrackingLost {
+            determinant,
+            floor,
+            state,
+            norm: kept(state),
+        });
     }
-    Ok(Some(Exchanged { states: lost, determinant }))
+    Ok(Some(Exchanged {
+        states: lost,
+        determinant,
+    }))
 }
 
 /// The coupling over one nuclear step, derived from the aligned overlaps.
@@ -176,7 +195,11 @@ impl StepCoupling {
     ) -> Result<Self, OverlapError> {
         let n = phases.len();
         if aligned.nrows() != n || aligned.ncols() != n {
-            return Err(OverlapError::Shape { rows: aligned.nrows(), cols: aligned.ncols(), n });
+            return Err(OverlapError::Shape {
+                rows: aligned.nrows(),
+                cols: aligned.ncols(),
+                n,
+            });
         }
         if aligned.iter().any(|x| !x.is_finite()) {
             return Err(OverlapError::NonFinite);
@@ -200,16 +223,30 @@ impl StepCoupling {
             phases[j] = -phases[j];
         }
         let (t, propagator) = log_and_power(&s, dt, h);
-        Ok(Self { t, propagator, shears: None, min_singular_value: min_sv })
+        Ok(Self {
+            t,
+            propagator,
+            shears: None,
+            min_singular_value: min_sv,
+        })
     }
 
     /// Closed form for two states: the nearest rotation to S has angle
     /// θ = atan2(S₂₁ − S₁₂, S₁₁ + S₂₂), and T₂₁ = −T₁₂ = θ/Δt.
-    fn two_state(s: &DMatrix<f64>, phases: &mut [f64], dt: f64, h: f64) -> Result<Self, OverlapError> {
+    fn two_state(
+        s: &DMatrix<f64>,
+        phases: &mut [f64],
+        dt: f64,
+        h: f64,
+    ) -> Result<Self, OverlapError> {
         let det = s[(0, 0)] * s[(1, 1)] - s[(0, 1)] * s[(1, 0)];
         let mut s = s.clone();
         if det < 0.0 {
-            let j = if s[(0, 0)].abs() < s[(1, 1)].abs() { 0 } else { 1 };
+            let j = if s[(0, 0)].abs() < s[(1, 1)].abs() {
+                0
+            } else {
+                1
+            };
             s.column_mut(j).neg_mut();
             phases[j] = -phases[j];
         }
@@ -226,18 +263,36 @@ impl StepCoupling {
         let propagator = DMatrix::from_row_slice(2, 2, &[cs, -sn, sn, cs]);
         // Shears only for moderate angles (tan(α/2) grows without bound near π).
         let shears = (alpha.abs() < 1.0).then(|| ((0.5 * alpha).tan(), sn));
-        Ok(Self { t, propagator, shears, min_singular_value: sv_min })
+        Ok(Self {
+            t,
+            propagator,
+            shears,
+            min_singular_value: sv_min,
+        })
     }
 
     /// No coupling (one state, or a step with no overlap information).
     pub fn none(n: usize) -> Self {
-        Self { t: DMatrix::zeros(n, n), propagator: DMatrix::identity(n, n), shears: None, min_singular_value: 1.0 }
+        Self {
+            t: DMatrix::zeros(n, n),
+            propagator: DMatrix::identity(n, n),
+            shears: None,
+            min_singular_value: 1.0,
+        }
     }
 
     /// Propagate `c` over the step with energies varying linearly from `e0`
     /// to `e1`, and return the fewest-switches probabilities g_{active→j}
     /// (zero for j = active).
-    pub fn propagate(&self, c: &mut [Complex64], e0: &[f64], e1: &[f64], dt: f64, substeps: usize, active: usize) -> Vec<f64> {
+    pub fn propagate(
+        &self,
+        c: &mut [Complex64],
+        e0: &[f64],
+        e1: &[f64],
+        dt: f64,
+        substeps: usize,
+        active: usize,
+    ) -> Vec<f64> {
         let n = c.len();
         let h = dt / substeps as f64;
         let mut g = vec![0.0; n];
@@ -250,8 +305,12 @@ impl StepCoupling {
         // with half phases P(τ) = exp(−i (h/2) E(τ)) at the ends and full
         // phases D(τ) = exp(−i h E(τ)) between the rotations R = exp(−T h).
         // D advances by a constant factor from one substep to the next.
-        let mut phase: Vec<Complex64> = (0..n).map(|j| Complex64::from_polar(1.0, -h * energy(j, h))).collect();
-        let advance: Vec<Complex64> = (0..n).map(|j| Complex64::from_polar(1.0, -h * h * (e1[j] - e0[j]) / dt)).collect();
+        let mut phase: Vec<Complex64> = (0..n)
+            .map(|j| Complex64::from_polar(1.0, -h * energy(j, h)))
+            .collect();
+        let advance: Vec<Complex64> = (0..n)
+            .map(|j| Complex64::from_polar(1.0, -h * h * (e1[j] - e0[j]) / dt))
+            .collect();
         for (j, cj) in c.iter_mut().enumerate() {
             *cj *= Complex64::from_polar(1.0, -0.5 * h * energy(j, 0.25 * h));
         }
@@ -306,7 +365,9 @@ fn log_and_power(s: &DMatrix<f64>, dt: f64, h: f64) -> (DMatrix<f64>, DMatrix<f6
     let n = s.nrows();
     let i = Complex64::new(0.0, 1.0);
     let anti = DMatrix::from_fn(n, n, |r, c| -i * 0.5 * (s[(r, c)] - s[(c, r)]));
-    let sym = DMatrix::from_fn(n, n, |r, c| Complex64::new(0.5 * (s[(r, c)] + s[(c, r)]), 0.0));
+    let sym = DMatrix::from_fn(n, n, |r, c| {
+        Complex64::new(0.5 * (s[(r, c)] + s[(c, r)]), 0.0)
+    });
     let eig = SymmetricEigen::new(anti);
     let v = eig.eigenvectors;
     let thetas: Vec<f64> = (0..n)
@@ -317,7 +378,10 @@ fn log_and_power(s: &DMatrix<f64>, dt: f64, h: f64) -> (DMatrix<f64>, DMatrix<f6
         })
         .collect();
     let build = |f: &dyn Fn(f64) -> Complex64| -> DMatrix<f64> {
-        let d = DMatrix::from_diagonal(&nalgebra::DVector::from_iterator(n, thetas.iter().map(|&t| f(t))));
+        let d = DMatrix::from_diagonal(&nalgebra::DVector::from_iterator(
+            n,
+            thetas.iter().map(|&t| f(t)),
+        ));
         (&v * d * v.adjoint()).map(|z| z.re)
     };
     let t = build(&|th| i * th / dt);
@@ -343,9 +407,21 @@ mod tests {
     use super::*;
 
     fn rotation3(a: f64, b: f64, c: f64) -> DMatrix<f64> {
-        let rx = DMatrix::from_row_slice(3, 3, &[1.0, 0.0, 0.0, 0.0, a.cos(), -a.sin(), 0.0, a.sin(), a.cos()]);
-        let ry = DMatrix::from_row_slice(3, 3, &[b.cos(), 0.0, b.sin(), 0.0, 1.0, 0.0, -b.sin(), 0.0, b.cos()]);
-        let rz = DMatrix::from_row_slice(3, 3, &[c.cos(), -c.sin(), 0.0, c.sin(), c.cos(), 0.0, 0.0, 0.0, 1.0]);
+        let rx = DMatrix::from_row_slice(
+            3,
+            3,
+            &[1.0, 0.0, 0.0, 0.0, a.cos(), -a.sin(), 0.0, a.sin(), a.cos()],
+        );
+        let ry = DMatrix::from_row_slice(
+            3,
+            3,
+            &[b.cos(), 0.0, b.sin(), 0.0, 1.0, 0.0, -b.sin(), 0.0, b.cos()],
+        );
+        let rz = DMatrix::from_row_slice(
+            3,
+            3,
+            &[c.cos(), -c.sin(), 0.0, c.sin(), c.cos(), 0.0, 0.0, 0.0, 1.0],
+        );
         rx * ry * rz
     }
 
@@ -380,7 +456,9 @@ mod tests {
     fn lost_tracking_is_detected_by_the_determinant() {
         let r = rotation3(0.3, -0.2, 0.7);
         // Amplitudes with these populations.
-        let amps = |p: &[f64]| -> Vec<Complex64> { p.iter().map(|x| Complex64::new(x.sqrt(), 0.0)).collect() };
+        let amps = |p: &[f64]| -> Vec<Complex64> {
+            p.iter().map(|x| Complex64::new(x.sqrt(), 0.0)).collect()
+        };
         let pops = amps(&[1.0, 0.0, 0.0]);
         assert_eq!(check_tracking(&r, 0.3, 0, &pops), Ok(None));
         let mut improper = r.clone();
@@ -390,7 +468,12 @@ mod tests {
         lost[(1, 1)] = 0.4;
         for (active, p) in [(1, [0.0, 1.0, 0.0]), (0, [0.9, 0.1, 0.0])] {
             match check_tracking(&lost, 0.5, active, &amps(&p)) {
-                Err(OverlapError::TrackingLost { determinant, floor, state, norm }) => {
+                Err(OverlapError::TrackingLost {
+                    determinant,
+                    floor,
+                    state,
+                    norm,
+                }) => {
                     assert!((determinant - 0.4).abs() < 1e-12);
                     assert_eq!((floor, state), (0.5, 1));
                     assert!((norm - 0.4).abs() < 1e-12);
@@ -398,7 +481,9 @@ mod tests {
                 other => panic!("{other:?}"),
             }
         }
-        let swapped = check_tracking(&lost, 0.5, 0, &pops).unwrap().expect("exchanged states");
+        let swapped = check_tracking(&lost, 0.5, 0, &pops)
+            .unwrap()
+            .expect("exchanged states");
         assert_eq!(swapped.states, vec![1]);
         assert!((swapped.determinant - 0.4).abs() < 1e-12);
         assert_eq!(swapped.patch(&lost), DMatrix::identity(3, 3));
@@ -415,7 +500,10 @@ mod tests {
                 (if i == j { 1.0 } else { 0.0 }) + spread * (2.0 * x - 1.0)
             });
             let small = m.determinant().abs() < 0.3;
-            let flagged = !matches!(check_tracking(&m, 0.3, 0, &amps(&[1.0, 0.0, 0.0, 0.0])), Ok(None));
+            let flagged = !matches!(
+                check_tracking(&m, 0.3, 0, &amps(&[1.0, 0.0, 0.0, 0.0])),
+                Ok(None)
+            );
             assert_eq!(small, flagged, "{m}");
         }
     }
@@ -424,7 +512,16 @@ mod tests {
     #[test]
     fn two_state_closed_form_matches_general() {
         for &theta in &[0.0, 0.01, -0.4, 1.2] {
-            let s2 = DMatrix::from_row_slice(2, 2, &[f64::cos(theta), -f64::sin(theta), f64::sin(theta), f64::cos(theta)]);
+            let s2 = DMatrix::from_row_slice(
+                2,
+                2,
+                &[
+                    f64::cos(theta),
+                    -f64::sin(theta),
+                    f64::sin(theta),
+                    f64::cos(theta),
+                ],
+            );
             let mut ph = vec![1.0; 2];
             let fast = StepCoupling::from_overlaps(&s2, &mut ph, 0.5, 3).unwrap();
             let (t, p) = log_and_power(&s2, 0.5, 0.5 / 3.0);
@@ -436,12 +533,18 @@ mod tests {
     /// The three-shear rotation equals the rotation matrix.
     #[test]
     fn shears_equal_the_rotation_matrix() {
-        let s2 = DMatrix::from_row_slice(2, 2, &[0.8f64.cos(), -0.8f64.sin(), 0.8f64.sin(), 0.8f64.cos()]);
+        let s2 = DMatrix::from_row_slice(
+            2,
+            2,
+            &[0.8f64.cos(), -0.8f64.sin(), 0.8f64.sin(), 0.8f64.cos()],
+        );
         let mut ph = vec![1.0; 2];
         let sc = StepCoupling::from_overlaps(&s2, &mut ph, 1.0, 4).unwrap();
         assert!(sc.shears.is_some());
         let mut c = vec![Complex64::new(0.3, -0.2), Complex64::new(0.1, 0.9)];
-        let expect: Vec<Complex64> = (0..2).map(|i| (0..2).map(|j| c[j] * sc.propagator[(i, j)]).sum()).collect();
+        let expect: Vec<Complex64> = (0..2)
+            .map(|i| (0..2).map(|j| c[j] * sc.propagator[(i, j)]).sum())
+            .collect();
         let mut work = vec![Complex64::new(0.0, 0.0); 2];
         sc.rotate(&mut c, &mut work);
         for k in 0..2 {
@@ -462,6 +565,9 @@ mod tests {
     fn singular_overlap_is_an_error() {
         let s = DMatrix::from_row_slice(3, 3, &[1.0, 0.0, 0.0, 0.0, 1.0, 0.0, 0.0, 0.0, 0.0]);
         let mut ph = vec![1.0; 3];
-        assert!(matches!(StepCoupling::from_overlaps(&s, &mut ph, 1.0, 1), Err(OverlapError::Singular(_))));
+        assert!(matches!(
+            StepCoupling::from_overlaps(&s, &mut ph, 1.0, 1),
+            Err(OverlapError::Singular(_))
+        ));
     }
 }

@@ -43,7 +43,14 @@ impl Decoherence for DecoherenceScheme {
     }
 }
 
-fn energy_based(c: &mut [Complex64], active: usize, energies: &[f64], kinetic: f64, dt: f64, constant: f64) {
+fn energy_based(
+    c: &mut [Complex64],
+    active: usize,
+    energies: &[f64],
+    kinetic: f64,
+    dt: f64,
+    constant: f64,
+) {
     if kinetic <= 0.0 {
         // τ → ∞ as E_kin → 0: no damping at a turning point.
         return;

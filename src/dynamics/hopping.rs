@@ -62,7 +62,11 @@ pub fn adjust_velocity(v: &mut [f64], masses: &[f64], u: &[f64], delta_e: f64) -
         return false;
     }
     let root = disc.sqrt();
-    let gamma = if b >= 0.0 { (b - root) / (2.0 * a) } else { (b + root) / (2.0 * a) };
+    let gamma = if b >= 0.0 {
+        (b - root) / (2.0 * a)
+    } else {
+        (b + root) / (2.0 * a)
+    };
     for ((v, u), m) in v.iter_mut().zip(u).zip(masses) {
         *v -= gamma * u / m;
     }

@@ -12,5 +12,6 @@ pub mod wavepacket;
 pub use decoherence::DecoherenceScheme;
 pub use hopping::{FrustratedHops, HopDirection};
 pub use trajectory::{
-    EndReason, Flow, Hop, Observer, RecordKind, Settings, Status, StepRecord, Trajectory, TrajectoryState,
+    EndReason, Flow, Hop, Observer, RecordKind, Settings, Status, StepRecord, Trajectory,
+    TrajectoryState,
 };

@@ -14,7 +14,9 @@ use serde::{Deserialize, Serialize};
 
 use super::amplitudes::{align_phases, check_tracking, StepCoupling};
 use super::decoherence::{Decoherence, DecoherenceScheme};
-use super::hopping::{adjust_velocity, choose_target, kinetic_energy, reflect_velocity, FrustratedHops, HopDirection};
+use super::hopping::{
+    adjust_velocity, choose_target, kinetic_energy, reflect_velocity, FrustratedHops, HopDirection,
+};
 use super::verlet;
 use crate::electronic::{Backend, BackendError, Diagnostics, Request};
 
@@ -198,9 +200,17 @@ impl Observer for () {
 /// The first non-finite energy or gradient component, described.
 fn non_finite(energies: &[f64], gradient: &[f64]) -> Option<String> {
     if let Some(i) = energies.iter().position(|x| !x.is_finite()) {
-        return Some(format!("energy or gradient (energy of state {i} = {})", energies[i]));
+        return Some(format!(
+            "energy or gradient (energy of state {i} = {})",
+            energies[i]
+        ));
     }
-    gradient.iter().position(|x| !x.is_finite()).map(|i| format!("energy or gradient (gradient component {i} = {})", gradient[i]))
+    gradient.iter().position(|x| !x.is_finite()).map(|i| {
+        format!(
+            "energy or gradient (gradient component {i} = {})",
+            gradient[i]
+        )
+    })
 }
 
 /// A trajectory bound to its back end.
@@ -232,13 +242,25 @@ impl<'b> Trajectory<'b> {
         let info = backend.info();
         let n = info.n_states;
         if active >= n {
-            return Err(BackendError::NoSuchState { state: active, n_states: n });
+            return Err(BackendError::NoSuchState {
+                state: active,
+                n_states: n,
+            });
         }
         let res = backend.compute(&q, &Request::gradient_of(active))?;
         let energies = res.energies.clone();
-        let gradient = res.gradient(active).ok_or_else(|| BackendError::Failed(format!("the back end did not return the requested gradient of state {active}")))?.to_vec();
+        let gradient = res
+            .gradient(active)
+            .ok_or_else(|| {
+                BackendError::Failed(format!(
+                    "the back end did not return the requested gradient of state {active}"
+                ))
+            })?
+            .to_vec();
         if let Some(bad) = non_finite(&energies, &gradient) {
-            return Err(BackendError::Failed(format!("the back end returned a non-finite {bad} at the initial geometry (step 0)")));
+            return Err(BackendError::Failed(format!(
+                "the back end returned a non-finite {bad} at the initial geometry (step 0)"
+            )));
         }
         let diagnostics = res.diagnostics.clone();
         let mut amplitudes = vec![Complex64::new(0.0, 0.0); n];
@@ -259,14 +281,38 @@ impl<'b> Trajectory<'b> {
             status: Status::Running,
             diagnostics,
         };
-        Ok(Self { backend, settings, masses: info.masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new(), q_new: Vec::new(), v_new: Vec::new() })
+        Ok(Self {
+            backend,
+            settings,
+            masses: info.masses,
+            state,
+            hops: Vec::new(),
+            request: Request::default(),
+            new_energies: Vec::new(),
+            q_new: Vec::new(),
+            v_new: Vec::new(),
+        })
     }
 
     /// Continue from a saved state; the back end must already hold the
     /// matching snapshot.
-    pub fn resume(backend: &'b mut dyn Backend, settings: Settings, state: TrajectoryState) -> Self {
+    pub fn resume(
+        backend: &'b mut dyn Backend,
+        settings: Settings,
+        state: TrajectoryState,
+    ) -> Self {
         let masses = backend.info().masses;
-        Self { backend, settings, masses, state, hops: Vec::new(), request: Request::default(), new_energies: Vec::new(), q_new: Vec::new(), v_new: Vec::new() }
+        Self {
+            backend,
+            settings,
+            masses,
+            state,
+            hops: Vec::new(),
+            request: Request::default(),
+            new_energies: Vec::new(),
+            q_new: Vec::new(),
+            v_new: Vec::new(),
+        }
     }
 
     /// Masses of the coordinates.
@@ -290,24 +336,58 @@ impl<'b> Trajectory<'b> {
         self.q_new.extend_from_slice(&s.q);
         self.v_new.clear();
         self.v_new.extend_from_slice(&s.v);
-        verlet::kick_drift(&mut self.q_new, &mut self.v_new, &s.gradient, &self.masses, dt);
+        verlet::kick_drift(
+            &mut self.q_new,
+            &mut self.v_new,
+            &s.gradient,
+            &self.masses,
+            dt,
+        );
         let n = s.amplitudes.len();
         self.request.gradients.clear();
         self.request.gradients.push(s.active);
         self.request.overlaps = n > 1;
-        let res = self.backend.compute(&self.q_new, &self.request).map_err(|e| at_step(e, s.step + 1))?;
-        let gradient = res.gradient(s.active).ok_or_else(|| BackendError::Failed(format!("the back end did not return the requested gradient of state {} at step {}", s.active, s.step + 1)))?;
+        let res = self
+            .backend
+            .compute(&self.q_new, &self.request)
+            .map_err(|e| at_step(e, s.step + 1))?;
+        let gradient = res.gradient(s.active).ok_or_else(|| {
+            BackendError::Failed(format!(
+                "the back end did not return the requested gradient of state {} at step {}",
+                s.active,
+                s.step + 1
+            ))
+        })?;
         if let Some(bad) = non_finite(&res.energies, gradient) {
-            return Err(BackendError::Failed(format!("the back end returned a non-finite {bad} at step {}", s.step + 1)));
+            return Err(BackendError::Failed(format!(
+                "the back end returned a non-finite {bad} at step {}",
+                s.step + 1
+            )));
         }
         if res.energies.len() != n {
-            return Err(BackendError::Failed(format!("the back end returned {} energies for {n} states at step {}", res.energies.len(), s.step + 1)));
+            return Err(BackendError::Failed(format!(
+                "the back end returned {} energies for {n} states at step {}",
+                res.energies.len(),
+                s.step + 1
+            )));
         }
 
         verlet::kick(&mut self.v_new, gradient, &self.masses, dt);
-        if let Some(i) = self.q_new.iter().chain(&self.v_new).position(|x| !x.is_finite()) {
-            let what = if i < self.q_new.len() { format!("position {i}") } else { format!("velocity {}", i - self.q_new.len()) };
-            return Err(BackendError::Failed(format!("non-finite {what} after step {} (the gradient overflowed)", s.step + 1)));
+        if let Some(i) = self
+            .q_new
+            .iter()
+            .chain(&self.v_new)
+            .position(|x| !x.is_finite())
+        {
+            let what = if i < self.q_new.len() {
+                format!("position {i}")
+            } else {
+                format!("velocity {}", i - self.q_new.len())
+            };
+            return Err(BackendError::Failed(format!(
+                "non-finite {what} after step {} (the gradient overflowed)",
+                s.step + 1
+            )));
         }
         self.new_energies.clear();
         self.new_energies.extend_from_slice(&res.energies);
@@ -316,8 +396,13 @@ impl<'b> Trajectory<'b> {
         let mut tracking_warning = None;
         let coupling = match (&res.overlaps, n > 1) {
             (Some(raw), true) => {
-                let exchanged = check_tracking(raw, self.settings.min_overlap_determinant, s.active, &s.amplitudes)
-                    .map_err(|e| BackendError::Failed(format!("{e}, at step {}", s.step + 1)))?;
+                let exchanged = check_tracking(
+                    raw,
+                    self.settings.min_overlap_determinant,
+                    s.active,
+                    &s.amplitudes,
+                )
+                .map_err(|e| BackendError::Failed(format!("{e}, at step {}", s.step + 1)))?;
                 let patched = exchanged.as_ref().map(|x| x.patch(raw));
                 if let Some(x) = exchanged {
                     tracking_warning = Some(format!(
@@ -325,9 +410,11 @@ impl<'b> Trajectory<'b> {
                         x.states, x.determinant
                     ));
                 }
-                let (aligned, mut phases) = align_phases(patched.as_ref().unwrap_or(raw), &s.phases);
-                let c = StepCoupling::from_overlaps(&aligned, &mut phases, dt, self.settings.substeps)
-                    .map_err(|e| BackendError::Failed(e.to_string()))?;
+                let (aligned, mut phases) =
+                    align_phases(patched.as_ref().unwrap_or(raw), &s.phases);
+                let c =
+                    StepCoupling::from_overlaps(&aligned, &mut phases, dt, self.settings.substeps)
+                        .map_err(|e| BackendError::Failed(e.to_string()))?;
                 s.phases = phases;
                 c
             }
@@ -335,12 +422,21 @@ impl<'b> Trajectory<'b> {
         };
         s.diagnostics.clone_from(&res.diagnostics);
         if let Some(w) = tracking_warning {
-            s.diagnostics.warnings.push(format!("{w}, at step {}", s.step + 1));
+            s.diagnostics
+                .warnings
+                .push(format!("{w}, at step {}", s.step + 1));
         }
         std::mem::swap(&mut s.q, &mut self.q_new);
         std::mem::swap(&mut s.v, &mut self.v_new);
         s.gradient.copy_from_slice(gradient);
-        let g = coupling.propagate(&mut s.amplitudes, &s.energies, new_energies, dt, self.settings.substeps, s.active);
+        let g = coupling.propagate(
+            &mut s.amplitudes,
+            &s.energies,
+            new_energies,
+            dt,
+            self.settings.substeps,
+            s.active,
+        );
         s.energies.copy_from_slice(new_energies);
         s.step += 1;
         s.time = s.step as f64 * dt;
@@ -354,7 +450,9 @@ impl<'b> Trajectory<'b> {
         };
         let s = &mut self.state;
         let kinetic = kinetic_energy(&s.v, &self.masses);
-        self.settings.decoherence.apply(&mut s.amplitudes, s.active, &s.energies, kinetic, dt);
+        self.settings
+            .decoherence
+            .apply(&mut s.amplitudes, s.active, &s.energies, kinetic, dt);
         if let Some(h) = &hop {
             self.hops.push(h.clone());
         }
@@ -366,19 +464,36 @@ impl<'b> Trajectory<'b> {
         let from = s.active;
         let gap = s.energies[target] - s.energies[from];
         let kinetic_before = kinetic_energy(&s.v, &self.masses);
-        let missing = |what: &str| BackendError::Failed(format!("the back end did not return the {what} requested for a hop {from} → {target}, at step {}", s.step));
+        let missing = |what: &str| {
+            BackendError::Failed(format!("the back end did not return the {what} requested for a hop {from} → {target}, at step {}", s.step))
+        };
         // The target's gradient at this geometry, when the direction needed it.
         let mut target_gradient = None;
         let direction: Vec<f64> = match self.settings.hop_direction {
             HopDirection::Velocity => s.v.iter().zip(&self.masses).map(|(v, m)| m * v).collect(),
             HopDirection::Coupling => {
-                let req = Request { couplings: true, ..Request::default() };
-                let res = self.backend.compute(&s.q, &req).map_err(|e| at_step(e, s.step))?;
-                res.couplings.as_ref().ok_or_else(|| missing("coupling vectors"))?.get(from, target)
+                let req = Request {
+                    couplings: true,
+                    ..Request::default()
+                };
+                let res = self
+                    .backend
+                    .compute(&s.q, &req)
+                    .map_err(|e| at_step(e, s.step))?;
+                res.couplings
+                    .as_ref()
+                    .ok_or_else(|| missing("coupling vectors"))?
+                    .get(from, target)
             }
             HopDirection::GradientDifference => {
-                let res = self.backend.compute(&s.q, &Request::gradient_of(target)).map_err(|e| at_step(e, s.step))?;
-                let g = res.gradient(target).ok_or_else(|| missing("target gradient"))?.to_vec();
+                let res = self
+                    .backend
+                    .compute(&s.q, &Request::gradient_of(target))
+                    .map_err(|e| at_step(e, s.step))?;
+                let g = res
+                    .gradient(target)
+                    .ok_or_else(|| missing("target gradient"))?
+                    .to_vec();
                 let d = g.iter().zip(&s.gradient).map(|(t, f)| t - f).collect();
                 target_gradient = Some(g);
                 d
@@ -390,8 +505,13 @@ impl<'b> Trajectory<'b> {
             s.gradient = match target_gradient {
                 Some(g) => g,
                 None => {
-                    let res = self.backend.compute(&s.q, &Request::gradient_of(target)).map_err(|e| at_step(e, s.step))?;
-                    res.gradient(target).ok_or_else(|| missing("target gradient"))?.to_vec()
+                    let res = self
+                        .backend
+                        .compute(&s.q, &Request::gradient_of(target))
+                        .map_err(|e| at_step(e, s.step))?;
+                    res.gradient(target)
+                        .ok_or_else(|| missing("target gradient"))?
+                        .to_vec()
                 }
             };
         } else if self.settings.frustrated == FrustratedHops::Reflect {
@@ -443,7 +563,13 @@ impl<'b> Trajectory<'b> {
     /// state failed.
     pub fn run(&mut self, observer: &mut dyn Observer) -> Result<&Status, String> {
         if self.state.step == 0 && self.state.status == Status::Running {
-            let flow = observer.observe(&StepRecord { kind: RecordKind::Start, state: &self.state, masses: &self.masses, hop: None, backend: &*self.backend })?;
+            let flow = observer.observe(&StepRecord {
+                kind: RecordKind::Start,
+                state: &self.state,
+                masses: &self.masses,
+                hop: None,
+                backend: &*self.backend,
+            })?;
             if flow == Flow::Stop {
                 return Ok(&self.state.status);
             }
@@ -456,17 +582,32 @@ impl<'b> Trajectory<'b> {
             let hop = match self.step() {
                 Ok(h) => h,
                 Err(e) => {
-                    self.state.status = Status::Failed { step: self.state.step, reason: e.to_string() };
+                    self.state.status = Status::Failed {
+                        step: self.state.step,
+                        reason: e.to_string(),
+                    };
                     break;
                 }
             };
-            let flow = observer.observe(&StepRecord { kind: RecordKind::Step, state: &self.state, masses: &self.masses, hop: hop.as_ref(), backend: &*self.backend })?;
+            let flow = observer.observe(&StepRecord {
+                kind: RecordKind::Step,
+                state: &self.state,
+                masses: &self.masses,
+                hop: hop.as_ref(),
+                backend: &*self.backend,
+            })?;
             if flow == Flow::Stop {
                 return Ok(&self.state.status);
             }
         }
         // The final status is reported once more, so writers see it.
-        observer.observe(&StepRecord { kind: RecordKind::End, state: &self.state, masses: &self.masses, hop: None, backend: &*self.backend })?;
+        observer.observe(&StepRecord {
+            kind: RecordKind::End,
+            state: &self.state,
+            masses: &self.masses,
+            hop: None,
+            backend: &*self.backend,
+        })?;
         Ok(&self.state.status)
     }
 }

@@ -187,7 +187,10 @@ impl WavepacketSetup {
     /// `tests/wavepacket.rs` for the convergence checks.
     pub fn for_tully(model: &Tully, k0: f64) -> Result<Self, WavepacketError> {
         if !(k0.is_finite() && k0 > 0.0) {
-            return Err(invalid("k0", format!("must be positive and finite, got {k0}")));
+            return Err(invalid(
+                "k0",
+                format!("must be positive and finite, got {k0}"),
+            ));
         }
         let sigma = 20.0 / k0;
         let interaction = [-10.0, 10.0];
@@ -243,15 +246,24 @@ impl WavepacketSetup {
     pub fn validate<M: Diabatic1D + ?Sized>(&self, model: &M) -> Result<(), WavepacketError> {
         let mass = model.mass();
         if !(mass.is_finite() && mass > 0.0) {
-            return Err(invalid("mass", format!("must be positive and finite, got {mass}")));
+            return Err(invalid(
+                "mass",
+                format!("must be positive and finite, got {mass}"),
+            ));
         }
         if self.points < 16 || !self.points.is_power_of_two() {
-            return Err(invalid("points", format!("must be a power of two ≥ 16, got {}", self.points)));
+            return Err(invalid(
+                "points",
+                format!("must be a power of two ≥ 16, got {}", self.points),
+            ));
         }
         if !(self.x_min.is_finite() && self.x_max.is_finite() && self.x_min < self.x_max) {
             return Err(invalid(
                 "x_min",
-                format!("box [{}, {}) must be finite with x_min < x_max", self.x_min, self.x_max),
+                format!(
+                    "box [{}, {}) must be finite with x_min < x_max",
+                    self.x_min, self.x_max
+                ),
             ));
         }
         positive("sigma", self.sigma)?;
@@ -262,7 +274,10 @@ impl WavepacketSetup {
             return Err(invalid("k0", format!("must be finite, got {}", self.k0)));
         }
         if self.state > 1 {
-            return Err(invalid("state", format!("must be 0 (lower) or 1 (upper), got {}", self.state)));
+            return Err(invalid(
+                "state",
+                format!("must be 0 (lower) or 1 (upper), got {}", self.state),
+            ));
         }
         let w = self.absorber_width;
         let length = self.x_max - self.x_min;
@@ -283,7 +298,10 @@ impl WavepacketSetup {
         if !(self.x0.is_finite() && self.x_min <= self.x0 && self.x0 < self.x_max) {
             return Err(invalid(
                 "x0",
-                format!("{} lies outside the box [{}, {})", self.x0, self.x_min, self.x_max),
+                format!(
+                    "{} lies outside the box [{}, {})",
+                    self.x0, self.x_min, self.x_max
+                ),
             ));
         }
         let half = PACKET_HALF_WIDTH * self.sigma;
@@ -316,11 +334,17 @@ fn positive(parameter: &'static str, value: f64) -> Result<(), WavepacketError> 
     if value.is_finite() && value > 0.0 {
         Ok(())
     } else {
-        Err(invalid(parameter, format!("must be positive and finite, got {value}")))
+        Err(invalid(
+            parameter,
+            format!("must be positive and finite, got {value}"),
+        ))
     }
 }
 
-fn checked_matrix<M: Diabatic1D + ?Sized>(model: &M, x: f64) -> Result<[[f64; 2]; 2], WavepacketError> {
+fn checked_matrix<M: Diabatic1D + ?Sized>(
+    model: &M,
+    x: f64,
+) -> Result<[[f64; 2]; 2], WavepacketError> {
     let w = model.matrix(x);
     if w.iter().flatten().all(|v| v.is_finite()) {
         Ok(w)
@@ -350,7 +374,11 @@ fn potential_propagator(w: [[f64; 2]; 2], tau: f64) -> [Complex64; 3] {
     let phase = Complex64::from_polar(1.0, -mean * tau);
     let cos = (delta * tau).cos();
     // sin(Δτ)/Δ, with its limit τ at Δ → 0.
-    let sinc = if delta * tau > 1e-8 { (delta * tau).sin() / delta } else { tau };
+    let sinc = if delta * tau > 1e-8 {
+        (delta * tau).sin() / delta
+    } else {
+        tau
+    };
     [
         phase * Complex64::new(cos, -sinc * d),
         phase * Complex64::new(cos, sinc * d),
@@ -442,7 +470,10 @@ impl fmt::Debug for Wavepacket {
 
 impl Wavepacket {
     /// Validate the setup, tabulate the propagators and build ψ(x, 0).
-    pub fn new<M: Diabatic1D + ?Sized>(model: &M, setup: &WavepacketSetup) -> Result<Self, WavepacketError> {
+    pub fn new<M: Diabatic1D + ?Sized>(
+        model: &M,
+        setup: &WavepacketSetup,
+    ) -> Result<Self, WavepacketError> {
         setup.validate(model)?;
         let n = setup.points;
         let dx = setup.dx();
@@ -468,7 +499,11 @@ impl Wavepacket {
         let dp = 2.0 * PI / (n as f64 * dx);
         let kinetic = (0..n)
             .map(|j| {
-                let p = if j < n / 2 { j as f64 } else { j as f64 - n as f64 } * dp;
+                let p = if j < n / 2 {
+                    j as f64
+                } else {
+                    j as f64 - n as f64
+                } * dp;
                 Complex64::from_polar(1.0 / n as f64, -p * p * setup.dt / (2.0 * mass))
             })
             .collect();
@@ -483,7 +518,9 @@ impl Wavepacket {
         let mut planner = FftPlanner::new();
         let forward = planner.plan_fft_forward(n);
         let inverse = planner.plan_fft_inverse(n);
-        let scratch_len = forward.get_inplace_scratch_len().max(inverse.get_inplace_scratch_len());
+        let scratch_len = forward
+            .get_inplace_scratch_len()
+            .max(inverse.get_inplace_scratch_len());
 
         let mut packet = Self {
             setup: setup.clone(),
@@ -542,7 +579,9 @@ impl Wavepacket {
 
     /// Grid positions (bohr).
     pub fn positions(&self) -> Vec<f64> {
-        (0..self.n).map(|j| self.setup.x_min + j as f64 * self.dx).collect()
+        (0..self.n)
+            .map(|j| self.setup.x_min + j as f64 * self.dx)
+            .collect()
     }
 
     /// Diabatic components (ψ₁, ψ₂) on the grid.
@@ -582,11 +621,15 @@ impl Wavepacket {
     /// One Strang step, then absorption (if the setup has absorbers).
     pub fn step(&mut self) {
         self.apply_potential();
-        self.forward.process_with_scratch(&mut self.psi, &mut self.scratch);
+        self.forward
+            .process_with_scratch(&mut self.psi, &mut self.scratch);
         for half in self.psi.chunks_exact_mut(self.n) {
-            half.iter_mut().zip(&self.kinetic).for_each(|(v, k)| *v *= k);
+            half.iter_mut()
+                .zip(&self.kinetic)
+                .for_each(|(v, k)| *v *= k);
         }
-        self.inverse.process_with_scratch(&mut self.psi, &mut self.scratch);
+        self.inverse
+            .process_with_scratch(&mut self.psi, &mut self.scratch);
         self.apply_potential();
         self.absorb();
         self.steps += 1;
@@ -714,7 +757,10 @@ pub fn landau_zener<M: Diabatic1D + ?Sized>(
 ) -> Result<f64, WavepacketError> {
     let mass = model.mass();
     if !(mass.is_finite() && mass > 0.0) {
-        return Err(invalid("mass", format!("must be positive and finite, got {mass}")));
+        return Err(invalid(
+            "mass",
+            format!("must be positive and finite, got {mass}"),
+        ));
     }
     positive("momentum", momentum)?;
     let w = checked_matrix(model, crossing)?;

@@ -41,7 +41,10 @@ impl Request {
     }
     /// Energies and the gradient of one state.
     pub fn gradient_of(state: usize) -> Self {
-        Self { gradients: vec![state], ..Self::default() }
+        Self {
+            gradients: vec![state],
+            ..Self::default()
+        }
     }
 }
 
@@ -57,7 +60,10 @@ impl Couplings {
     /// All-zero couplings for `n_states` states and `n_dof` coordinates.
     pub fn zeros(n_states: usize, n_dof: usize) -> Self {
         let pairs = n_states * n_states.saturating_sub(1) / 2;
-        Self { n_states, vectors: vec![vec![0.0; n_dof]; pairs] }
+        Self {
+            n_states,
+            vectors: vec![vec![0.0; n_dof]; pairs],
+        }
     }
     fn index(&self, i: usize, j: usize) -> usize {
         debug_assert!(i < j && j < self.n_states);
@@ -119,7 +125,10 @@ pub struct Results {
 impl Results {
     /// The gradient of `state`, if it was computed.
     pub fn gradient(&self, state: usize) -> Option<&[f64]> {
-        self.gradients.iter().find(|(s, _)| *s == state).map(|(_, g)| g.as_slice())
+        self.gradients
+            .iter()
+            .find(|(s, _)| *s == state)
+            .map(|(_, g)| g.as_slice())
     }
 }
 
@@ -184,7 +193,10 @@ pub trait Backend: Send {
 /// Check the common preconditions of a compute call.
 pub fn check_geometry(q: &[f64], expected: usize) -> Result<(), BackendError> {
     if q.len() != expected {
-        return Err(BackendError::Dimension { expected, got: q.len() });
+        return Err(BackendError::Dimension {
+            expected,
+            got: q.len(),
+        });
     }
     if let Some(index) = q.iter().position(|x| !x.is_finite()) {
         return Err(BackendError::NonFinite { index });

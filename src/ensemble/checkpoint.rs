@@ -49,7 +49,10 @@ pub struct Checkpoint {
 pub enum CheckpointError {
     /// Reading or writing failed.
     #[error("{path}: {source}")]
-    Io { path: PathBuf, source: std::io::Error },
+    Io {
+        path: PathBuf,
+        source: std::io::Error,
+    },
     /// The file is damaged or not a checkpoint.
     #[error("{path}: damaged checkpoint: {reason}")]
     Damaged { path: PathBuf, reason: String },
@@ -66,7 +69,9 @@ pub enum Source {
 
 /// FNV-1a, 64 bits.
 pub fn fnv1a(bytes: &[u8]) -> u64 {
-    bytes.iter().fold(0xcbf2_9ce4_8422_2325u64, |h, &b| (h ^ b as u64).wrapping_mul(0x0100_0000_01b3))
+    bytes.iter().fold(0xcbf2_9ce4_8422_2325u64, |h, &b| {
+        (h ^ b as u64).wrapping_mul(0x0100_0000_01b3)
+    })
 }
 
 /// The checkpoint path of trajectory `index` in directory `dir`.
@@ -82,7 +87,10 @@ pub(crate) fn with_suffix(path: &Path, suffix: &str) -> PathBuf {
 }
 
 fn io(path: &Path) -> impl FnOnce(std::io::Error) -> CheckpointError + '_ {
-    move |source| CheckpointError::Io { path: path.to_path_buf(), source }
+    move |source| CheckpointError::Io {
+        path: path.to_path_buf(),
+        source,
+    }
 }
 
 /// Write `ckpt` to `path` atomically, keeping the previous checkpoint as `path.prev`.
@@ -117,7 +125,10 @@ pub fn write(path: &Path, ckpt: &Checkpoint) -> Result<(), CheckpointError> {
 pub fn write_batch(items: &[(PathBuf, Checkpoint)]) -> Result<(), CheckpointError> {
     let mut dirs: Vec<PathBuf> = Vec::new();
     for (path, ckpt) in items {
-        let json = serde_json::to_string(ckpt).map_err(|e| CheckpointError::Damaged { path: path.to_path_buf(), reason: format!("cannot serialise: {e}") })?;
+        let json = serde_json::to_string(ckpt).map_err(|e| CheckpointError::Damaged {
+            path: path.to_path_buf(),
+            reason: format!("cannot serialise: {e}"),
+        })?;
         let tmp = with_suffix(path, ".tmp");
         {
             let mut f = fs::File::create(&tmp).map_err(io(&tmp))?;
@@ -149,8 +160,13 @@ pub fn write_batch(items: &[(PathBuf, Checkpoint)]) -> Result<(), CheckpointErro
 /// Read and verify one checkpoint file.
 pub fn read_file(path: &Path) -> Result<Checkpoint, CheckpointError> {
     let text = fs::read_to_string(path).map_err(io(path))?;
-    let damaged = |reason: String| CheckpointError::Damaged { path: path.to_path_buf(), reason };
-    let (json, tail) = text.split_once('\n').ok_or_else(|| damaged("no checksum line (truncated?)".into()))?;
+    let damaged = |reason: String| CheckpointError::Damaged {
+        path: path.to_path_buf(),
+        reason,
+    };
+    let (json, tail) = text
+        .split_once('\n')
+        .ok_or_else(|| damaged("no checksum line (truncated?)".into()))?;
     let sum = tail
         .trim()
         .strip_prefix("checksum ")
@@ -161,7 +177,10 @@ pub fn read_file(path: &Path) -> Result<Checkpoint, CheckpointError> {
     }
     let ckpt: Checkpoint = serde_json::from_str(json).map_err(|e| damaged(e.to_string()))?;
     if ckpt.format != FORMAT || ckpt.version != 1 {
-        return Err(damaged(format!("format `{}` version {} is not {FORMAT} version 1", ckpt.format, ckpt.version)));
+        return Err(damaged(format!(
+            "format `{}` version {} is not {FORMAT} version 1",
+            ckpt.format, ckpt.version
+        )));
     }
     Ok(ckpt)
 }
@@ -170,7 +189,10 @@ pub fn read_file(path: &Path) -> Result<Checkpoint, CheckpointError> {
 /// met on the way (for the log). `Ok(None)` when there is none at all.
 pub fn read_best(path: &Path) -> (Option<(Checkpoint, Source)>, Vec<CheckpointError>) {
     let mut problems = Vec::new();
-    for (p, source) in [(path.to_path_buf(), Source::Latest), (with_suffix(path, ".prev"), Source::Previous)] {
+    for (p, source) in [
+        (path.to_path_buf(), Source::Latest),
+        (with_suffix(path, ".prev"), Source::Previous),
+    ] {
         if !p.exists() {
             continue;
         }
@@ -184,7 +206,11 @@ pub fn read_best(path: &Path) -> (Option<(Checkpoint, Source)>, Vec<CheckpointEr
 
 /// Remove a trajectory's checkpoint files (after it has ended and its data is on disk).
 pub fn remove(path: &Path) {
-    for p in [path.to_path_buf(), with_suffix(path, ".prev"), with_suffix(path, ".tmp")] {
+    for p in [
+        path.to_path_buf(),
+        with_suffix(path, ".prev"),
+        with_suffix(path, ".tmp"),
+    ] {
         let _ = fs::remove_file(p);
     }
 }

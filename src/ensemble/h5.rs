@@ -115,7 +115,9 @@ use hdf5::types::VarLenUnicode;
 use hdf5::{Dataset, File, Group, H5Type, Location};
 use num_complex::Complex64;
 
-use super::record::{Hop, PartMeta, RowBlock, RowDiagnostics, Status, StepRow, TrajectoryHeader, WarningRow};
+use super::record::{
+    Hop, PartMeta, RowBlock, RowDiagnostics, Status, StepRow, TrajectoryHeader, WarningRow,
+};
 use crate::dynamics::EndReason;
 
 /// Value of the root attribute `format`.
@@ -151,10 +153,16 @@ const MAX_OPEN_TRAJECTORIES: usize = 256;
 /// test's) would otherwise inherit the descriptor and keep the file locked
 /// until it exits. Best effort: without /proc nothing happens.
 pub fn close_on_exec(path: &Path) {
-    let Ok(target) = std::fs::canonicalize(path) else { return };
-    let Ok(entries) = std::fs::read_dir("/proc/self/fd") else { return };
+    let Ok(target) = std::fs::canonicalize(path) else {
+        return;
+    };
+    let Ok(entries) = std::fs::read_dir("/proc/self/fd") else {
+        return;
+    };
     for entry in entries.flatten() {
-        let Ok(fd) = entry.file_name().to_string_lossy().parse::<i32>() else { continue };
+        let Ok(fd) = entry.file_name().to_string_lossy().parse::<i32>() else {
+            continue;
+        };
         if std::fs::read_link(entry.path()).is_ok_and(|p| p == target) {
             // SAFETY: F_GETFD/F_SETFD on a descriptor number only change its
             // close-on-exec flag; an fd closed meanwhile makes them fail harmlessly.
@@ -178,13 +186,26 @@ const CLOSED: &str = "closed";
 pub enum EnsembleError {
     /// The HDF5 library reported an error.
     #[error("{file}: {object}: {what}: {source}")]
-    Hdf5 { file: PathBuf, object: String, what: String, source: hdf5::Error },
+    Hdf5 {
+        file: PathBuf,
+        object: String,
+        what: String,
+        source: hdf5::Error,
+    },
     /// The file is readable HDF5 but does not hold what the layout requires.
     #[error("{file}: {object}: {what}")]
-    Layout { file: PathBuf, object: String, what: String },
+    Layout {
+        file: PathBuf,
+        object: String,
+        what: String,
+    },
     /// A caller passed data that does not fit the file.
     #[error("{file}: {object}: {what}")]
-    Input { file: PathBuf, object: String, what: String },
+    Input {
+        file: PathBuf,
+        object: String,
+        what: String,
+    },
     /// Refused to overwrite an existing file.
     #[error("{file}: already exists; refusing to overwrite it")]
     Exists { file: PathBuf },
@@ -193,16 +214,28 @@ pub enum EnsembleError {
     NotClosed { file: PathBuf },
     /// Two parts that cannot belong to the same ensemble.
     #[error("{first} and {second} are parts of different ensembles: {what} differs")]
-    Mismatch { first: PathBuf, second: PathBuf, what: String },
+    Mismatch {
+        first: PathBuf,
+        second: PathBuf,
+        what: String,
+    },
     /// The same trajectory in two parts.
     #[error("trajectory {index} is in both {first} and {second}")]
-    Duplicate { index: usize, first: PathBuf, second: PathBuf },
+    Duplicate {
+        index: usize,
+        first: PathBuf,
+        second: PathBuf,
+    },
     /// The merged file does not hold what was put in.
     #[error("{file}: verification after merging failed: {what}")]
     Verify { file: PathBuf, what: String },
     /// An operating-system error outside HDF5.
     #[error("{file}: {what}: {source}")]
-    Io { file: PathBuf, what: String, source: std::io::Error },
+    Io {
+        file: PathBuf,
+        what: String,
+        source: std::io::Error,
+    },
 }
 
 /// Where a trajectory stands, with the distinctions [`Status`] does not make.
@@ -233,7 +266,15 @@ impl Phase {
     }
 
     fn parse(s: &str) -> Option<Self> {
-        [Phase::Pending, Phase::Running, Phase::Stopped, Phase::Finished, Phase::Failed].into_iter().find(|p| p.as_str() == s)
+        [
+            Phase::Pending,
+            Phase::Running,
+            Phase::Stopped,
+            Phase::Finished,
+            Phase::Failed,
+        ]
+        .into_iter()
+        .find(|p| p.as_str() == s)
     }
 }
 
@@ -354,8 +395,18 @@ struct Spec {
     description: &'static str,
 }
 
-const TIME: Spec = Spec { name: "time", width: Width::One, units: "a.u. of time", description: "Time of each recorded step." };
-const STEP: Spec = Spec { name: "step", width: Width::One, units: "1", description: "Step number of each row; 0 is the initial point." };
+const TIME: Spec = Spec {
+    name: "time",
+    width: Width::One,
+    units: "a.u. of time",
+    description: "Time of each recorded step.",
+};
+const STEP: Spec = Spec {
+    name: "step",
+    width: Width::One,
+    units: "1",
+    description: "Step number of each row; 0 is the initial point.",
+};
 const POSITIONS: Spec = Spec {
     name: "positions",
     width: Width::Dof,
@@ -378,7 +429,8 @@ const ACTIVE: Spec = Spec {
     name: "active_state",
     width: Width::One,
     units: "1",
-    description: "Active (driving) electronic state of each row, 0-based index into the columns of energies.",
+    description:
+        "Active (driving) electronic state of each row, 0-based index into the columns of energies.",
 };
 const AMPLITUDES: Spec = Spec {
     name: "amplitudes",
@@ -386,7 +438,12 @@ const AMPLITUDES: Spec = Spec {
     units: "1",
     description: "Electronic amplitudes in the adiabatic basis (complex: compound of real part r and imaginary part i); populations are |amplitude|^2.",
 };
-const KINETIC: Spec = Spec { name: "kinetic_energy", width: Width::One, units: "hartree", description: "Nuclear kinetic energy of each row." };
+const KINETIC: Spec = Spec {
+    name: "kinetic_energy",
+    width: Width::One,
+    units: "hartree",
+    description: "Nuclear kinetic energy of each row.",
+};
 const POTENTIAL: Spec = Spec {
     name: "potential_energy",
     width: Width::One,
@@ -410,7 +467,8 @@ const RESPONSE_ITERATIONS: Spec = Spec {
     name: "response_iterations",
     width: Width::One,
     units: "1",
-    description: "Iterations of the back end's excited-state eigensolver at each row's step; -1 means none.",
+    description:
+        "Iterations of the back end's excited-state eigensolver at each row's step; -1 means none.",
 };
 const SPIN_SQUARED: Spec = Spec {
     name: "spin_squared",
@@ -420,25 +478,79 @@ const SPIN_SQUARED: Spec = Spec {
 };
 
 /// The per-step datasets, in the order they are written.
-const ROW_SPECS: [&Spec; 13] = [&TIME, &STEP, &POSITIONS, &VELOCITIES, &ENERGIES, &ACTIVE, &AMPLITUDES, &KINETIC, &POTENTIAL, &TOTAL, &SOLVER_ITERATIONS, &RESPONSE_ITERATIONS, &SPIN_SQUARED];
+const ROW_SPECS: [&Spec; 13] = [
+    &TIME,
+    &STEP,
+    &POSITIONS,
+    &VELOCITIES,
+    &ENERGIES,
+    &ACTIVE,
+    &AMPLITUDES,
+    &KINETIC,
+    &POTENTIAL,
+    &TOTAL,
+    &SOLVER_ITERATIONS,
+    &RESPONSE_ITERATIONS,
+    &SPIN_SQUARED,
+];
 
-const WARN_STEP: Spec = Spec { name: "step", width: Width::One, units: "1", description: "Step whose back-end call issued the warning." };
-const WARN_TEXT: Spec = Spec { name: "text", width: Width::One, units: "text", description: "The back end's warning (variable-length UTF-8)." };
+const WARN_STEP: Spec = Spec {
+    name: "step",
+    width: Width::One,
+    units: "1",
+    description: "Step whose back-end call issued the warning.",
+};
+const WARN_TEXT: Spec = Spec {
+    name: "text",
+    width: Width::One,
+    units: "text",
+    description: "The back end's warning (variable-length UTF-8).",
+};
 /// Rows per chunk of the warning table.
 const WARN_CHUNK_ROWS: usize = 64;
 
-const HOP_STEP: Spec = Spec { name: "step", width: Width::One, units: "1", description: "Step after which the hop attempt happened." };
-const HOP_TIME: Spec = Spec { name: "time", width: Width::One, units: "a.u. of time", description: "Time of the hop attempt." };
-const HOP_FROM: Spec = Spec { name: "from_state", width: Width::One, units: "1", description: "Active state before the attempt (0-based)." };
-const HOP_TO: Spec = Spec { name: "to_state", width: Width::One, units: "1", description: "Target state of the attempt (0-based)." };
+const HOP_STEP: Spec = Spec {
+    name: "step",
+    width: Width::One,
+    units: "1",
+    description: "Step after which the hop attempt happened.",
+};
+const HOP_TIME: Spec = Spec {
+    name: "time",
+    width: Width::One,
+    units: "a.u. of time",
+    description: "Time of the hop attempt.",
+};
+const HOP_FROM: Spec = Spec {
+    name: "from_state",
+    width: Width::One,
+    units: "1",
+    description: "Active state before the attempt (0-based).",
+};
+const HOP_TO: Spec = Spec {
+    name: "to_state",
+    width: Width::One,
+    units: "1",
+    description: "Target state of the attempt (0-based).",
+};
 const HOP_ACCEPTED: Spec = Spec {
     name: "accepted",
     width: Width::One,
     units: "1",
     description: "1 if the hop happened, 0 if it was frustrated (not enough kinetic energy).",
 };
-const HOP_GAP: Spec = Spec { name: "energy_gap", width: Width::One, units: "hartree", description: "E(to_state) - E(from_state) at the attempt." };
-const HOP_KIN_BEFORE: Spec = Spec { name: "kinetic_before", width: Width::One, units: "hartree", description: "Nuclear kinetic energy before the attempt." };
+const HOP_GAP: Spec = Spec {
+    name: "energy_gap",
+    width: Width::One,
+    units: "hartree",
+    description: "E(to_state) - E(from_state) at the attempt.",
+};
+const HOP_KIN_BEFORE: Spec = Spec {
+    name: "kinetic_before",
+    width: Width::One,
+    units: "hartree",
+    description: "Nuclear kinetic energy before the attempt.",
+};
 const HOP_KIN_AFTER: Spec = Spec {
     name: "kinetic_after",
     width: Width::One,
@@ -447,7 +559,16 @@ const HOP_KIN_AFTER: Spec = Spec {
 };
 
 /// The hop datasets (inside `hops/`), in the order they are written.
-const HOP_SPECS: [&Spec; 8] = [&HOP_STEP, &HOP_TIME, &HOP_FROM, &HOP_TO, &HOP_ACCEPTED, &HOP_GAP, &HOP_KIN_BEFORE, &HOP_KIN_AFTER];
+const HOP_SPECS: [&Spec; 8] = [
+    &HOP_STEP,
+    &HOP_TIME,
+    &HOP_FROM,
+    &HOP_TO,
+    &HOP_ACCEPTED,
+    &HOP_GAP,
+    &HOP_KIN_BEFORE,
+    &HOP_KIN_AFTER,
+];
 
 // ---------------------------------------------------------------------------
 // Error context
@@ -460,15 +581,28 @@ struct Ctx<'a>(&'a Path);
 impl<'a> Ctx<'a> {
     fn h5(self, object: &str, what: &str) -> impl FnOnce(hdf5::Error) -> EnsembleError + 'a {
         let (object, what) = (object.to_string(), what.to_string());
-        move |source| EnsembleError::Hdf5 { file: self.0.to_path_buf(), object, what, source }
+        move |source| EnsembleError::Hdf5 {
+            file: self.0.to_path_buf(),
+            object,
+            what,
+            source,
+        }
     }
 
     fn layout(self, object: &str, what: impl Into<String>) -> EnsembleError {
-        EnsembleError::Layout { file: self.0.to_path_buf(), object: object.to_string(), what: what.into() }
+        EnsembleError::Layout {
+            file: self.0.to_path_buf(),
+            object: object.to_string(),
+            what: what.into(),
+        }
     }
 
     fn input(self, object: &str, what: impl Into<String>) -> EnsembleError {
-        EnsembleError::Input { file: self.0.to_path_buf(), object: object.to_string(), what: what.into() }
+        EnsembleError::Input {
+            file: self.0.to_path_buf(),
+            object: object.to_string(),
+            what: what.into(),
+        }
     }
 }
 
@@ -487,39 +621,81 @@ fn group_path(index: usize) -> String {
 // ---------------------------------------------------------------------------
 
 fn vlen(cx: Ctx, object: &str, name: &str, value: &str) -> Result<VarLenUnicode, EnsembleError> {
-    VarLenUnicode::from_str(value).map_err(|e| cx.input(object, format!("attribute `{name}`: cannot be stored: {e}")))
+    VarLenUnicode::from_str(value)
+        .map_err(|e| cx.input(object, format!("attribute `{name}`: cannot be stored: {e}")))
 }
 
 /// Writes (creating or overwriting) a scalar attribute.
-fn put_attr<T: H5Type>(cx: Ctx, loc: &Location, object: &str, name: &str, value: &T) -> Result<(), EnsembleError> {
+fn put_attr<T: H5Type>(
+    cx: Ctx,
+    loc: &Location,
+    object: &str,
+    name: &str,
+    value: &T,
+) -> Result<(), EnsembleError> {
     let what = format!("writing attribute `{name}`");
-    if loc.attr_names().map_err(cx.h5(object, &what))?.iter().any(|n| n == name) {
+    if loc
+        .attr_names()
+        .map_err(cx.h5(object, &what))?
+        .iter()
+        .any(|n| n == name)
+    {
         let attr = loc.attr(name).map_err(cx.h5(object, &what))?;
         if attr.dtype().map_err(cx.h5(object, &what))?.is::<T>() {
             return attr.write_scalar(value).map_err(cx.h5(object, &what));
         }
         loc.delete_attr(name).map_err(cx.h5(object, &what))?;
     }
-    loc.new_attr::<T>().shape(()).create(name).map_err(cx.h5(object, &what))?.write_scalar(value).map_err(cx.h5(object, &what))
+    loc.new_attr::<T>()
+        .shape(())
+        .create(name)
+        .map_err(cx.h5(object, &what))?
+        .write_scalar(value)
+        .map_err(cx.h5(object, &what))
 }
 
-fn put_str(cx: Ctx, loc: &Location, object: &str, name: &str, value: &str) -> Result<(), EnsembleError> {
+fn put_str(
+    cx: Ctx,
+    loc: &Location,
+    object: &str,
+    name: &str,
+    value: &str,
+) -> Result<(), EnsembleError> {
     put_attr(cx, loc, object, name, &vlen(cx, object, name, value)?)
 }
 
-fn get_attr<T: H5Type>(cx: Ctx, loc: &Location, object: &str, name: &str) -> Result<T, EnsembleError> {
+fn get_attr<T: H5Type>(
+    cx: Ctx,
+    loc: &Location,
+    object: &str,
+    name: &str,
+) -> Result<T, EnsembleError> {
     let what = format!("reading attribute `{name}`");
-    let attr = loc.attr(name).map_err(|_| cx.layout(object, format!("attribute `{name}` is missing")))?;
+    let attr = loc
+        .attr(name)
+        .map_err(|_| cx.layout(object, format!("attribute `{name}` is missing")))?;
     attr.read_scalar::<T>().map_err(cx.h5(object, &what))
 }
 
 fn get_str(cx: Ctx, loc: &Location, object: &str, name: &str) -> Result<String, EnsembleError> {
-    Ok(get_attr::<VarLenUnicode>(cx, loc, object, name)?.as_str().to_string())
+    Ok(get_attr::<VarLenUnicode>(cx, loc, object, name)?
+        .as_str()
+        .to_string())
 }
 
 /// An optional count attribute (absent in files that predate it: 0).
-fn get_opt_usize(cx: Ctx, loc: &Location, object: &str, name: &str) -> Result<usize, EnsembleError> {
-    if loc.attr_names().map_err(cx.h5(object, "listing attributes"))?.iter().any(|n| n == name) {
+fn get_opt_usize(
+    cx: Ctx,
+    loc: &Location,
+    object: &str,
+    name: &str,
+) -> Result<usize, EnsembleError> {
+    if loc
+        .attr_names()
+        .map_err(cx.h5(object, "listing attributes"))?
+        .iter()
+        .any(|n| n == name)
+    {
         get_usize(cx, loc, object, name)
     } else {
         Ok(0)
@@ -528,7 +704,12 @@ fn get_opt_usize(cx: Ctx, loc: &Location, object: &str, name: &str) -> Result<us
 
 fn get_usize(cx: Ctx, loc: &Location, object: &str, name: &str) -> Result<usize, EnsembleError> {
     let v = get_attr::<u64>(cx, loc, object, name)?;
-    usize::try_from(v).map_err(|_| cx.layout(object, format!("attribute `{name}` = {v} does not fit this machine")))
+    usize::try_from(v).map_err(|_| {
+        cx.layout(
+            object,
+            format!("attribute `{name}` = {v} does not fit this machine"),
+        )
+    })
 }
 
 // ---------------------------------------------------------------------------
@@ -554,16 +735,33 @@ fn label(cx: Ctx, ds: &Dataset, object: &str, spec: &Spec) -> Result<(), Ensembl
 }
 
 /// Creates an extendible dataset with zero rows.
-fn create_series<T: H5Type>(cx: Ctx, group: &Group, parent: &str, spec: &Spec, width: usize, max_rows: usize) -> Result<Dataset, EnsembleError> {
+fn create_series<T: H5Type>(
+    cx: Ctx,
+    group: &Group,
+    parent: &str,
+    spec: &Spec,
+    width: usize,
+    max_rows: usize,
+) -> Result<Dataset, EnsembleError> {
     let object = format!("{parent}/{}", spec.name);
     let rows = chunk_rows(width, std::mem::size_of::<T>()).min(max_rows);
     // HDF5 cannot checksum variable-length data (the strings live on its heap).
-    let varlen = matches!(T::type_descriptor(), hdf5::types::TypeDescriptor::VarLenUnicode | hdf5::types::TypeDescriptor::VarLenAscii);
-    let builder = if varlen { group.new_dataset::<T>() } else { group.new_dataset::<T>().fletcher32() };
+    let varlen = matches!(
+        T::type_descriptor(),
+        hdf5::types::TypeDescriptor::VarLenUnicode | hdf5::types::TypeDescriptor::VarLenAscii
+    );
+    let builder = if varlen {
+        group.new_dataset::<T>()
+    } else {
+        group.new_dataset::<T>().fletcher32()
+    };
     let made = if matches!(spec.width, Width::One) {
         builder.chunk(rows).shape(0..).create(spec.name)
     } else {
-        builder.chunk((rows, width)).shape((0.., width)).create(spec.name)
+        builder
+            .chunk((rows, width))
+            .shape((0.., width))
+            .create(spec.name)
     };
     let ds = made.map_err(cx.h5(&object, "creating dataset"))?;
     label(cx, &ds, &object, spec)?;
@@ -571,7 +769,13 @@ fn create_series<T: H5Type>(cx: Ctx, group: &Group, parent: &str, spec: &Spec, w
 }
 
 /// Creates a fixed one-dimensional dataset holding `data` (at least one element).
-fn create_fixed<T: H5Type>(cx: Ctx, group: &Group, parent: &str, spec: &Spec, data: &[T]) -> Result<(), EnsembleError> {
+fn create_fixed<T: H5Type>(
+    cx: Ctx,
+    group: &Group,
+    parent: &str,
+    spec: &Spec,
+    data: &[T],
+) -> Result<(), EnsembleError> {
     let object = format!("{parent}/{}", spec.name);
     let ds = group
         .new_dataset::<T>()
@@ -585,11 +789,20 @@ fn create_fixed<T: H5Type>(cx: Ctx, group: &Group, parent: &str, spec: &Spec, da
 }
 
 fn open_ds(cx: Ctx, group: &Group, parent: &str, name: &str) -> Result<Dataset, EnsembleError> {
-    group.dataset(name).map_err(|_| cx.layout(&format!("{parent}/{name}"), "dataset is missing"))
+    group
+        .dataset(name)
+        .map_err(|_| cx.layout(&format!("{parent}/{name}"), "dataset is missing"))
 }
 
 /// Appends `data` (rows of `width` elements, row-major) at row `start`.
-fn append_rows<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, start: usize, width: usize, data: &[T]) -> Result<(), EnsembleError> {
+fn append_rows<T: H5Type>(
+    cx: Ctx,
+    ds: &Dataset,
+    object: &str,
+    start: usize,
+    width: usize,
+    data: &[T],
+) -> Result<(), EnsembleError> {
     let n = data.len() / width.max(1);
     if n == 0 {
         return Ok(());
@@ -597,13 +810,17 @@ fn append_rows<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, start: usize, wid
     let end = start + n;
     if width == 1 && ds.ndim() == 1 {
         ds.resize(end).map_err(cx.h5(object, "extending"))?;
-        return ds.write_slice(data, start..end).map_err(cx.h5(object, "writing rows"));
+        return ds
+            .write_slice(data, start..end)
+            .map_err(cx.h5(object, "writing rows"));
     }
-    ds.resize((end, width)).map_err(cx.h5(object, "extending"))?;
+    ds.resize((end, width))
+        .map_err(cx.h5(object, "extending"))?;
     // One block write for all rows (the bindings take 2-D blocks as ndarray views).
     let block = ndarray::ArrayView2::from_shape((n, width), &data[..n * width])
         .map_err(|e| cx.layout(object, format!("row block of {n}×{width}: {e}")))?;
-    ds.write_slice(&block, (start..end, ..)).map_err(cx.h5(object, "writing rows"))
+    ds.write_slice(&block, (start..end, ..))
+        .map_err(cx.h5(object, "writing rows"))
 }
 
 /// Number of rows of a dataset.
@@ -612,14 +829,27 @@ fn n_rows(ds: &Dataset) -> u64 {
 }
 
 /// Reads a whole dataset, checking its shape is (rows) or (rows, width).
-fn read_rows<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, rows: usize, width: Option<usize>) -> Result<Vec<T>, EnsembleError> {
+fn read_rows<T: H5Type>(
+    cx: Ctx,
+    ds: &Dataset,
+    object: &str,
+    rows: usize,
+    width: Option<usize>,
+) -> Result<Vec<T>, EnsembleError> {
     read_rows_from(cx, ds, object, rows, width, false)
 }
 
 /// With `prefix`, a dataset longer than `rows` is accepted and its first
 /// `rows` rows are returned (files of killed writers, see
 /// [`PartReader::read_prefix`]).
-fn read_rows_from<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, rows: usize, width: Option<usize>, prefix: bool) -> Result<Vec<T>, EnsembleError> {
+fn read_rows_from<T: H5Type>(
+    cx: Ctx,
+    ds: &Dataset,
+    object: &str,
+    rows: usize,
+    width: Option<usize>,
+    prefix: bool,
+) -> Result<Vec<T>, EnsembleError> {
     let shape = ds.shape();
     if prefix {
         let w = width.unwrap_or(1);
@@ -628,10 +858,23 @@ fn read_rows_from<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, rows: usize, w
             Some(w) => shape.len() == 2 && shape[0] >= rows && shape[1] == w,
         };
         if !ok {
-            return Err(cx.layout(object, format!("has shape {shape:?}, expected at least {rows} rows of width {w}")));
+            return Err(cx.layout(
+                object,
+                format!("has shape {shape:?}, expected at least {rows} rows of width {w}"),
+            ));
         }
-        if !ds.dtype().map_err(cx.h5(object, "reading the type"))?.is::<T>() {
-            return Err(cx.layout(object, format!("has an unexpected element type (expected {})", std::any::type_name::<T>())));
+        if !ds
+            .dtype()
+            .map_err(cx.h5(object, "reading the type"))?
+            .is::<T>()
+        {
+            return Err(cx.layout(
+                object,
+                format!(
+                    "has an unexpected element type (expected {})",
+                    std::any::type_name::<T>()
+                ),
+            ));
         }
         let mut all = ds.read_raw::<T>().map_err(cx.h5(object, "reading"))?;
         all.truncate(rows * w);
@@ -642,10 +885,23 @@ fn read_rows_from<T: H5Type>(cx: Ctx, ds: &Dataset, object: &str, rows: usize, w
         Some(w) => vec![rows, w],
     };
     if shape != expected {
-        return Err(cx.layout(object, format!("has shape {shape:?}, expected {expected:?}")));
+        return Err(cx.layout(
+            object,
+            format!("has shape {shape:?}, expected {expected:?}"),
+        ));
     }
-    if !ds.dtype().map_err(cx.h5(object, "reading the type"))?.is::<T>() {
-        return Err(cx.layout(object, format!("has an unexpected element type (expected {})", std::any::type_name::<T>())));
+    if !ds
+        .dtype()
+        .map_err(cx.h5(object, "reading the type"))?
+        .is::<T>()
+    {
+        return Err(cx.layout(
+            object,
+            format!(
+                "has an unexpected element type (expected {})",
+                std::any::type_name::<T>()
+            ),
+        ));
     }
     ds.read_raw::<T>().map_err(cx.h5(object, "reading"))
 }
@@ -664,7 +920,14 @@ fn end_reason_str(r: EndReason) -> &'static str {
 }
 
 fn parse_end_reason(s: &str) -> Option<EndReason> {
-    [EndReason::TimeLimit, EndReason::ExitLow, EndReason::ExitHigh, EndReason::Observer].into_iter().find(|r| end_reason_str(*r) == s)
+    [
+        EndReason::TimeLimit,
+        EndReason::ExitLow,
+        EndReason::ExitHigh,
+        EndReason::Observer,
+    ]
+    .into_iter()
+    .find(|r| end_reason_str(*r) == s)
 }
 
 /// The attribute values of a status: (status word, end_reason, failure_step, failure_reason).
@@ -672,11 +935,22 @@ fn status_attrs(status: &Status) -> (Phase, &'static str, i64, &str) {
     match status {
         Status::Running => (Phase::Running, "", -1, ""),
         Status::Finished(r) => (Phase::Finished, end_reason_str(*r), -1, ""),
-        Status::Failed { step, reason } => (Phase::Failed, "", i64::try_from(*step).unwrap_or(i64::MAX), reason.as_str()),
+        Status::Failed { step, reason } => (
+            Phase::Failed,
+            "",
+            i64::try_from(*step).unwrap_or(i64::MAX),
+            reason.as_str(),
+        ),
     }
 }
 
-fn write_status(cx: Ctx, g: &Group, object: &str, status: &Status, phase: Phase) -> Result<(), EnsembleError> {
+fn write_status(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    status: &Status,
+    phase: Phase,
+) -> Result<(), EnsembleError> {
     let (_, end, step, reason) = status_attrs(status);
     put_str(cx, g, object, "status", phase.as_str())?;
     put_str(cx, g, object, "end_reason", end)?;
@@ -691,12 +965,25 @@ fn read_status(cx: Ctx, g: &Group, object: &str) -> Result<(Status, Phase), Ense
         Phase::Pending | Phase::Running | Phase::Stopped => Status::Running,
         Phase::Finished => {
             let r = get_str(cx, g, object, "end_reason")?;
-            Status::Finished(parse_end_reason(&r).ok_or_else(|| cx.layout(object, format!("attribute `end_reason` = {r:?} is not a known end reason")))?)
+            Status::Finished(parse_end_reason(&r).ok_or_else(|| {
+                cx.layout(
+                    object,
+                    format!("attribute `end_reason` = {r:?} is not a known end reason"),
+                )
+            })?)
         }
         Phase::Failed => {
             let step = get_attr::<i64>(cx, g, object, "failure_step")?;
-            let step = u64::try_from(step).map_err(|_| cx.layout(object, format!("attribute `failure_step` = {step} on a failed trajectory")))?;
-            Status::Failed { step, reason: get_str(cx, g, object, "failure_reason")? }
+            let step = u64::try_from(step).map_err(|_| {
+                cx.layout(
+                    object,
+                    format!("attribute `failure_step` = {step} on a failed trajectory"),
+                )
+            })?;
+            Status::Failed {
+                step,
+                reason: get_str(cx, g, object, "failure_reason")?,
+            }
         }
     };
     Ok((status, phase))
@@ -709,13 +996,23 @@ fn read_status(cx: Ctx, g: &Group, object: &str) -> Result<(Status, Phase), Ense
 fn check_meta(cx: Ctx, meta: &PartMeta) -> Result<(), EnsembleError> {
     let bad = |what: String| Err(cx.input("/", what));
     if meta.n_states == 0 || meta.n_dof == 0 {
-        return bad(format!("n_states = {} and n_dof = {} must both be at least 1", meta.n_states, meta.n_dof));
+        return bad(format!(
+            "n_states = {} and n_dof = {} must both be at least 1",
+            meta.n_states, meta.n_dof
+        ));
     }
     if meta.masses.len() != meta.n_dof {
-        return bad(format!("{} masses for n_dof = {}", meta.masses.len(), meta.n_dof));
+        return bad(format!(
+            "{} masses for n_dof = {}",
+            meta.masses.len(),
+            meta.n_dof
+        ));
     }
     if meta.slice.0 >= meta.slice.1 {
-        return bad(format!("slice ({}, {}) needs k < n", meta.slice.0, meta.slice.1));
+        return bad(format!(
+            "slice ({}, {}) needs k < n",
+            meta.slice.0, meta.slice.1
+        ));
     }
     if meta.trajectories.windows(2).any(|w| w[0] >= w[1]) {
         return bad("trajectory indices must be strictly ascending".into());
@@ -752,14 +1049,28 @@ fn write_meta(cx: Ctx, file: &File, meta: &PartMeta) -> Result<(), EnsembleError
         .map_err(cx.h5(object, "creating dataset"))?;
     append_rows(cx, &ds, object, 0, 1, &indices)?;
     label(cx, &ds, object, &spec)?;
-    let traj = file.create_group("trajectories").map_err(cx.h5("/trajectories", "creating group"))?;
-    put_str(cx, &traj, "/trajectories", "description", TRAJECTORIES_DESCRIPTION)
+    let traj = file
+        .create_group("trajectories")
+        .map_err(cx.h5("/trajectories", "creating group"))?;
+    put_str(
+        cx,
+        &traj,
+        "/trajectories",
+        "description",
+        TRAJECTORIES_DESCRIPTION,
+    )
 }
 
 fn check_format(cx: Ctx, file: &File) -> Result<(), EnsembleError> {
     let format = get_attr::<VarLenUnicode>(cx, file, "/", "format").map_err(|_| cx.layout("/", format!("not a part file: the root attribute `format` = {FORMAT:?} is missing or unreadable")))?;
     if format.as_str() != FORMAT {
-        return Err(cx.layout("/", format!("attribute `format` = {:?}, expected {FORMAT:?}", format.as_str())));
+        return Err(cx.layout(
+            "/",
+            format!(
+                "attribute `format` = {:?}, expected {FORMAT:?}",
+                format.as_str()
+            ),
+        ));
     }
     let version = get_attr::<u64>(cx, file, "/", "format_version")?;
     if version != FORMAT_VERSION {
@@ -772,12 +1083,31 @@ fn read_meta(cx: Ctx, file: &File) -> Result<PartMeta, EnsembleError> {
     check_format(cx, file)?;
     let n_dof = get_usize(cx, file, "/", "n_dof")?;
     let n_states = get_usize(cx, file, "/", "n_states")?;
-    let masses = read_rows::<f64>(cx, &open_ds(cx, file, "", "masses")?, "/masses", n_dof, None)?;
+    let masses = read_rows::<f64>(
+        cx,
+        &open_ds(cx, file, "", "masses")?,
+        "/masses",
+        n_dof,
+        None,
+    )?;
     let ids_ds = open_ds(cx, file, "", "trajectory_indices")?;
-    let ids = read_rows::<u64>(cx, &ids_ds, "/trajectory_indices", n_rows(&ids_ds) as usize, None)?;
+    let ids = read_rows::<u64>(
+        cx,
+        &ids_ds,
+        "/trajectory_indices",
+        n_rows(&ids_ds) as usize,
+        None,
+    )?;
     let trajectories = ids
         .iter()
-        .map(|&i| usize::try_from(i).map_err(|_| cx.layout("/trajectory_indices", format!("index {i} does not fit this machine"))))
+        .map(|&i| {
+            usize::try_from(i).map_err(|_| {
+                cx.layout(
+                    "/trajectory_indices",
+                    format!("index {i} does not fit this machine"),
+                )
+            })
+        })
         .collect::<Result<Vec<_>, _>>()?;
     let meta = PartMeta {
         config_toml: get_str(cx, file, "/", "config_toml")?,
@@ -786,7 +1116,10 @@ fn read_meta(cx: Ctx, file: &File) -> Result<PartMeta, EnsembleError> {
         n_states,
         n_dof,
         masses,
-        slice: (get_usize(cx, file, "/", "slice_index")?, get_usize(cx, file, "/", "slice_count")?),
+        slice: (
+            get_usize(cx, file, "/", "slice_index")?,
+            get_usize(cx, file, "/", "slice_count")?,
+        ),
         trajectories,
         timestep_au: get_attr::<f64>(cx, file, "/", "timestep_au")?,
     };
@@ -799,11 +1132,22 @@ fn read_meta(cx: Ctx, file: &File) -> Result<PartMeta, EnsembleError> {
 
 /// Ensemble indices of the groups under `/trajectories`, ascending.
 fn list_groups(cx: Ctx, file: &File) -> Result<Vec<usize>, EnsembleError> {
-    let traj = file.group("trajectories").map_err(|_| cx.layout("/trajectories", "group is missing"))?;
-    let names = traj.member_names().map_err(cx.h5("/trajectories", "listing members"))?;
+    let traj = file
+        .group("trajectories")
+        .map_err(|_| cx.layout("/trajectories", "group is missing"))?;
+    let names = traj
+        .member_names()
+        .map_err(cx.h5("/trajectories", "listing members"))?;
     let mut out = names
         .iter()
-        .map(|n| n.parse::<usize>().map_err(|_| cx.layout("/trajectories", format!("member {n:?} is not a zero-padded trajectory index"))))
+        .map(|n| {
+            n.parse::<usize>().map_err(|_| {
+                cx.layout(
+                    "/trajectories",
+                    format!("member {n:?} is not a zero-padded trajectory index"),
+                )
+            })
+        })
         .collect::<Result<Vec<_>, _>>()?;
     out.sort_unstable();
     Ok(out)
@@ -811,7 +1155,10 @@ fn list_groups(cx: Ctx, file: &File) -> Result<Vec<usize>, EnsembleError> {
 
 /// Current time, RFC 3339 UTC with seconds.
 pub fn now_rfc3339() -> String {
-    let secs = SystemTime::now().duration_since(UNIX_EPOCH).map(|d| d.as_secs()).unwrap_or(0);
+    let secs = SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map(|d| d.as_secs())
+        .unwrap_or(0);
     let (days, rem) = ((secs / 86_400) as i64, secs % 86_400);
     // Civil date from days since 1970-01-01 (proleptic Gregorian calendar).
     let z = days + 719_468;
@@ -823,7 +1170,12 @@ pub fn now_rfc3339() -> String {
     let day = doy - (153 * mp + 2) / 5 + 1;
     let month = if mp < 10 { mp + 3 } else { mp - 9 };
     let year = yoe + era * 400 + i64::from(month <= 2);
-    format!("{year:04}-{month:02}-{day:02}T{:02}:{:02}:{:02}Z", rem / 3600, rem / 60 % 60, rem % 60)
+    format!(
+        "{year:04}-{month:02}-{day:02}T{:02}:{:02}:{:02}Z",
+        rem / 3600,
+        rem / 60 % 60,
+        rem % 60
+    )
 }
 
 // ---------------------------------------------------------------------------
@@ -849,15 +1201,31 @@ impl PartWriter {
         let cx = Ctx(path);
         check_meta(cx, meta)?;
         if path.exists() {
-            return Err(EnsembleError::Exists { file: path.to_path_buf() });
+            return Err(EnsembleError::Exists {
+                file: path.to_path_buf(),
+            });
         }
         let file = File::with_options()
             .with_fapl(|p| p.libver_v18())
             .create_excl(path)
-            .map_err(|e| if path.exists() { EnsembleError::Exists { file: path.to_path_buf() } } else { cx.h5("/", "creating the file")(e) })?;
+            .map_err(|e| {
+                if path.exists() {
+                    EnsembleError::Exists {
+                        file: path.to_path_buf(),
+                    }
+                } else {
+                    cx.h5("/", "creating the file")(e)
+                }
+            })?;
         close_on_exec(path);
         write_meta(cx, &file, meta)?;
-        let writer = PartWriter { path: path.to_path_buf(), file, meta: meta.clone(), fault: FaultInjector::from_env(), open: Default::default() };
+        let writer = PartWriter {
+            path: path.to_path_buf(),
+            file,
+            meta: meta.clone(),
+            fault: FaultInjector::from_env(),
+            open: Default::default(),
+        };
         writer.file.flush().map_err(cx.h5("/", "flushing"))?;
         Ok(writer)
     }
@@ -869,13 +1237,23 @@ impl PartWriter {
         if !path.exists() {
             return Err(cx.input("/", "no such file"));
         }
-        let file = File::open_rw(path).map_err(cx.h5("/", "opening for writing (is another process writing it?)"))?;
+        let file = File::open_rw(path)
+            .map_err(cx.h5("/", "opening for writing (is another process writing it?)"))?;
         close_on_exec(path);
         let meta = read_meta(cx, &file)?;
         list_groups(cx, &file)?;
         put_str(cx, &file, "/", "writer_state", OPEN)?;
         file.flush().map_err(cx.h5("/", "flushing"))?;
-        Ok((PartWriter { path: path.to_path_buf(), file, meta: meta.clone(), fault: FaultInjector::from_env(), open: Default::default() }, meta))
+        Ok((
+            PartWriter {
+                path: path.to_path_buf(),
+                file,
+                meta: meta.clone(),
+                fault: FaultInjector::from_env(),
+                open: Default::default(),
+            },
+            meta,
+        ))
     }
 
     /// The file's metadata.
@@ -895,7 +1273,12 @@ impl PartWriter {
     fn group(&self, index: usize) -> Result<Group, EnsembleError> {
         self.file
             .group(&format!("trajectories/{}", group_name(index)))
-            .map_err(|_| self.cx().input(&group_path(index), "no such trajectory in this file (begin it first)"))
+            .map_err(|_| {
+                self.cx().input(
+                    &group_path(index),
+                    "no such trajectory in this file (begin it first)",
+                )
+            })
     }
 
     /// Starts (or restarts, on resume) trajectory `header.index`: creates its
@@ -905,22 +1288,43 @@ impl PartWriter {
         let cx = self.cx();
         let object = group_path(header.index);
         if self.meta.trajectories.binary_search(&header.index).is_err() {
-            return Err(cx.input(&object, "this trajectory is not assigned to this part (see /trajectory_indices)"));
+            return Err(cx.input(
+                &object,
+                "this trajectory is not assigned to this part (see /trajectory_indices)",
+            ));
         }
-        for (name, v) in [("initial positions", &header.q0), ("initial velocities", &header.v0)] {
+        for (name, v) in [
+            ("initial positions", &header.q0),
+            ("initial velocities", &header.v0),
+        ] {
             if v.len() != self.meta.n_dof {
-                return Err(cx.input(&object, format!("{} {name} for n_dof = {}", v.len(), self.meta.n_dof)));
+                return Err(cx.input(
+                    &object,
+                    format!("{} {name} for n_dof = {}", v.len(), self.meta.n_dof),
+                ));
             }
         }
         if header.initial_state >= self.meta.n_states {
-            return Err(cx.input(&object, format!("initial state {} for n_states = {}", header.initial_state, self.meta.n_states)));
+            return Err(cx.input(
+                &object,
+                format!(
+                    "initial state {} for n_states = {}",
+                    header.initial_state, self.meta.n_states
+                ),
+            ));
         }
-        let traj = self.file.group("trajectories").map_err(cx.h5("/trajectories", "opening"))?;
+        let traj = self
+            .file
+            .group("trajectories")
+            .map_err(cx.h5("/trajectories", "opening"))?;
         let g = if traj.link_exists(&group_name(header.index)) {
             let g = self.group(header.index)?;
             let stored = read_header(cx, &g, &object, header.index, self.meta.n_dof)?;
             if &stored != header {
-                return Err(cx.input(&object, "exists with a different header (seed, initial state or initial conditions)"));
+                return Err(cx.input(
+                    &object,
+                    "exists with a different header (seed, initial state or initial conditions)",
+                ));
             }
             g
         } else {
@@ -931,22 +1335,46 @@ impl PartWriter {
 
     /// Appends rows and hop attempts to trajectory `index` (diagnostics
     /// "none", no warnings). All rows are checked before anything is written.
-    pub fn append(&mut self, index: usize, rows: &[StepRow], hops: &[Hop]) -> Result<(), EnsembleError> {
+    pub fn append(
+        &mut self,
+        index: usize,
+        rows: &[StepRow],
+        hops: &[Hop],
+    ) -> Result<(), EnsembleError> {
         self.append_all(index, rows, &[], hops, &[])
     }
 
     /// Appends rows with their diagnostics (empty: "none" for every row),
     /// hop attempts and warnings. Everything is checked before anything is written.
-    pub fn append_all(&mut self, index: usize, rows: &[StepRow], diagnostics: &[RowDiagnostics], hops: &[Hop], warnings: &[WarningRow]) -> Result<(), EnsembleError> {
+    pub fn append_all(
+        &mut self,
+        index: usize,
+        rows: &[StepRow],
+        diagnostics: &[RowDiagnostics],
+        hops: &[Hop],
+        warnings: &[WarningRow],
+    ) -> Result<(), EnsembleError> {
         let cx = self.cx();
         let object = group_path(index);
         let (n_dof, n_states) = (self.meta.n_dof, self.meta.n_states);
         check_rows(cx, &object, rows, n_dof, n_states)?;
         if !diagnostics.is_empty() && diagnostics.len() != rows.len() {
-            return Err(cx.input(&object, format!("{} diagnostics for {} rows", diagnostics.len(), rows.len())));
+            return Err(cx.input(
+                &object,
+                format!("{} diagnostics for {} rows", diagnostics.len(), rows.len()),
+            ));
         }
-        if let Some(k) = diagnostics.iter().position(|d| d.spin_squared.len() != n_states) {
-            return Err(cx.input(&object, format!("diagnostics {k} of the batch: {} <S^2> values for n_states = {n_states}", diagnostics[k].spin_squared.len())));
+        if let Some(k) = diagnostics
+            .iter()
+            .position(|d| d.spin_squared.len() != n_states)
+        {
+            return Err(cx.input(
+                &object,
+                format!(
+                    "diagnostics {k} of the batch: {} <S^2> values for n_states = {n_states}",
+                    diagnostics[k].spin_squared.len()
+                ),
+            ));
         }
         let mut block = RowBlock::new(n_dof, n_states);
         let none = RowDiagnostics::none(n_states);
@@ -959,7 +1387,13 @@ impl PartWriter {
     /// Appends a block of rows (columns, see [`RowBlock`]), hop attempts and
     /// warnings. Everything is checked before anything is written; the
     /// counts attributes are written last.
-    pub fn append_block(&mut self, index: usize, block: &RowBlock, hops: &[Hop], warnings: &[WarningRow]) -> Result<(), EnsembleError> {
+    pub fn append_block(
+        &mut self,
+        index: usize,
+        block: &RowBlock,
+        hops: &[Hop],
+        warnings: &[WarningRow],
+    ) -> Result<(), EnsembleError> {
         let cx = Ctx(&self.path);
         let object = group_path(index);
         let (n_dof, n_states) = (self.meta.n_dof, self.meta.n_states);
@@ -976,16 +1410,41 @@ impl PartWriter {
             }
             let sets = &self.open[&index];
             write_block(cx, sets, &object, c.rows as usize, block, &mut self.fault)?;
-            put_attr(cx, &g, &object, "steps_written", &(c.rows + block.len() as u64))?;
+            put_attr(
+                cx,
+                &g,
+                &object,
+                "steps_written",
+                &(c.rows + block.len() as u64),
+            )?;
         }
         if !hops.is_empty() {
             self.fault.charge(cx, &format!("{object}/hops"))?;
             write_hop_columns(cx, &g, &object, c.hops as usize, &hop_cols)?;
-            put_attr(cx, &g, &object, "hops_written", &(c.hops + hops.len() as u64))?;
+            put_attr(
+                cx,
+                &g,
+                &object,
+                "hops_written",
+                &(c.hops + hops.len() as u64),
+            )?;
         }
         if !warnings.is_empty() {
-            write_warnings(cx, &g, &object, c.warnings as usize, warnings, &mut self.fault)?;
-            put_attr(cx, &g, &object, "warnings_written", &(c.warnings + warnings.len() as u64))?;
+            write_warnings(
+                cx,
+                &g,
+                &object,
+                c.warnings as usize,
+                warnings,
+                &mut self.fault,
+            )?;
+            put_attr(
+                cx,
+                &g,
+                &object,
+                "warnings_written",
+                &(c.warnings + warnings.len() as u64),
+            )?;
         }
         Ok(())
     }
@@ -994,7 +1453,14 @@ impl PartWriter {
     /// hop attempts of trajectory `index` (back to a checkpoint); warnings are kept.
     pub fn truncate(&mut self, index: usize, rows: u64, hops: u64) -> Result<(), EnsembleError> {
         let warnings = self.all_counts(index)?.warnings;
-        self.truncate_all(index, Counts { rows, hops, warnings })
+        self.truncate_all(
+            index,
+            Counts {
+                rows,
+                hops,
+                warnings,
+            },
+        )
     }
 
     /// Discards everything beyond `keep` (rows, hop attempts, warnings) of trajectory `index`.
@@ -1005,12 +1471,39 @@ impl PartWriter {
         let g = self.group(index)?;
         let (n_dof, n_states) = (self.meta.n_dof, self.meta.n_states);
         let present = |s: &&&Spec| g.link_exists(s.name);
-        truncate_group(cx, &g, &object, ROW_SPECS.iter().filter(present).map(|s| (s.name, row_width(s, n_dof, n_states), s.width)), keep.rows)?;
-        let hg = g.group("hops").map_err(|_| cx.layout(&format!("{object}/hops"), "group is missing"))?;
-        truncate_group(cx, &hg, &format!("{object}/hops"), HOP_SPECS.iter().map(|s| (s.name, 1, s.width)), keep.hops)?;
+        truncate_group(
+            cx,
+            &g,
+            &object,
+            ROW_SPECS
+                .iter()
+                .filter(present)
+                .map(|s| (s.name, row_width(s, n_dof, n_states), s.width)),
+            keep.rows,
+        )?;
+        let hg = g
+            .group("hops")
+            .map_err(|_| cx.layout(&format!("{object}/hops"), "group is missing"))?;
+        truncate_group(
+            cx,
+            &hg,
+            &format!("{object}/hops"),
+            HOP_SPECS.iter().map(|s| (s.name, 1, s.width)),
+            keep.hops,
+        )?;
         if g.link_exists("warnings") {
-            let wg = g.group("warnings").map_err(cx.h5(&format!("{object}/warnings"), "opening group"))?;
-            truncate_group(cx, &wg, &format!("{object}/warnings"), [&WARN_STEP, &WARN_TEXT].into_iter().map(|s| (s.name, 1, s.width)), keep.warnings)?;
+            let wg = g
+                .group("warnings")
+                .map_err(cx.h5(&format!("{object}/warnings"), "opening group"))?;
+            truncate_group(
+                cx,
+                &wg,
+                &format!("{object}/warnings"),
+                [&WARN_STEP, &WARN_TEXT]
+                    .into_iter()
+                    .map(|s| (s.name, 1, s.width)),
+                keep.warnings,
+            )?;
             put_attr(cx, &g, &object, "warnings_written", &keep.warnings)?;
         }
         put_attr(cx, &g, &object, "steps_written", &keep.rows)?;
@@ -1023,7 +1516,13 @@ impl PartWriter {
             self.open.remove(&index);
         }
         let g = self.group(index)?;
-        write_status(self.cx(), &g, &group_path(index), status, status_attrs(status).0)
+        write_status(
+            self.cx(),
+            &g,
+            &group_path(index),
+            status,
+            status_attrs(status).0,
+        )
     }
 
     /// Marks trajectory `index` "stopped": interrupted, resumable. Reads
@@ -1031,7 +1530,13 @@ impl PartWriter {
     pub fn mark_stopped(&mut self, index: usize) -> Result<(), EnsembleError> {
         self.open.remove(&index);
         let g = self.group(index)?;
-        write_status(self.cx(), &g, &group_path(index), &Status::Running, Phase::Stopped)
+        write_status(
+            self.cx(),
+            &g,
+            &group_path(index),
+            &Status::Running,
+            Phase::Stopped,
+        )
     }
 
     /// Rows and hop attempts written for trajectory `index` (the lengths of
@@ -1041,7 +1546,9 @@ impl PartWriter {
         let object = group_path(index);
         let g = self.group(index)?;
         let rows = n_rows(&open_ds(cx, &g, &object, TIME.name)?);
-        let hg = g.group("hops").map_err(|_| cx.layout(&format!("{object}/hops"), "group is missing"))?;
+        let hg = g
+            .group("hops")
+            .map_err(|_| cx.layout(&format!("{object}/hops"), "group is missing"))?;
         let hops = n_rows(&open_ds(cx, &hg, &format!("{object}/hops"), HOP_STEP.name)?);
         Ok((rows, hops))
     }
@@ -1054,12 +1561,23 @@ impl PartWriter {
         let object = group_path(index);
         let g = self.group(index)?;
         let warnings = if g.link_exists("warnings") {
-            let wg = g.group("warnings").map_err(cx.h5(&format!("{object}/warnings"), "opening group"))?;
-            n_rows(&open_ds(cx, &wg, &format!("{object}/warnings"), WARN_STEP.name)?)
+            let wg = g
+                .group("warnings")
+                .map_err(cx.h5(&format!("{object}/warnings"), "opening group"))?;
+            n_rows(&open_ds(
+                cx,
+                &wg,
+                &format!("{object}/warnings"),
+                WARN_STEP.name,
+            )?)
         } else {
             0
         };
-        Ok(Counts { rows, hops, warnings })
+        Ok(Counts {
+            rows,
+            hops,
+            warnings,
+        })
     }
 
     /// Writes everything to disk (H5Fflush): after it returns, the file is
@@ -1072,8 +1590,16 @@ impl PartWriter {
     /// so that checkpoints written afterwards never claim rows a power cut
     /// could lose.
     pub fn sync(&mut self) -> Result<(), EnsembleError> {
-        let f = std::fs::File::open(&self.path).map_err(|source| EnsembleError::Io { file: self.path.clone(), what: "opening to sync".into(), source })?;
-        f.sync_data().map_err(|source| EnsembleError::Io { file: self.path.clone(), what: "syncing to disk".into(), source })
+        let f = std::fs::File::open(&self.path).map_err(|source| EnsembleError::Io {
+            file: self.path.clone(),
+            what: "opening to sync".into(),
+            source,
+        })?;
+        f.sync_data().map_err(|source| EnsembleError::Io {
+            file: self.path.clone(),
+            what: "syncing to disk".into(),
+            source,
+        })
     }
 
     /// Sets `writer_state` = "closed", flushes and closes the file.
@@ -1086,9 +1612,17 @@ impl PartWriter {
     }
 }
 
-fn create_trajectory(cx: Ctx, traj: &Group, h: &TrajectoryHeader, n_dof: usize, n_states: usize) -> Result<Group, EnsembleError> {
+fn create_trajectory(
+    cx: Ctx,
+    traj: &Group,
+    h: &TrajectoryHeader,
+    n_dof: usize,
+    n_states: usize,
+) -> Result<Group, EnsembleError> {
     let object = group_path(h.index);
-    let g = traj.create_group(&group_name(h.index)).map_err(cx.h5(&object, "creating group"))?;
+    let g = traj
+        .create_group(&group_name(h.index))
+        .map_err(cx.h5(&object, "creating group"))?;
     put_attr(cx, &g, &object, "index", &(h.index as u64))?;
     put_attr(cx, &g, &object, "seed", &h.seed)?;
     put_attr(cx, &g, &object, "initial_state", &(h.initial_state as u64))?;
@@ -1096,7 +1630,12 @@ fn create_trajectory(cx: Ctx, traj: &Group, h: &TrajectoryHeader, n_dof: usize, 
     put_attr(cx, &g, &object, "hops_written", &0u64)?;
     put_attr(cx, &g, &object, "warnings_written", &0u64)?;
     let q0 = Spec { name: "initial_positions", width: Width::Dof, units: MODEL_COORDS, description: "Initial nuclear coordinates (the sampled initial condition). Cartesian coordinates in bohr for molecules; for model Hamiltonians the model's own coordinates as defined in config_toml." };
-    let v0 = Spec { name: "initial_velocities", width: Width::Dof, units: MODEL_VELOCITIES, description: "Initial nuclear velocities (the sampled initial condition)." };
+    let v0 = Spec {
+        name: "initial_velocities",
+        width: Width::Dof,
+        units: MODEL_VELOCITIES,
+        description: "Initial nuclear velocities (the sampled initial condition).",
+    };
     create_fixed(cx, &g, &object, &q0, &h.q0)?;
     create_fixed(cx, &g, &object, &v0, &h.v0)?;
     for spec in ROW_SPECS {
@@ -1104,38 +1643,69 @@ fn create_trajectory(cx: Ctx, traj: &Group, h: &TrajectoryHeader, n_dof: usize, 
         match spec.name {
             "step" => create_series::<u64>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
             "active_state" => create_series::<u32>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
-            "solver_iterations" | "response_iterations" => create_series::<i32>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
+            "solver_iterations" | "response_iterations" => {
+                create_series::<i32>(cx, &g, &object, spec, w, CHUNK_ROWS)?
+            }
             "amplitudes" => create_series::<Complex64>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
             _ => create_series::<f64>(cx, &g, &object, spec, w, CHUNK_ROWS)?,
         };
     }
     let hobject = format!("{object}/hops");
-    let hg = g.create_group("hops").map_err(cx.h5(&hobject, "creating group"))?;
+    let hg = g
+        .create_group("hops")
+        .map_err(cx.h5(&hobject, "creating group"))?;
     put_str(cx, &hg, &hobject, "description", "Hop attempts of this trajectory, one row per attempt (accepted or frustrated), as parallel one-dimensional datasets.")?;
     for spec in HOP_SPECS {
         match spec.name {
             "step" => create_series::<u64>(cx, &hg, &hobject, spec, 1, HOP_CHUNK_ROWS)?,
-            "from_state" | "to_state" => create_series::<u32>(cx, &hg, &hobject, spec, 1, HOP_CHUNK_ROWS)?,
+            "from_state" | "to_state" => {
+                create_series::<u32>(cx, &hg, &hobject, spec, 1, HOP_CHUNK_ROWS)?
+            }
             "accepted" => create_series::<u8>(cx, &hg, &hobject, spec, 1, HOP_CHUNK_ROWS)?,
             _ => create_series::<f64>(cx, &hg, &hobject, spec, 1, HOP_CHUNK_ROWS)?,
         };
     }
     let wobject = format!("{object}/warnings");
-    let wg = g.create_group("warnings").map_err(cx.h5(&wobject, "creating group"))?;
+    let wg = g
+        .create_group("warnings")
+        .map_err(cx.h5(&wobject, "creating group"))?;
     put_str(cx, &wg, &wobject, "description", "Non-fatal warnings of the back end, one row per warning, from every step (not only the recorded ones).")?;
     create_series::<u64>(cx, &wg, &wobject, &WARN_STEP, 1, WARN_CHUNK_ROWS)?;
     create_series::<VarLenUnicode>(cx, &wg, &wobject, &WARN_TEXT, 1, WARN_CHUNK_ROWS)?;
     Ok(g)
 }
 
-fn check_rows(cx: Ctx, object: &str, rows: &[StepRow], n_dof: usize, n_states: usize) -> Result<(), EnsembleError> {
+fn check_rows(
+    cx: Ctx,
+    object: &str,
+    rows: &[StepRow],
+    n_dof: usize,
+    n_states: usize,
+) -> Result<(), EnsembleError> {
     for (k, r) in rows.iter().enumerate() {
-        let lens = [("coordinates", r.q.len(), n_dof), ("velocities", r.v.len(), n_dof), ("energies", r.energies.len(), n_states), ("amplitudes", r.amplitudes.len(), n_states)];
+        let lens = [
+            ("coordinates", r.q.len(), n_dof),
+            ("velocities", r.v.len(), n_dof),
+            ("energies", r.energies.len(), n_states),
+            ("amplitudes", r.amplitudes.len(), n_states),
+        ];
         if let Some((what, got, want)) = lens.into_iter().find(|(_, got, want)| got != want) {
-            return Err(cx.input(object, format!("row {k} of the batch (step {}): {got} {what}, expected {want}", r.step)));
+            return Err(cx.input(
+                object,
+                format!(
+                    "row {k} of the batch (step {}): {got} {what}, expected {want}",
+                    r.step
+                ),
+            ));
         }
         if r.active as usize >= n_states {
-            return Err(cx.input(object, format!("row {k} of the batch (step {}): active state {} for n_states = {n_states}", r.step, r.active)));
+            return Err(cx.input(
+                object,
+                format!(
+                    "row {k} of the batch (step {}): active state {} for n_states = {n_states}",
+                    r.step, r.active
+                ),
+            ));
         }
     }
     Ok(())
@@ -1154,14 +1724,20 @@ pub const INJECT_WRITE_FAILURE: &str = "FLIPSWARM_INJECT_WRITE_FAILURE";
 
 impl FaultInjector {
     fn from_env() -> Self {
-        Self { remaining: std::env::var(INJECT_WRITE_FAILURE).ok().and_then(|v| v.trim().parse().ok()) }
+        Self {
+            remaining: std::env::var(INJECT_WRITE_FAILURE)
+                .ok()
+                .and_then(|v| v.trim().parse().ok()),
+        }
     }
 
     fn charge(&mut self, cx: Ctx, object: &str) -> Result<(), EnsembleError> {
         match &mut self.remaining {
             Some(0) => Err(EnsembleError::Io {
                 file: cx.0.to_path_buf(),
-                what: format!("{object}: writing rows (failure injected by {INJECT_WRITE_FAILURE})"),
+                what: format!(
+                    "{object}: writing rows (failure injected by {INJECT_WRITE_FAILURE})"
+                ),
                 source: std::io::Error::from_raw_os_error(libc::ENOSPC),
             }),
             Some(n) => {
@@ -1175,13 +1751,26 @@ impl FaultInjector {
 
 /// The per-step datasets of a trajectory, opened (in [`ROW_SPECS`] order).
 fn open_row_sets(cx: Ctx, g: &Group, object: &str) -> Result<Vec<Dataset>, EnsembleError> {
-    ROW_SPECS.iter().map(|spec| open_ds(cx, g, object, spec.name)).collect()
+    ROW_SPECS
+        .iter()
+        .map(|spec| open_ds(cx, g, object, spec.name))
+        .collect()
 }
 
-fn write_block(cx: Ctx, sets: &[Dataset], object: &str, start: usize, b: &RowBlock, fault: &mut FaultInjector) -> Result<(), EnsembleError> {
+fn write_block(
+    cx: Ctx,
+    sets: &[Dataset],
+    object: &str,
+    start: usize,
+    b: &RowBlock,
+    fault: &mut FaultInjector,
+) -> Result<(), EnsembleError> {
     let (n_dof, n_states) = (b.n_dof, b.n_states);
     let mut k = 0;
-    let mut put = |spec: &Spec, _w: usize, write: &dyn Fn(&Dataset, &str) -> Result<(), EnsembleError>| -> Result<(), EnsembleError> {
+    let mut put = |spec: &Spec,
+                   _w: usize,
+                   write: &dyn Fn(&Dataset, &str) -> Result<(), EnsembleError>|
+     -> Result<(), EnsembleError> {
         let o = format!("{object}/{}", spec.name);
         fault.charge(cx, &o)?;
         debug_assert_eq!(ROW_SPECS[k].name, spec.name);
@@ -1190,20 +1779,48 @@ fn write_block(cx: Ctx, sets: &[Dataset], object: &str, start: usize, b: &RowBlo
     };
     put(&TIME, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.time))?;
     put(&STEP, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.step))?;
-    put(&POSITIONS, n_dof, &|ds, o| append_rows(cx, ds, o, start, n_dof, &b.q))?;
-    put(&VELOCITIES, n_dof, &|ds, o| append_rows(cx, ds, o, start, n_dof, &b.v))?;
-    put(&ENERGIES, n_states, &|ds, o| append_rows(cx, ds, o, start, n_states, &b.energies))?;
-    put(&ACTIVE, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.active))?;
-    put(&AMPLITUDES, n_states, &|ds, o| append_rows(cx, ds, o, start, n_states, &b.amplitudes))?;
-    put(&KINETIC, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.kinetic))?;
-    put(&POTENTIAL, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.potential))?;
-    put(&TOTAL, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.total))?;
-    put(&SOLVER_ITERATIONS, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.iterations))?;
-    put(&RESPONSE_ITERATIONS, 1, &|ds, o| append_rows(cx, ds, o, start, 1, &b.response_iterations))?;
-    put(&SPIN_SQUARED, n_states, &|ds, o| append_rows(cx, ds, o, start, n_states, &b.spin_squared))
+    put(&POSITIONS, n_dof, &|ds, o| {
+        append_rows(cx, ds, o, start, n_dof, &b.q)
+    })?;
+    put(&VELOCITIES, n_dof, &|ds, o| {
+        append_rows(cx, ds, o, start, n_dof, &b.v)
+    })?;
+    put(&ENERGIES, n_states, &|ds, o| {
+        append_rows(cx, ds, o, start, n_states, &b.energies)
+    })?;
+    put(&ACTIVE, 1, &|ds, o| {
+        append_rows(cx, ds, o, start, 1, &b.active)
+    })?;
+    put(&AMPLITUDES, n_states, &|ds, o| {
+        append_rows(cx, ds, o, start, n_states, &b.amplitudes)
+    })?;
+    put(&KINETIC, 1, &|ds, o| {
+        append_rows(cx, ds, o, start, 1, &b.kinetic)
+    })?;
+    put(&POTENTIAL, 1, &|ds, o| {
+        append_rows(cx, ds, o, start, 1, &b.potential)
+    })?;
+    put(&TOTAL, 1, &|ds, o| {
+        append_rows(cx, ds, o, start, 1, &b.total)
+    })?;
+    put(&SOLVER_ITERATIONS, 1, &|ds, o| {
+        append_rows(cx, ds, o, start, 1, &b.iterations)
+    })?;
+    put(&RESPONSE_ITERATIONS, 1, &|ds, o| {
+        append_rows(cx, ds, o, start, 1, &b.response_iterations)
+    })?;
+    put(&SPIN_SQUARED, n_states, &|ds, o| {
+        append_rows(cx, ds, o, start, n_states, &b.spin_squared)
+    })
 }
 
-fn check_block(cx: Ctx, object: &str, b: &RowBlock, n_dof: usize, n_states: usize) -> Result<(), EnsembleError> {
+fn check_block(
+    cx: Ctx,
+    object: &str,
+    b: &RowBlock,
+    n_dof: usize,
+    n_states: usize,
+) -> Result<(), EnsembleError> {
     let n = b.len();
     if b.n_dof != n_dof || b.n_states != n_states {
         return Err(cx.input(object, format!("row block of {} coordinates and {} states for n_dof = {n_dof}, n_states = {n_states}", b.n_dof, b.n_states)));
@@ -1223,23 +1840,58 @@ fn check_block(cx: Ctx, object: &str, b: &RowBlock, n_dof: usize, n_states: usiz
         ("<S^2> values", b.spin_squared.len(), n * n_states),
     ];
     if let Some((what, got, want)) = lens.into_iter().find(|(_, got, want)| got != want) {
-        return Err(cx.input(object, format!("row block of {n} rows: {got} {what}, expected {want}")));
+        return Err(cx.input(
+            object,
+            format!("row block of {n} rows: {got} {what}, expected {want}"),
+        ));
     }
     if let Some(k) = b.active.iter().position(|&a| a as usize >= n_states) {
-        return Err(cx.input(object, format!("row {k} of the batch (step {}): active state {} for n_states = {n_states}", b.step[k], b.active[k])));
+        return Err(cx.input(
+            object,
+            format!(
+                "row {k} of the batch (step {}): active state {} for n_states = {n_states}",
+                b.step[k], b.active[k]
+            ),
+        ));
     }
     Ok(())
 }
 
-fn write_warnings(cx: Ctx, g: &Group, object: &str, start: usize, warnings: &[WarningRow], fault: &mut FaultInjector) -> Result<(), EnsembleError> {
+fn write_warnings(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    start: usize,
+    warnings: &[WarningRow],
+    fault: &mut FaultInjector,
+) -> Result<(), EnsembleError> {
     let wobject = format!("{object}/warnings");
-    let wg = g.group("warnings").map_err(|_| cx.layout(&wobject, "group is missing"))?;
+    let wg = g
+        .group("warnings")
+        .map_err(|_| cx.layout(&wobject, "group is missing"))?;
     let steps: Vec<u64> = warnings.iter().map(|w| w.step).collect();
-    let texts = warnings.iter().map(|w| vlen(cx, &wobject, "text", &w.text)).collect::<Result<Vec<_>, _>>()?;
+    let texts = warnings
+        .iter()
+        .map(|w| vlen(cx, &wobject, "text", &w.text))
+        .collect::<Result<Vec<_>, _>>()?;
     fault.charge(cx, &format!("{wobject}/step"))?;
-    append_rows(cx, &open_ds(cx, &wg, &wobject, "step")?, &format!("{wobject}/step"), start, 1, &steps)?;
+    append_rows(
+        cx,
+        &open_ds(cx, &wg, &wobject, "step")?,
+        &format!("{wobject}/step"),
+        start,
+        1,
+        &steps,
+    )?;
     fault.charge(cx, &format!("{wobject}/text"))?;
-    append_rows(cx, &open_ds(cx, &wg, &wobject, "text")?, &format!("{wobject}/text"), start, 1, &texts)
+    append_rows(
+        cx,
+        &open_ds(cx, &wg, &wobject, "text")?,
+        &format!("{wobject}/text"),
+        start,
+        1,
+        &texts,
+    )
 }
 
 /// Hop attempts as columns, checked.
@@ -1254,14 +1906,36 @@ struct HopColumns {
     after: Vec<f64>,
 }
 
-fn hop_columns(cx: Ctx, object: &str, hops: &[Hop], n_states: usize) -> Result<HopColumns, EnsembleError> {
+fn hop_columns(
+    cx: Ctx,
+    object: &str,
+    hops: &[Hop],
+    n_states: usize,
+) -> Result<HopColumns, EnsembleError> {
     let state = |k: usize, s: usize| -> Result<u32, EnsembleError> {
         if s >= n_states {
-            return Err(cx.input(object, format!("hop {k} of the batch: state {s} for n_states = {n_states}")));
+            return Err(cx.input(
+                object,
+                format!("hop {k} of the batch: state {s} for n_states = {n_states}"),
+            ));
         }
-        u32::try_from(s).map_err(|_| cx.input(object, format!("hop {k} of the batch: state {s} does not fit u32")))
+        u32::try_from(s).map_err(|_| {
+            cx.input(
+                object,
+                format!("hop {k} of the batch: state {s} does not fit u32"),
+            )
+        })
     };
-    let mut c = HopColumns { step: vec![], time: vec![], from: vec![], to: vec![], accepted: vec![], gap: vec![], before: vec![], after: vec![] };
+    let mut c = HopColumns {
+        step: vec![],
+        time: vec![],
+        from: vec![],
+        to: vec![],
+        accepted: vec![],
+        gap: vec![],
+        before: vec![],
+        after: vec![],
+    };
     for (k, h) in hops.iter().enumerate() {
         c.step.push(h.step);
         c.time.push(h.time);
@@ -1275,9 +1949,17 @@ fn hop_columns(cx: Ctx, object: &str, hops: &[Hop], n_states: usize) -> Result<H
     Ok(c)
 }
 
-fn write_hop_columns(cx: Ctx, g: &Group, object: &str, start: usize, c: &HopColumns) -> Result<(), EnsembleError> {
+fn write_hop_columns(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    start: usize,
+    c: &HopColumns,
+) -> Result<(), EnsembleError> {
     let hobject = format!("{object}/hops");
-    let hg = g.group("hops").map_err(|_| cx.layout(&hobject, "group is missing"))?;
+    let hg = g
+        .group("hops")
+        .map_err(|_| cx.layout(&hobject, "group is missing"))?;
     let ds = |name: &str| open_ds(cx, &hg, &hobject, name);
     let o = |name: &str| format!("{hobject}/{name}");
     append_rows(cx, &ds("step")?, &o("step"), start, 1, &c.step)?;
@@ -1286,40 +1968,88 @@ fn write_hop_columns(cx: Ctx, g: &Group, object: &str, start: usize, c: &HopColu
     append_rows(cx, &ds("to_state")?, &o("to_state"), start, 1, &c.to)?;
     append_rows(cx, &ds("accepted")?, &o("accepted"), start, 1, &c.accepted)?;
     append_rows(cx, &ds("energy_gap")?, &o("energy_gap"), start, 1, &c.gap)?;
-    append_rows(cx, &ds("kinetic_before")?, &o("kinetic_before"), start, 1, &c.before)?;
-    append_rows(cx, &ds("kinetic_after")?, &o("kinetic_after"), start, 1, &c.after)
+    append_rows(
+        cx,
+        &ds("kinetic_before")?,
+        &o("kinetic_before"),
+        start,
+        1,
+        &c.before,
+    )?;
+    append_rows(
+        cx,
+        &ds("kinetic_after")?,
+        &o("kinetic_after"),
+        start,
+        1,
+        &c.after,
+    )
 }
 
 /// Shrinks every listed dataset of `g` to `rows` rows; refuses to grow.
-fn truncate_group<'a>(cx: Ctx, g: &Group, object: &str, specs: impl Iterator<Item = (&'a str, usize, Width)>, rows: u64) -> Result<(), EnsembleError> {
+fn truncate_group<'a>(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    specs: impl Iterator<Item = (&'a str, usize, Width)>,
+    rows: u64,
+) -> Result<(), EnsembleError> {
     let specs: Vec<_> = specs.collect();
     let mut sets = Vec::with_capacity(specs.len());
     for (name, w, width) in specs {
         let ds = open_ds(cx, g, object, name)?;
         let have = n_rows(&ds);
         if rows > have {
-            return Err(cx.input(&format!("{object}/{name}"), format!("cannot truncate to {rows} rows: only {have} written")));
+            return Err(cx.input(
+                &format!("{object}/{name}"),
+                format!("cannot truncate to {rows} rows: only {have} written"),
+            ));
         }
         sets.push((name, ds, w, width));
     }
     let n = rows as usize;
     for (name, ds, w, width) in sets {
         let o = format!("{object}/{name}");
-        let r = if matches!(width, Width::One) { ds.resize(n) } else { ds.resize((n, w)) };
+        let r = if matches!(width, Width::One) {
+            ds.resize(n)
+        } else {
+            ds.resize((n, w))
+        };
         r.map_err(cx.h5(&o, "truncating"))?;
     }
     Ok(())
 }
 
-fn read_header(cx: Ctx, g: &Group, object: &str, index: usize, n_dof: usize) -> Result<TrajectoryHeader, EnsembleError> {
+fn read_header(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    index: usize,
+    n_dof: usize,
+) -> Result<TrajectoryHeader, EnsembleError> {
     let stored = get_usize(cx, g, object, "index")?;
     if stored != index {
-        return Err(cx.layout(object, format!("attribute `index` = {stored} does not match the group name")));
+        return Err(cx.layout(
+            object,
+            format!("attribute `index` = {stored} does not match the group name"),
+        ));
     }
     Ok(TrajectoryHeader {
         index,
-        q0: read_rows::<f64>(cx, &open_ds(cx, g, object, "initial_positions")?, &format!("{object}/initial_positions"), n_dof, None)?,
-        v0: read_rows::<f64>(cx, &open_ds(cx, g, object, "initial_velocities")?, &format!("{object}/initial_velocities"), n_dof, None)?,
+        q0: read_rows::<f64>(
+            cx,
+            &open_ds(cx, g, object, "initial_positions")?,
+            &format!("{object}/initial_positions"),
+            n_dof,
+            None,
+        )?,
+        v0: read_rows::<f64>(
+            cx,
+            &open_ds(cx, g, object, "initial_velocities")?,
+            &format!("{object}/initial_velocities"),
+            n_dof,
+            None,
+        )?,
         initial_state: get_usize(cx, g, object, "initial_state")?,
         seed: get_attr::<u64>(cx, g, object, "seed")?,
     })
@@ -1356,10 +2086,23 @@ impl PartReader {
         let state = match word.as_str() {
             OPEN => WriterState::Open,
             CLOSED => WriterState::Closed,
-            other => return Err(cx.layout("/", format!("attribute `writer_state` = {other:?}, expected \"open\" or \"closed\""))),
+            other => {
+                return Err(cx.layout(
+                    "/",
+                    format!(
+                        "attribute `writer_state` = {other:?}, expected \"open\" or \"closed\""
+                    ),
+                ))
+            }
         };
         let indices = list_groups(cx, &file)?;
-        Ok(PartReader { path: path.to_path_buf(), file, meta, state, indices })
+        Ok(PartReader {
+            path: path.to_path_buf(),
+            file,
+            meta,
+            state,
+            indices,
+        })
     }
 
     /// The file's metadata.
@@ -1387,7 +2130,9 @@ impl PartReader {
         if self.indices.binary_search(&index).is_err() {
             return Err(cx.input(&group_path(index), "no such trajectory in this file"));
         }
-        self.file.group(&format!("trajectories/{}", group_name(index))).map_err(cx.h5(&group_path(index), "opening group"))
+        self.file
+            .group(&format!("trajectories/{}", group_name(index)))
+            .map_err(cx.h5(&group_path(index), "opening group"))
     }
 
     /// Rows and hop attempts, checked against `steps_written`/`hops_written`.
@@ -1405,9 +2150,27 @@ impl PartReader {
         let g = self.group(index)?;
         let (status, phase) = read_status(cx, &g, &object)?;
         let (rows, hops) = self.counts(&g, &object)?;
-        let time = read_rows::<f64>(cx, &open_ds(cx, &g, &object, TIME.name)?, &format!("{object}/time"), rows, None)?;
-        let active = read_rows::<u32>(cx, &open_ds(cx, &g, &object, ACTIVE.name)?, &format!("{object}/active_state"), rows, None)?;
-        let total = read_rows::<f64>(cx, &open_ds(cx, &g, &object, TOTAL.name)?, &format!("{object}/total_energy"), rows, None)?;
+        let time = read_rows::<f64>(
+            cx,
+            &open_ds(cx, &g, &object, TIME.name)?,
+            &format!("{object}/time"),
+            rows,
+            None,
+        )?;
+        let active = read_rows::<u32>(
+            cx,
+            &open_ds(cx, &g, &object, ACTIVE.name)?,
+            &format!("{object}/active_state"),
+            rows,
+            None,
+        )?;
+        let total = read_rows::<f64>(
+            cx,
+            &open_ds(cx, &g, &object, TOTAL.name)?,
+            &format!("{object}/total_energy"),
+            rows,
+            None,
+        )?;
         let e0 = total.first().copied().unwrap_or(0.0);
         let max_energy_drift = total.iter().map(|e| (e - e0).abs()).fold(0.0, f64::max);
         let failure_reason = match &status {
@@ -1416,7 +2179,13 @@ impl PartReader {
         };
         let warnings = get_opt_usize(cx, &g, &object, "warnings_written")? as u64;
         let max_solver_iterations = if g.link_exists(SOLVER_ITERATIONS.name) {
-            let it = read_rows::<i32>(cx, &open_ds(cx, &g, &object, SOLVER_ITERATIONS.name)?, &format!("{object}/{}", SOLVER_ITERATIONS.name), rows, None)?;
+            let it = read_rows::<i32>(
+                cx,
+                &open_ds(cx, &g, &object, SOLVER_ITERATIONS.name)?,
+                &format!("{object}/{}", SOLVER_ITERATIONS.name),
+                rows,
+                None,
+            )?;
             it.into_iter().filter(|&i| i >= 0).max()
         } else {
             None
@@ -1446,10 +2215,26 @@ impl PartReader {
         let (rows, hops) = self.counts(&g, &object)?;
         let warnings = get_opt_usize(cx, &g, &object, "warnings_written")?;
         let diagnostics = read_diagnostics(cx, &g, &object, rows, self.meta.n_states, false)?;
-        let rows = read_step_rows(cx, &g, &object, rows, self.meta.n_dof, self.meta.n_states, false)?;
+        let rows = read_step_rows(
+            cx,
+            &g,
+            &object,
+            rows,
+            self.meta.n_dof,
+            self.meta.n_states,
+            false,
+        )?;
         let hops = read_hops(cx, &g, &object, hops, false)?;
         let warnings = read_warnings(cx, &g, &object, warnings, false)?;
-        Ok(TrajectoryData { header, rows, hops, diagnostics, warnings, status, phase })
+        Ok(TrajectoryData {
+            header,
+            rows,
+            hops,
+            diagnostics,
+            warnings,
+            status,
+            phase,
+        })
     }
 
     /// The status attributes of trajectory `index` only (no datasets read).
@@ -1463,22 +2248,61 @@ impl PartReader {
     /// each other or with `steps_written` — the state a writer killed
     /// between two flushes can leave behind. Resume uses it to keep exactly
     /// the rows a checkpoint vouches for.
-    pub fn read_prefix(&self, index: usize, rows: u64, hops: u64) -> Result<TrajectoryData, EnsembleError> {
-        self.read_prefix_all(index, Counts { rows, hops, warnings: 0 })
+    pub fn read_prefix(
+        &self,
+        index: usize,
+        rows: u64,
+        hops: u64,
+    ) -> Result<TrajectoryData, EnsembleError> {
+        self.read_prefix_all(
+            index,
+            Counts {
+                rows,
+                hops,
+                warnings: 0,
+            },
+        )
     }
 
     /// As [`PartReader::read_prefix`], with the first `keep.warnings` warnings too.
-    pub fn read_prefix_all(&self, index: usize, keep: Counts) -> Result<TrajectoryData, EnsembleError> {
+    pub fn read_prefix_all(
+        &self,
+        index: usize,
+        keep: Counts,
+    ) -> Result<TrajectoryData, EnsembleError> {
         let cx = Ctx(&self.path);
         let object = group_path(index);
         let g = self.group(index)?;
         let header = read_header(cx, &g, &object, index, self.meta.n_dof)?;
         let (status, phase) = read_status(cx, &g, &object)?;
-        let diagnostics = read_diagnostics(cx, &g, &object, keep.rows as usize, self.meta.n_states, true)?;
-        let rows = read_step_rows(cx, &g, &object, keep.rows as usize, self.meta.n_dof, self.meta.n_states, true)?;
+        let diagnostics = read_diagnostics(
+            cx,
+            &g,
+            &object,
+            keep.rows as usize,
+            self.meta.n_states,
+            true,
+        )?;
+        let rows = read_step_rows(
+            cx,
+            &g,
+            &object,
+            keep.rows as usize,
+            self.meta.n_dof,
+            self.meta.n_states,
+            true,
+        )?;
         let hops = read_hops(cx, &g, &object, keep.hops as usize, true)?;
         let warnings = read_warnings(cx, &g, &object, keep.warnings as usize, true)?;
-        Ok(TrajectoryData { header, rows, hops, diagnostics, warnings, status, phase })
+        Ok(TrajectoryData {
+            header,
+            rows,
+            hops,
+            diagnostics,
+            warnings,
+            status,
+            phase,
+        })
     }
 }
 
@@ -1502,7 +2326,13 @@ pub fn probe_in_child(path: &Path, everything: bool) -> Result<(), EnsembleError
     }
     if pid == 0 {
         let ok = PartReader::open(path).is_ok_and(|r| {
-            r.trajectory_indices().into_iter().all(|i| if everything { r.read(i).is_ok() } else { r.summary(i).is_ok() })
+            r.trajectory_indices().into_iter().all(|i| {
+                if everything {
+                    r.read(i).is_ok()
+                } else {
+                    r.summary(i).is_ok()
+                }
+            })
         });
         // SAFETY: ends the child at once.
         unsafe { libc::_exit(if ok { 0 } else { 1 }) };
@@ -1519,15 +2349,53 @@ pub fn probe_in_child(path: &Path, everything: bool) -> Result<(), EnsembleError
     Ok(())
 }
 
-fn read_step_rows(cx: Ctx, g: &Group, object: &str, n: usize, n_dof: usize, n_states: usize, prefix: bool) -> Result<Vec<StepRow>, EnsembleError> {
-    let f64s = |spec: &Spec, w: Option<usize>| read_rows_from::<f64>(cx, &open_ds(cx, g, object, spec.name)?, &format!("{object}/{}", spec.name), n, w, prefix);
+fn read_step_rows(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    n: usize,
+    n_dof: usize,
+    n_states: usize,
+    prefix: bool,
+) -> Result<Vec<StepRow>, EnsembleError> {
+    let f64s = |spec: &Spec, w: Option<usize>| {
+        read_rows_from::<f64>(
+            cx,
+            &open_ds(cx, g, object, spec.name)?,
+            &format!("{object}/{}", spec.name),
+            n,
+            w,
+            prefix,
+        )
+    };
     let time = f64s(&TIME, None)?;
-    let step = read_rows_from::<u64>(cx, &open_ds(cx, g, object, STEP.name)?, &format!("{object}/step"), n, None, prefix)?;
+    let step = read_rows_from::<u64>(
+        cx,
+        &open_ds(cx, g, object, STEP.name)?,
+        &format!("{object}/step"),
+        n,
+        None,
+        prefix,
+    )?;
     let q = f64s(&POSITIONS, Some(n_dof))?;
     let v = f64s(&VELOCITIES, Some(n_dof))?;
     let e = f64s(&ENERGIES, Some(n_states))?;
-    let active = read_rows_from::<u32>(cx, &open_ds(cx, g, object, ACTIVE.name)?, &format!("{object}/active_state"), n, None, prefix)?;
-    let amps = read_rows_from::<Complex64>(cx, &open_ds(cx, g, object, AMPLITUDES.name)?, &format!("{object}/amplitudes"), n, Some(n_states), prefix)?;
+    let active = read_rows_from::<u32>(
+        cx,
+        &open_ds(cx, g, object, ACTIVE.name)?,
+        &format!("{object}/active_state"),
+        n,
+        None,
+        prefix,
+    )?;
+    let amps = read_rows_from::<Complex64>(
+        cx,
+        &open_ds(cx, g, object, AMPLITUDES.name)?,
+        &format!("{object}/amplitudes"),
+        n,
+        Some(n_states),
+        prefix,
+    )?;
     let kin = f64s(&KINETIC, None)?;
     let pot = f64s(&POTENTIAL, None)?;
     let tot = f64s(&TOTAL, None)?;
@@ -1548,32 +2416,107 @@ fn read_step_rows(cx: Ctx, g: &Group, object: &str, n: usize, n_dof: usize, n_st
 }
 
 /// The diagnostics of the first `n` rows; "none" for files that predate them.
-fn read_diagnostics(cx: Ctx, g: &Group, object: &str, n: usize, n_states: usize, prefix: bool) -> Result<Vec<RowDiagnostics>, EnsembleError> {
+fn read_diagnostics(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    n: usize,
+    n_states: usize,
+    prefix: bool,
+) -> Result<Vec<RowDiagnostics>, EnsembleError> {
     if !g.link_exists(SOLVER_ITERATIONS.name) {
         return Ok(vec![RowDiagnostics::none(n_states); n]);
     }
     let o = |spec: &Spec| format!("{object}/{}", spec.name);
-    let it = read_rows_from::<i32>(cx, &open_ds(cx, g, object, SOLVER_ITERATIONS.name)?, &o(&SOLVER_ITERATIONS), n, None, prefix)?;
-    let rit = read_rows_from::<i32>(cx, &open_ds(cx, g, object, RESPONSE_ITERATIONS.name)?, &o(&RESPONSE_ITERATIONS), n, None, prefix)?;
-    let s2 = read_rows_from::<f64>(cx, &open_ds(cx, g, object, SPIN_SQUARED.name)?, &o(&SPIN_SQUARED), n, Some(n_states), prefix)?;
-    Ok((0..n).map(|k| RowDiagnostics { iterations: it[k], response_iterations: rit[k], spin_squared: s2[k * n_states..(k + 1) * n_states].to_vec() }).collect())
+    let it = read_rows_from::<i32>(
+        cx,
+        &open_ds(cx, g, object, SOLVER_ITERATIONS.name)?,
+        &o(&SOLVER_ITERATIONS),
+        n,
+        None,
+        prefix,
+    )?;
+    let rit = read_rows_from::<i32>(
+        cx,
+        &open_ds(cx, g, object, RESPONSE_ITERATIONS.name)?,
+        &o(&RESPONSE_ITERATIONS),
+        n,
+        None,
+        prefix,
+    )?;
+    let s2 = read_rows_from::<f64>(
+        cx,
+        &open_ds(cx, g, object, SPIN_SQUARED.name)?,
+        &o(&SPIN_SQUARED),
+        n,
+        Some(n_states),
+        prefix,
+    )?;
+    Ok((0..n)
+        .map(|k| RowDiagnostics {
+            iterations: it[k],
+            response_iterations: rit[k],
+            spin_squared: s2[k * n_states..(k + 1) * n_states].to_vec(),
+        })
+        .collect())
 }
 
 /// The first `n` warnings; none for files that predate them.
-fn read_warnings(cx: Ctx, g: &Group, object: &str, n: usize, prefix: bool) -> Result<Vec<WarningRow>, EnsembleError> {
+fn read_warnings(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    n: usize,
+    prefix: bool,
+) -> Result<Vec<WarningRow>, EnsembleError> {
     if !g.link_exists("warnings") {
-        return if n == 0 { Ok(vec![]) } else { Err(cx.layout(&format!("{object}/warnings"), "group is missing")) };
+        return if n == 0 {
+            Ok(vec![])
+        } else {
+            Err(cx.layout(&format!("{object}/warnings"), "group is missing"))
+        };
     }
     let wobject = format!("{object}/warnings");
-    let wg = g.group("warnings").map_err(cx.h5(&wobject, "opening group"))?;
-    let steps = read_rows_from::<u64>(cx, &open_ds(cx, &wg, &wobject, "step")?, &format!("{wobject}/step"), n, None, prefix)?;
-    let texts = read_rows_from::<VarLenUnicode>(cx, &open_ds(cx, &wg, &wobject, "text")?, &format!("{wobject}/text"), n, None, prefix)?;
-    Ok(steps.into_iter().zip(texts).map(|(step, t)| WarningRow { step, text: t.as_str().to_string() }).collect())
+    let wg = g
+        .group("warnings")
+        .map_err(cx.h5(&wobject, "opening group"))?;
+    let steps = read_rows_from::<u64>(
+        cx,
+        &open_ds(cx, &wg, &wobject, "step")?,
+        &format!("{wobject}/step"),
+        n,
+        None,
+        prefix,
+    )?;
+    let texts = read_rows_from::<VarLenUnicode>(
+        cx,
+        &open_ds(cx, &wg, &wobject, "text")?,
+        &format!("{wobject}/text"),
+        n,
+        None,
+        prefix,
+    )?;
+    Ok(steps
+        .into_iter()
+        .zip(texts)
+        .map(|(step, t)| WarningRow {
+            step,
+            text: t.as_str().to_string(),
+        })
+        .collect())
 }
 
-fn read_hops(cx: Ctx, g: &Group, object: &str, n: usize, prefix: bool) -> Result<Vec<Hop>, EnsembleError> {
+fn read_hops(
+    cx: Ctx,
+    g: &Group,
+    object: &str,
+    n: usize,
+    prefix: bool,
+) -> Result<Vec<Hop>, EnsembleError> {
     let hobject = format!("{object}/hops");
-    let hg = g.group("hops").map_err(|_| cx.layout(&hobject, "group is missing"))?;
+    let hg = g
+        .group("hops")
+        .map_err(|_| cx.layout(&hobject, "group is missing"))?;
     let ds = |name: &str| open_ds(cx, &hg, &hobject, name);
     let o = |name: &str| format!("{hobject}/{name}");
     let f = |name: &str| read_rows_from::<f64>(cx, &ds(name)?, &o(name), n, None, prefix);
@@ -1590,9 +2533,23 @@ fn read_hops(cx: Ctx, g: &Group, object: &str, n: usize, prefix: bool) -> Result
             let accepted = match accepted[k] {
                 0 => false,
                 1 => true,
-                x => return Err(cx.layout(&o("accepted"), format!("row {k} holds {x}, expected 0 or 1"))),
+                x => {
+                    return Err(cx.layout(
+                        &o("accepted"),
+                        format!("row {k} holds {x}, expected 0 or 1"),
+                    ))
+                }
             };
-            Ok(Hop { step: step[k], time: time[k], from: from[k] as usize, to: to[k] as usize, accepted, gap: gap[k], kinetic_before: before[k], kinetic_after: after[k] })
+            Ok(Hop {
+                step: step[k],
+                time: time[k],
+                from: from[k] as usize,
+                to: to[k] as usize,
+                accepted,
+                gap: gap[k],
+                kinetic_before: before[k],
+                kinetic_after: after[k],
+            })
         })
         .collect()
 }
@@ -1610,16 +2567,24 @@ fn read_hops(cx: Ctx, g: &Group, object: &str, n: usize, prefix: bool) -> Result
 /// error the partial output is removed.
 pub fn merge(parts: &[PathBuf], out: &Path) -> Result<MergeReport, EnsembleError> {
     if out.exists() {
-        return Err(EnsembleError::Exists { file: out.to_path_buf() });
+        return Err(EnsembleError::Exists {
+            file: out.to_path_buf(),
+        });
     }
     merge_checked(parts, out, false)
 }
 
 /// [`merge`], probing every part in a child process first when `probe`
 /// (see [`probe_in_child`]; for single-threaded callers such as the CLI).
-pub fn merge_checked(parts: &[PathBuf], out: &Path, probe: bool) -> Result<MergeReport, EnsembleError> {
+pub fn merge_checked(
+    parts: &[PathBuf],
+    out: &Path,
+    probe: bool,
+) -> Result<MergeReport, EnsembleError> {
     if out.exists() {
-        return Err(EnsembleError::Exists { file: out.to_path_buf() });
+        return Err(EnsembleError::Exists {
+            file: out.to_path_buf(),
+        });
     }
     if probe {
         for p in parts {
@@ -1629,7 +2594,8 @@ pub fn merge_checked(parts: &[PathBuf], out: &Path, probe: bool) -> Result<Merge
     let readers = open_parts(parts)?;
     let owner = check_disjoint(&readers)?;
     let meta = merged_meta(&readers[0].meta, owner.keys().copied().collect());
-    let result = write_merged(&readers, &meta, out).and_then(|report| verify_merged(&readers, out).map(|()| report));
+    let result = write_merged(&readers, &meta, out)
+        .and_then(|report| verify_merged(&readers, out).map(|()| report));
     if result.is_err() {
         // The output was created by this call: remove the partial file.
         let _ = std::fs::remove_file(out);
@@ -1639,16 +2605,29 @@ pub fn merge_checked(parts: &[PathBuf], out: &Path, probe: bool) -> Result<Merge
 
 fn open_parts(parts: &[PathBuf]) -> Result<Vec<PartReader>, EnsembleError> {
     if parts.is_empty() {
-        return Err(EnsembleError::Input { file: PathBuf::new(), object: "merge".into(), what: "no part files given".into() });
+        return Err(EnsembleError::Input {
+            file: PathBuf::new(),
+            object: "merge".into(),
+            what: "no part files given".into(),
+        });
     }
-    let readers = parts.iter().map(|p| PartReader::open(p)).collect::<Result<Vec<_>, _>>()?;
+    let readers = parts
+        .iter()
+        .map(|p| PartReader::open(p))
+        .collect::<Result<Vec<_>, _>>()?;
     let first = &readers[0];
     for r in &readers {
         if r.state == WriterState::Open {
-            return Err(EnsembleError::NotClosed { file: r.path.clone() });
+            return Err(EnsembleError::NotClosed {
+                file: r.path.clone(),
+            });
         }
         if let Some(what) = meta_difference(&first.meta, &r.meta) {
-            return Err(EnsembleError::Mismatch { first: first.path.clone(), second: r.path.clone(), what });
+            return Err(EnsembleError::Mismatch {
+                first: first.path.clone(),
+                second: r.path.clone(),
+                what,
+            });
         }
     }
     Ok(readers)
@@ -1670,7 +2649,10 @@ fn meta_difference(a: &PartMeta, b: &PartMeta) -> Option<String> {
         return Some("masses".into());
     }
     if a.timestep_au.to_bits() != b.timestep_au.to_bits() {
-        return Some(format!("timestep_au ({} vs {})", a.timestep_au, b.timestep_au));
+        return Some(format!(
+            "timestep_au ({} vs {})",
+            a.timestep_au, b.timestep_au
+        ));
     }
     None
 }
@@ -1679,12 +2661,22 @@ fn meta_difference(a: &PartMeta, b: &PartMeta) -> Option<String> {
 fn check_disjoint(readers: &[PartReader]) -> Result<BTreeMap<usize, usize>, EnsembleError> {
     let mut owner: BTreeMap<usize, usize> = BTreeMap::new();
     for (k, r) in readers.iter().enumerate() {
-        let mut mine: Vec<usize> = r.meta.trajectories.iter().chain(&r.indices).copied().collect();
+        let mut mine: Vec<usize> = r
+            .meta
+            .trajectories
+            .iter()
+            .chain(&r.indices)
+            .copied()
+            .collect();
         mine.sort_unstable();
         mine.dedup();
         for index in mine {
             if let Some(&j) = owner.get(&index) {
-                return Err(EnsembleError::Duplicate { index, first: readers[j].path.clone(), second: r.path.clone() });
+                return Err(EnsembleError::Duplicate {
+                    index,
+                    first: readers[j].path.clone(),
+                    second: r.path.clone(),
+                });
             }
             owner.insert(index, k);
         }
@@ -1702,14 +2694,30 @@ fn merged_meta(first: &PartMeta, trajectories: Vec<usize>) -> PartMeta {
     }
 }
 
-fn write_merged(readers: &[PartReader], meta: &PartMeta, out: &Path) -> Result<MergeReport, EnsembleError> {
+fn write_merged(
+    readers: &[PartReader],
+    meta: &PartMeta,
+    out: &Path,
+) -> Result<MergeReport, EnsembleError> {
     let mut w = PartWriter::create(out, meta)?;
-    let mut report = MergeReport { output: out.to_path_buf(), parts: readers.len(), trajectories: 0, rows: 0, hops: 0 };
+    let mut report = MergeReport {
+        output: out.to_path_buf(),
+        parts: readers.len(),
+        trajectories: 0,
+        rows: 0,
+        hops: 0,
+    };
     for r in readers {
         for &index in &r.indices {
             let data = r.read(index)?;
             w.begin(&data.header)?;
-            w.append_all(index, &data.rows, &data.diagnostics, &data.hops, &data.warnings)?;
+            w.append_all(
+                index,
+                &data.rows,
+                &data.diagnostics,
+                &data.hops,
+                &data.warnings,
+            )?;
             let g = w.group(index)?;
             write_status(Ctx(out), &g, &group_path(index), &data.status, data.phase)?;
             report.trajectories += 1;
@@ -1723,11 +2731,19 @@ fn write_merged(readers: &[PartReader], meta: &PartMeta, out: &Path) -> Result<M
 
 fn verify_merged(readers: &[PartReader], out: &Path) -> Result<(), EnsembleError> {
     let merged = PartReader::open(out)?;
-    let fail = |what: String| Err(EnsembleError::Verify { file: out.to_path_buf(), what });
+    let fail = |what: String| {
+        Err(EnsembleError::Verify {
+            file: out.to_path_buf(),
+            what,
+        })
+    };
     for r in readers {
         for &index in &r.indices {
             if merged.indices.binary_search(&index).is_err() {
-                return fail(format!("trajectory {index} from {} is missing", r.path.display()));
+                return fail(format!(
+                    "trajectory {index} from {} is missing",
+                    r.path.display()
+                ));
             }
             let (a, b) = (r.summary(index)?, merged.summary(index)?);
             if (a.steps, a.hops, a.phase) != (b.steps, b.hops, b.phase) || a.status != b.status {

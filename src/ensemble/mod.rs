@@ -3,5 +3,5 @@
 
 pub mod checkpoint;
 pub mod h5;
-pub mod runner;
 pub mod record;
+pub mod runner;

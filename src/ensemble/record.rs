@@ -86,7 +86,11 @@ pub struct RowDiagnostics {
 impl RowDiagnostics {
     /// "Nothing reported" for `n_states` states.
     pub fn none(n_states: usize) -> Self {
-        Self { iterations: -1, response_iterations: -1, spin_squared: vec![f64::NAN; n_states] }
+        Self {
+            iterations: -1,
+            response_iterations: -1,
+            spin_squared: vec![f64::NAN; n_states],
+        }
     }
 
     /// The stored form of a back end's [`Diagnostics`]: counts beyond
@@ -99,12 +103,19 @@ impl RowDiagnostics {
                 *dst = *src;
             }
         }
-        Self { iterations: count(d.iterations), response_iterations: count(d.response_iterations), spin_squared }
+        Self {
+            iterations: count(d.iterations),
+            response_iterations: count(d.response_iterations),
+            spin_squared,
+        }
     }
 
     /// The values as bit patterns (for exact comparisons: NaN ≠ NaN).
     pub fn bits(&self) -> Vec<u64> {
-        let mut v = vec![self.iterations as u32 as u64, self.response_iterations as u32 as u64];
+        let mut v = vec![
+            self.iterations as u32 as u64,
+            self.response_iterations as u32 as u64,
+        ];
         v.extend(self.spin_squared.iter().map(|x| x.to_bits()));
         v
     }
@@ -159,7 +170,11 @@ pub struct RowBlock {
 impl RowBlock {
     /// An empty block for rows of `n_dof` coordinates and `n_states` states.
     pub fn new(n_dof: usize, n_states: usize) -> Self {
-        Self { n_dof, n_states, ..Self::default() }
+        Self {
+            n_dof,
+            n_states,
+            ..Self::default()
+        }
     }
 
     /// An empty block with room for `rows` rows.
@@ -196,7 +211,16 @@ impl RowBlock {
     /// Forget the rows, keep the buffers.
     pub fn clear(&mut self) {
         let (n_dof, n_states) = (self.n_dof, self.n_states);
-        for v in [&mut self.time, &mut self.q, &mut self.v, &mut self.energies, &mut self.kinetic, &mut self.potential, &mut self.total, &mut self.spin_squared] {
+        for v in [
+            &mut self.time,
+            &mut self.q,
+            &mut self.v,
+            &mut self.energies,
+            &mut self.kinetic,
+            &mut self.potential,
+            &mut self.total,
+            &mut self.spin_squared,
+        ] {
             v.clear();
         }
         self.step.clear();
@@ -209,7 +233,19 @@ impl RowBlock {
 
     /// Append one row given by its parts (the widths are checked by the writer).
     #[allow(clippy::too_many_arguments)]
-    pub fn push(&mut self, step: u64, time: f64, q: &[f64], v: &[f64], energies: &[f64], active: u32, amplitudes: &[Complex64], kinetic: f64, potential: f64, diagnostics: &Diagnostics) {
+    pub fn push(
+        &mut self,
+        step: u64,
+        time: f64,
+        q: &[f64],
+        v: &[f64],
+        energies: &[f64],
+        active: u32,
+        amplitudes: &[Complex64],
+        kinetic: f64,
+        potential: f64,
+        diagnostics: &Diagnostics,
+    ) {
         self.step.push(step);
         self.time.push(time);
         self.q.extend_from_slice(q);
@@ -222,7 +258,8 @@ impl RowBlock {
         self.total.push(kinetic + potential);
         let count = |c: Option<u32>| c.map_or(-1, |c| i32::try_from(c).unwrap_or(i32::MAX));
         self.iterations.push(count(diagnostics.iterations));
-        self.response_iterations.push(count(diagnostics.response_iterations));
+        self.response_iterations
+            .push(count(diagnostics.response_iterations));
         let start = self.spin_squared.len();
         self.spin_squared.resize(start + self.n_states, f64::NAN);
         if let Some(s) = &diagnostics.spin_squared {

@@ -36,7 +36,9 @@ use super::checkpoint::{self, with_suffix, Checkpoint, Source};
 use super::h5::{now_rfc3339, Counts, EnsembleError, PartReader, PartWriter, WriterState};
 use super::record::{PartMeta, RowBlock, TrajectoryHeader, WarningRow};
 use crate::config::RunConfig;
-use crate::dynamics::{Flow, Hop, Observer, RecordKind, Status, StepRecord, Trajectory, TrajectoryState};
+use crate::dynamics::{
+    Flow, Hop, Observer, RecordKind, Status, StepRecord, Trajectory, TrajectoryState,
+};
 use crate::electronic::{Backend, Snapshot};
 use crate::swarm::{self, Progress};
 
@@ -129,11 +131,22 @@ struct Batch {
 enum ToWriter {
     Begin(TrajectoryHeader),
     /// Append rows; with a checkpoint, write it at the next commit.
-    Append { batch: Batch, checkpoint: Option<Box<PendingCheckpoint>> },
+    Append {
+        batch: Batch,
+        checkpoint: Option<Box<PendingCheckpoint>>,
+    },
     /// Final rows and status; the checkpoint files are removed after the next commit.
-    Finish { batch: Batch, status: Status, checkpoint: PathBuf },
+    Finish {
+        batch: Batch,
+        status: Status,
+        checkpoint: PathBuf,
+    },
     /// Final rows and checkpoint of a stopped trajectory: commit at once and answer.
-    Stop { batch: Batch, checkpoint: Box<PendingCheckpoint>, ack: SyncSender<Result<(), String>> },
+    Stop {
+        batch: Batch,
+        checkpoint: Box<PendingCheckpoint>,
+        ack: SyncSender<Result<(), String>>,
+    },
 }
 
 /// Emptied row blocks, handed back by the writer so that trajectories
@@ -168,9 +181,15 @@ impl WriterLoop {
         };
         self.dirty = true;
         if !(b.rows.is_empty() && b.hops.is_empty() && b.warnings.is_empty()) {
-            self.w.append_block(b.index, &b.rows, &b.hops, &b.warnings).map_err(|e| e.to_string())?;
+            self.w
+                .append_block(b.index, &b.rows, &b.hops, &b.warnings)
+                .map_err(|e| e.to_string())?;
         }
-        let c = Counts { rows: c.rows + b.rows.len() as u64, hops: c.hops + b.hops.len() as u64, warnings: c.warnings + b.warnings.len() as u64 };
+        let c = Counts {
+            rows: c.rows + b.rows.len() as u64,
+            hops: c.hops + b.hops.len() as u64,
+            warnings: c.warnings + b.warnings.len() as u64,
+        };
         self.counts.insert(b.index, c);
         Ok(c)
     }
@@ -203,18 +222,30 @@ impl WriterLoop {
                 self.w.begin(&h).map_err(|e| e.to_string())
             }
             ToWriter::Append { .. } => unreachable!("handled above"),
-            ToWriter::Finish { batch, status, checkpoint } => {
+            ToWriter::Finish {
+                batch,
+                status,
+                checkpoint,
+            } => {
                 self.append(&batch)?;
-                self.w.set_status(batch.index, &status).map_err(|e| e.to_string())?;
+                self.w
+                    .set_status(batch.index, &status)
+                    .map_err(|e| e.to_string())?;
                 // A checkpoint still queued is superseded by the end itself.
                 self.pending.remove(&batch.index);
                 self.to_remove.push(checkpoint);
                 Ok(())
             }
-            ToWriter::Stop { batch, checkpoint, ack } => {
+            ToWriter::Stop {
+                batch,
+                checkpoint,
+                ack,
+            } => {
                 let result = (|| {
                     let c = self.append(&batch)?;
-                    self.w.mark_stopped(batch.index).map_err(|e| e.to_string())?;
+                    self.w
+                        .mark_stopped(batch.index)
+                        .map_err(|e| e.to_string())?;
                     self.pending.insert(batch.index, (checkpoint, c));
                     self.commit()
                 })();
@@ -224,7 +255,11 @@ impl WriterLoop {
         }
     }
 
-    fn handle_append(&mut self, batch: &Batch, checkpoint: Option<Box<PendingCheckpoint>>) -> Result<(), String> {
+    fn handle_append(
+        &mut self,
+        batch: &Batch,
+        checkpoint: Option<Box<PendingCheckpoint>>,
+    ) -> Result<(), String> {
         let c = self.append(batch)?;
         if let Some(ck) = checkpoint {
             self.pending.insert(batch.index, (ck, c));
@@ -261,7 +296,11 @@ impl WriterLoop {
             let batch: Vec<(PathBuf, Checkpoint)> = std::mem::take(&mut self.pending)
                 .into_iter()
                 .map(|(index, (ck, c))| {
-                    let PendingCheckpoint { path, state, snapshot } = *ck;
+                    let PendingCheckpoint {
+                        path,
+                        state,
+                        snapshot,
+                    } = *ck;
                     let ckpt = Checkpoint {
                         format: checkpoint::FORMAT.into(),
                         version: 1,
@@ -297,8 +336,24 @@ impl WriterLoop {
     }
 }
 
-fn writer_loop(w: PartWriter, rx: mpsc::Receiver<ToWriter>, stop: Arc<AtomicBool>, pool: BlockPool) -> Result<(), String> {
-    let mut st = WriterLoop { pool, w, counts: HashMap::new(), pending: BTreeMap::new(), to_remove: Vec::new(), dirty: false, queued_checkpoints: 0, failure: None, stop, last_flush: Instant::now() };
+fn writer_loop(
+    w: PartWriter,
+    rx: mpsc::Receiver<ToWriter>,
+    stop: Arc<AtomicBool>,
+    pool: BlockPool,
+) -> Result<(), String> {
+    let mut st = WriterLoop {
+        pool,
+        w,
+        counts: HashMap::new(),
+        pending: BTreeMap::new(),
+        to_remove: Vec::new(),
+        dirty: false,
+        queued_checkpoints: 0,
+        failure: None,
+        stop,
+        last_flush: Instant::now(),
+    };
     loop {
         let msg = match rx.try_recv() {
             Ok(m) => m,
@@ -373,7 +428,18 @@ impl Recorder<'_> {
         let s = rec.state;
         if self.last_recorded_step != Some(s.step) {
             let kinetic = s.kinetic(rec.masses);
-            self.rows.push(s.step, s.time, &s.q, &s.v, &s.energies, s.active as u32, &s.amplitudes, kinetic, s.potential(), &s.diagnostics);
+            self.rows.push(
+                s.step,
+                s.time,
+                &s.q,
+                &s.v,
+                &s.energies,
+                s.active as u32,
+                &s.amplitudes,
+                kinetic,
+                s.potential(),
+                &s.diagnostics,
+            );
             self.last_recorded_step = Some(s.step);
         }
     }
@@ -382,18 +448,33 @@ impl Recorder<'_> {
         let recycled = self.pool.lock().unwrap_or_else(|p| p.into_inner()).pop();
         let fresh = match recycled {
             Some(b) if (b.n_dof, b.n_states) == (self.rows.n_dof, self.rows.n_states) => b,
-            _ => RowBlock::with_capacity(self.rows.n_dof, self.rows.n_states, self.rows.len().clamp(16, BLOCK_ROWS)),
+            _ => RowBlock::with_capacity(
+                self.rows.n_dof,
+                self.rows.n_states,
+                self.rows.len().clamp(16, BLOCK_ROWS),
+            ),
         };
         let rows = std::mem::replace(&mut self.rows, fresh);
-        Batch { index: self.index, rows, hops: std::mem::take(&mut self.hops), warnings: std::mem::take(&mut self.warnings) }
+        Batch {
+            index: self.index,
+            rows,
+            hops: std::mem::take(&mut self.hops),
+            warnings: std::mem::take(&mut self.warnings),
+        }
     }
 
     fn send(&self, msg: ToWriter) -> Result<(), String> {
-        self.writer.send(msg).map_err(|_| "the writer has stopped".to_string())
+        self.writer
+            .send(msg)
+            .map_err(|_| "the writer has stopped".to_string())
     }
 
     fn pending_checkpoint(&self, rec: &StepRecord) -> Box<PendingCheckpoint> {
-        Box::new(PendingCheckpoint { path: self.checkpoint_path.clone(), state: rec.state.clone(), snapshot: rec.backend.snapshot() })
+        Box::new(PendingCheckpoint {
+            path: self.checkpoint_path.clone(),
+            state: rec.state.clone(),
+            snapshot: rec.backend.snapshot(),
+        })
     }
 
     fn checkpoint(&mut self, rec: &StepRecord) -> Result<(), String> {
@@ -413,7 +494,10 @@ impl Observer for Recorder<'_> {
                 if !self.resumed {
                     self.record(rec);
                     for w in &rec.state.diagnostics.warnings {
-                        self.warnings.push(WarningRow { step: rec.state.step, text: w.clone() });
+                        self.warnings.push(WarningRow {
+                            step: rec.state.step,
+                            text: w.clone(),
+                        });
                     }
                 }
                 Ok(Flow::Continue)
@@ -426,7 +510,10 @@ impl Observer for Recorder<'_> {
                     self.hops.push(h.clone());
                 }
                 for w in &rec.state.diagnostics.warnings {
-                    self.warnings.push(WarningRow { step: rec.state.step, text: w.clone() });
+                    self.warnings.push(WarningRow {
+                        step: rec.state.step,
+                        text: w.clone(),
+                    });
                 }
                 // Checkpoints and stops add no rows of their own: the rows
                 // follow the `record_every` cadence whatever happens, so a
@@ -436,27 +523,43 @@ impl Observer for Recorder<'_> {
                     let (ack, answer) = mpsc::sync_channel(1);
                     let checkpoint = self.pending_checkpoint(rec);
                     let batch = self.take_batch();
-                    self.send(ToWriter::Stop { batch, checkpoint, ack })?;
-                    answer.recv().map_err(|_| "the writer has stopped".to_string())??;
+                    self.send(ToWriter::Stop {
+                        batch,
+                        checkpoint,
+                        ack,
+                    })?;
+                    answer
+                        .recv()
+                        .map_err(|_| "the writer has stopped".to_string())??;
                     self.stopped = true;
                     return Ok(Flow::Stop);
                 }
-                let by_steps = self.checkpoint_every > 0 && rec.state.step - self.last_checkpoint_step >= self.checkpoint_every;
+                let by_steps = self.checkpoint_every > 0
+                    && rec.state.step - self.last_checkpoint_step >= self.checkpoint_every;
                 let by_time = self.last_checkpoint.elapsed() >= self.checkpoint_interval;
                 if by_steps || by_time {
                     self.checkpoint(rec)?;
-                } else if self.rows.len() >= BLOCK_ROWS || self.rows.len() * self.row_bytes >= BLOCK_BYTES {
+                } else if self.rows.len() >= BLOCK_ROWS
+                    || self.rows.len() * self.row_bytes >= BLOCK_BYTES
+                {
                     // A block of rows without a checkpoint: written, but only
                     // vouched for by the next checkpoint.
                     let batch = self.take_batch();
-                    self.send(ToWriter::Append { batch, checkpoint: None })?;
+                    self.send(ToWriter::Append {
+                        batch,
+                        checkpoint: None,
+                    })?;
                 }
                 Ok(Flow::Continue)
             }
             RecordKind::End => {
                 self.record(rec);
                 let batch = self.take_batch();
-                let msg = ToWriter::Finish { batch, status: rec.state.status.clone(), checkpoint: self.checkpoint_path.clone() };
+                let msg = ToWriter::Finish {
+                    batch,
+                    status: rec.state.status.clone(),
+                    checkpoint: self.checkpoint_path.clone(),
+                };
                 self.send(msg)?;
                 Ok(Flow::Continue)
             }
@@ -485,7 +588,12 @@ struct Session<'a> {
 }
 
 impl Session<'_> {
-    fn run_one(&self, index: usize, plan: Plan, writer: SyncSender<ToWriter>) -> Result<Ended, String> {
+    fn run_one(
+        &self,
+        index: usize,
+        plan: Plan,
+        writer: SyncSender<ToWriter>,
+    ) -> Result<Ended, String> {
         if self.stop.load(Ordering::Relaxed) {
             return Ok(Ended::Skipped);
         }
@@ -504,7 +612,13 @@ impl Session<'_> {
             // growth (reallocation, copying, page faults) while recording.
             rows: match self.pool.lock().unwrap_or_else(|p| p.into_inner()).pop() {
                 Some(b) if (b.n_dof, b.n_states) == (n_dof, n_states) => b,
-                _ => RowBlock::with_capacity(n_dof, n_states, BLOCK_ROWS.min(BLOCK_BYTES / (8 * (2 * n_dof + 2 * n_states + 6) + 16 * n_states).max(1))),
+                _ => RowBlock::with_capacity(
+                    n_dof,
+                    n_states,
+                    BLOCK_ROWS.min(
+                        BLOCK_BYTES / (8 * (2 * n_dof + 2 * n_states + 6) + 16 * n_states).max(1),
+                    ),
+                ),
             },
             hops: Vec::new(),
             warnings: Vec::new(),
@@ -521,15 +635,44 @@ impl Session<'_> {
         let mut traj = match plan {
             Plan::Fresh => {
                 let (q, v, state) = swarm::initial_condition(self.cfg, &masses, index);
-                let header = TrajectoryHeader { index, q0: q.clone(), v0: v.clone(), initial_state: state, seed: self.cfg.seed };
-                writer.send(ToWriter::Begin(header)).map_err(|_| "the writer has stopped".to_string())?;
+                let header = TrajectoryHeader {
+                    index,
+                    q0: q.clone(),
+                    v0: v.clone(),
+                    initial_state: state,
+                    seed: self.cfg.seed,
+                };
+                writer
+                    .send(ToWriter::Begin(header))
+                    .map_err(|_| "the writer has stopped".to_string())?;
                 let rng = swarm::trajectory_rng(self.cfg.seed, index, 1);
-                match Trajectory::start(backend.as_mut(), self.cfg.settings.clone(), q, v, state, rng) {
+                match Trajectory::start(
+                    backend.as_mut(),
+                    self.cfg.settings.clone(),
+                    q,
+                    v,
+                    state,
+                    rng,
+                ) {
                     Ok(t) => t,
                     Err(e) => {
-                        let status = Status::Failed { step: 0, reason: e.to_string() };
-                        let batch = Batch { index, rows: RowBlock::new(n_dof, n_states), hops: vec![], warnings: vec![] };
-                        writer.send(ToWriter::Finish { batch, status, checkpoint: path }).map_err(|_| "the writer has stopped".to_string())?;
+                        let status = Status::Failed {
+                            step: 0,
+                            reason: e.to_string(),
+                        };
+                        let batch = Batch {
+                            index,
+                            rows: RowBlock::new(n_dof, n_states),
+                            hops: vec![],
+                            warnings: vec![],
+                        };
+                        writer
+                            .send(ToWriter::Finish {
+                                batch,
+                                status,
+                                checkpoint: path,
+                            })
+                            .map_err(|_| "the writer has stopped".to_string())?;
                         return Ok(Ended::Done);
                     }
                 }
@@ -551,7 +694,11 @@ impl Session<'_> {
             }
         };
         traj.run(&mut rec)?;
-        Ok(if rec.stopped { Ended::Stopped } else { Ended::Done })
+        Ok(if rec.stopped {
+            Ended::Stopped
+        } else {
+            Ended::Done
+        })
     }
 }
 
@@ -568,9 +715,17 @@ pub struct Options<'a> {
 }
 
 /// Start a new run of slice (k, n) in `dir`, which must not exist yet.
-pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
+pub fn start(
+    cfg: &RunConfig,
+    dir: &Path,
+    slice: (usize, usize),
+    opts: &Options,
+) -> Result<RunReport, RunError> {
     let (k, n) = slice;
-    let derr = |message: String| RunError::Directory { path: dir.to_path_buf(), message };
+    let derr = |message: String| RunError::Directory {
+        path: dir.to_path_buf(),
+        message,
+    };
     if dir.join(part_name(k, n)).exists() {
         return Err(derr(format!("already holds a run of slice {k}/{n}; use `flipswarm resume` to continue it, or choose another directory")));
     }
@@ -591,7 +746,8 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
             )));
         }
     }
-    std::fs::create_dir_all(checkpoint_dir(dir, k)).map_err(|e| derr(format!("cannot create: {e}")))?;
+    std::fs::create_dir_all(checkpoint_dir(dir, k))
+        .map_err(|e| derr(format!("cannot create: {e}")))?;
     let contained = prepare(cfg, dir)?;
     let cfg = &contained;
     let indices = slice_indices(cfg.trajectories, k, n);
@@ -621,14 +777,18 @@ pub fn start(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options)
 /// `run.toml` must describe the same run. Returns the configuration as the
 /// run directory holds it.
 pub fn prepare(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
-    let derr = |message: String| RunError::Directory { path: dir.to_path_buf(), message };
+    let derr = |message: String| RunError::Directory {
+        path: dir.to_path_buf(),
+        message,
+    };
     std::fs::create_dir_all(dir).map_err(|e| derr(format!("cannot create: {e}")))?;
     let mut contained = self_contained(cfg, dir)?;
     let toml_path = dir.join("run.toml");
     if toml_path.exists() {
         // Other slices of the same ensemble share the directory and its
         // run.toml; the stored text stays the reference for every part file.
-        let stored = std::fs::read_to_string(&toml_path).map_err(|e| derr(format!("cannot read run.toml: {e}")))?;
+        let stored = std::fs::read_to_string(&toml_path)
+            .map_err(|e| derr(format!("cannot read run.toml: {e}")))?;
         let mut theirs = crate::config::load_str(&stored, "run.toml", dir, &[])?;
         theirs.effective_toml.clear();
         contained.effective_toml.clear();
@@ -637,7 +797,8 @@ pub fn prepare(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
         }
         contained.effective_toml = stored;
     } else {
-        write_new(&toml_path, contained.effective_toml.as_bytes()).map_err(|e| derr(format!("cannot write run.toml: {e}")))?;
+        write_new(&toml_path, contained.effective_toml.as_bytes())
+            .map_err(|e| derr(format!("cannot write run.toml: {e}")))?;
     }
     Ok(contained)
 }
@@ -654,7 +815,10 @@ pub fn slice_progress(dir: &Path, k: usize, n: usize) -> Result<Option<(usize, u
     let mut ended = 0;
     for i in reader.trajectory_indices() {
         let (_, phase) = reader.status(i)?;
-        if matches!(phase, crate::ensemble::h5::Phase::Finished | crate::ensemble::h5::Phase::Failed) {
+        if matches!(
+            phase,
+            crate::ensemble::h5::Phase::Finished | crate::ensemble::h5::Phase::Failed
+        ) {
             ended += 1;
         }
     }
@@ -666,9 +830,15 @@ pub fn slice_progress(dir: &Path, k: usize, n: usize) -> Result<Option<(usize, u
 pub fn load_run_config(dir: &Path) -> Result<RunConfig, RunError> {
     let toml = dir.join("run.toml");
     if !toml.exists() {
-        return Err(RunError::Directory { path: dir.to_path_buf(), message: "not a run directory (no run.toml)".into() });
+        return Err(RunError::Directory {
+            path: dir.to_path_buf(),
+            message: "not a run directory (no run.toml)".into(),
+        });
     }
-    let text = std::fs::read_to_string(&toml).map_err(|e| RunError::Directory { path: toml.clone(), message: e.to_string() })?;
+    let text = std::fs::read_to_string(&toml).map_err(|e| RunError::Directory {
+        path: toml.clone(),
+        message: e.to_string(),
+    })?;
     let mut cfg = crate::config::load_str(&text, &toml.display().to_string(), dir, &[])?;
     cfg.effective_toml = text;
     Ok(cfg)
@@ -715,10 +885,19 @@ pub fn disk_estimate(cfg: &RunConfig, slice: (usize, usize)) -> DiskEstimate {
     // tables (about 64 KiB whatever its length).
     let rows_allocated = rows.div_ceil(256).saturating_mul(256);
     let per_trajectory = rows_allocated.saturating_mul(row_bytes) / 4 * 5 + 64 * 1024;
-    let part_bytes = trajectories.saturating_mul(per_trajectory).saturating_add(64 * 1024);
+    let part_bytes = trajectories
+        .saturating_mul(per_trajectory)
+        .saturating_add(64 * 1024);
     let numbers = 5 * n_dof + 6 * n_states + n_states * n_states + 64;
     let checkpoint_bytes = trajectories.saturating_mul(3 * (26 * numbers + 1024));
-    DiskEstimate { trajectories, rows_per_trajectory: rows, datasets: 13, row_bytes, part_bytes, checkpoint_bytes }
+    DiskEstimate {
+        trajectories,
+        rows_per_trajectory: rows,
+        datasets: 13,
+        row_bytes,
+        part_bytes,
+        checkpoint_bytes,
+    }
 }
 
 /// Upper estimate of the part file's size for slice (k, n) (see [`disk_estimate`]).
@@ -730,7 +909,11 @@ pub fn estimated_bytes(cfg: &RunConfig, slice: (usize, usize)) -> u64 {
 fn free_bytes(dir: &Path) -> Option<u64> {
     use std::os::unix::ffi::OsStrExt;
     let probe = dir.ancestors().find(|p| p.exists())?;
-    let probe = if probe.as_os_str().is_empty() { Path::new(".") } else { probe };
+    let probe = if probe.as_os_str().is_empty() {
+        Path::new(".")
+    } else {
+        probe
+    };
     let c = std::ffi::CString::new(probe.as_os_str().as_bytes()).ok()?;
     let mut st: libc::statvfs = unsafe { std::mem::zeroed() };
     // SAFETY: `c` is a valid NUL-terminated path and `st` a valid out-pointer.
@@ -766,28 +949,40 @@ fn self_contained(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
     if let crate::config::ModelSpec::Lvc { path, .. } = &cfg.model {
         let copy = dir.join(MODEL_COPY);
         if !copy.exists() {
-            std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the LVC model {}: {e}", path.display()) })?;
+            std::fs::copy(path, &copy).map_err(|e| RunError::Directory {
+                path: copy.clone(),
+                message: format!("cannot copy the LVC model {}: {e}", path.display()),
+            })?;
         }
         sets.push(format!("model.file=\"{MODEL_COPY}\""));
     }
     if let crate::config::ModelSpec::Molecule { path, .. } = &cfg.model {
         let copy = dir.join(GEOMETRY_COPY);
         if !copy.exists() {
-            std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the geometry {}: {e}", path.display()) })?;
+            std::fs::copy(path, &copy).map_err(|e| RunError::Directory {
+                path: copy.clone(),
+                message: format!("cannot copy the geometry {}: {e}", path.display()),
+            })?;
         }
         sets.push(format!("model.geometry=\"{GEOMETRY_COPY}\""));
     }
     if let crate::config::Sampling::File { path, .. } = &cfg.sampling {
         let copy = dir.join(INITIAL_CONDITIONS_COPY);
         if !copy.exists() {
-            std::fs::copy(path, &copy).map_err(|e| RunError::Directory { path: copy.clone(), message: format!("cannot copy the initial conditions {}: {e}", path.display()) })?;
+            std::fs::copy(path, &copy).map_err(|e| RunError::Directory {
+                path: copy.clone(),
+                message: format!("cannot copy the initial conditions {}: {e}", path.display()),
+            })?;
         }
-        sets.push(format!("start.initial_conditions=\"{INITIAL_CONDITIONS_COPY}\""));
+        sets.push(format!(
+            "start.initial_conditions=\"{INITIAL_CONDITIONS_COPY}\""
+        ));
     }
     if sets.is_empty() {
         return Ok(cfg.clone());
     }
-    let effective = crate::config::Reader::parse(&cfg.effective_toml, "run.toml", &sets)?.effective_text();
+    let effective =
+        crate::config::Reader::parse(&cfg.effective_toml, "run.toml", &sets)?.effective_text();
     let mut out = crate::config::load_str(&effective, "run.toml", dir, &[])?;
     out.effective_toml = effective;
     Ok(out)
@@ -795,7 +990,10 @@ fn self_contained(cfg: &RunConfig, dir: &Path) -> Result<RunConfig, RunError> {
 
 fn write_new(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     use std::io::Write;
-    let mut f = std::fs::OpenOptions::new().write(true).create_new(true).open(path)?;
+    let mut f = std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(path)?;
     f.write_all(bytes)?;
     f.sync_all()
 }
@@ -808,20 +1006,34 @@ fn write_new(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
 /// completely and, of the others, exactly the rows their checkpoints vouch
 /// for, into a new file that replaces it. A cleanly closed file is
 /// continued in place, truncated to the checkpoints.
-pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options) -> Result<RunReport, RunError> {
+pub fn resume(
+    cfg: &RunConfig,
+    dir: &Path,
+    slice: (usize, usize),
+    opts: &Options,
+) -> Result<RunReport, RunError> {
     let (k, n) = slice;
     let part = dir.join(part_name(k, n));
     let killed_copy = with_suffix(&part, ".killed");
     if !part.exists() && killed_copy.exists() {
         // A rebuild was interrupted between its two renames: take the original back.
-        std::fs::rename(&killed_copy, &part).map_err(|e| RunError::Directory { path: part.clone(), message: e.to_string() })?;
+        std::fs::rename(&killed_copy, &part).map_err(|e| RunError::Directory {
+            path: part.clone(),
+            message: e.to_string(),
+        })?;
     }
     if !part.exists() {
         if !dir.join("run.toml").exists() {
-            return Err(RunError::Directory { path: dir.to_path_buf(), message: "not a run directory (no run.toml)".into() });
+            return Err(RunError::Directory {
+                path: dir.to_path_buf(),
+                message: "not a run directory (no run.toml)".into(),
+            });
         }
         // Stopped before its part file existed: nothing was computed yet.
-        tracing::info!("{}: not written yet (the run stopped before it began); starting slice {k}/{n}", part.display());
+        tracing::info!(
+            "{}: not written yet (the run stopped before it began); starting slice {k}/{n}",
+            part.display()
+        );
         return start(cfg, dir, slice, opts);
     }
     let reader = match PartReader::open(&part) {
@@ -833,8 +1045,14 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
             // The copy is never deleted by the program: it may hold what
             // a user wants to recover by other means.
             let aside = with_suffix(&part, &format!(".unreadable-{}", std::process::id()));
-            tracing::warn!("{e}; moving it to {} and computing slice {k}/{n} again from the start", aside.display());
-            std::fs::rename(&part, &aside).map_err(|e| RunError::Directory { path: part.clone(), message: e.to_string() })?;
+            tracing::warn!(
+                "{e}; moving it to {} and computing slice {k}/{n} again from the start",
+                aside.display()
+            );
+            std::fs::rename(&part, &aside).map_err(|e| RunError::Directory {
+                path: part.clone(),
+                message: e.to_string(),
+            })?;
             let ckpt_dir = checkpoint_dir(dir, k);
             let _ = std::fs::remove_dir_all(&ckpt_dir);
             return start(cfg, dir, slice, opts);
@@ -842,14 +1060,20 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
     };
     let meta = reader.meta().clone();
     if meta.config_toml != cfg.effective_toml {
-        return Err(RunError::Directory { path: part, message: "was written with a different configuration than run.toml".into() });
+        return Err(RunError::Directory {
+            path: part,
+            message: "was written with a different configuration than run.toml".into(),
+        });
     }
     let killed = reader.writer_state() == WriterState::Open;
     if killed {
         tracing::warn!("{}: its writer was killed; rebuilding it from the data that checkpoints and finished trajectories vouch for", part.display());
     }
     let ckpt_dir = checkpoint_dir(dir, k);
-    std::fs::create_dir_all(&ckpt_dir).map_err(|e| RunError::Directory { path: ckpt_dir.clone(), message: e.to_string() })?;
+    std::fs::create_dir_all(&ckpt_dir).map_err(|e| RunError::Directory {
+        path: ckpt_dir.clone(),
+        message: e.to_string(),
+    })?;
     let present = reader.trajectory_indices();
     let mut plans = Vec::new();
     let mut keep: Vec<(usize, Keep)> = Vec::new();
@@ -894,7 +1118,14 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
                     tracing::warn!("trajectory {index}: resuming from the previous checkpoint (step {}): the newest was missing or damaged", c.state.step);
                     from_previous.push(index);
                 }
-                keep.push((index, Keep::Prefix(Counts { rows: c.rows_written, hops: c.hops_written, warnings: c.warnings_written })));
+                keep.push((
+                    index,
+                    Keep::Prefix(Counts {
+                        rows: c.rows_written,
+                        hops: c.hops_written,
+                        warnings: c.warnings_written,
+                    }),
+                ));
                 plans.push((index, Plan::FromCheckpoint(Box::new(c))));
             }
             None => {
@@ -934,10 +1165,22 @@ pub fn resume(cfg: &RunConfig, dir: &Path, slice: (usize, usize), opts: &Options
         w.flush()?;
         w
     };
-    let from_checkpoint = |i: &usize| plans.iter().any(|(j, p)| j == i && matches!(p, Plan::FromCheckpoint(_)));
+    let from_checkpoint = |i: &usize| {
+        plans
+            .iter()
+            .any(|(j, p)| j == i && matches!(p, Plan::FromCheckpoint(_)))
+    };
     let from_prev = from_previous.iter().filter(|i| from_checkpoint(i)).count();
-    let from_ckpt = plans.iter().filter(|(_, p)| matches!(p, Plan::FromCheckpoint(_))).count();
-    tracing::info!("resuming {} of {} trajectories ({} from checkpoints)", plans.len(), meta.trajectories.len(), from_ckpt);
+    let from_ckpt = plans
+        .iter()
+        .filter(|(_, p)| matches!(p, Plan::FromCheckpoint(_)))
+        .count();
+    tracing::info!(
+        "resuming {} of {} trajectories ({} from checkpoints)",
+        plans.len(),
+        meta.trajectories.len(),
+        from_ckpt
+    );
     let mut report = execute(cfg, dir, k, writer, plans, opts)?;
     report.part = part;
     report.resumed_from_checkpoint = from_ckpt;
@@ -959,7 +1202,11 @@ enum Keep {
 /// `*.killed` until the new one is in place). Returns the trajectories whose
 /// kept data did not read back (checksum or layout errors); they are left
 /// out of the new file, to be recomputed.
-fn rebuild(reader: &PartReader, part: &Path, keep: &[(usize, Keep)]) -> Result<Vec<usize>, RunError> {
+fn rebuild(
+    reader: &PartReader,
+    part: &Path,
+    keep: &[(usize, Keep)],
+) -> Result<Vec<usize>, RunError> {
     let tmp = with_suffix(part, ".rebuild");
     let _ = std::fs::remove_file(&tmp);
     let mut w = PartWriter::create(&tmp, reader.meta())?;
@@ -979,13 +1226,22 @@ fn rebuild(reader: &PartReader, part: &Path, keep: &[(usize, Keep)]) -> Result<V
             }
         };
         w.begin(&data.header)?;
-        w.append_all(*index, &data.rows, &data.diagnostics, &data.hops, &data.warnings)?;
+        w.append_all(
+            *index,
+            &data.rows,
+            &data.diagnostics,
+            &data.hops,
+            &data.warnings,
+        )?;
         if let Keep::Whole = what {
             w.set_status(*index, &data.status)?;
         }
     }
     w.close()?;
-    let io = |e: std::io::Error| RunError::Directory { path: part.to_path_buf(), message: format!("replacing it with its rebuilt copy: {e}") };
+    let io = |e: std::io::Error| RunError::Directory {
+        path: part.to_path_buf(),
+        message: format!("replacing it with its rebuilt copy: {e}"),
+    };
     let killed_copy = with_suffix(part, ".killed");
     std::fs::rename(part, &killed_copy).map_err(io)?;
     std::fs::rename(&tmp, part).map_err(io)?;
@@ -1011,7 +1267,14 @@ fn finish_report(report: &mut RunReport) -> Result<(), RunError> {
     Ok(())
 }
 
-fn execute(cfg: &RunConfig, dir: &Path, k: usize, writer: PartWriter, plans: Vec<(usize, Plan)>, opts: &Options) -> Result<RunReport, RunError> {
+fn execute(
+    cfg: &RunConfig,
+    dir: &Path,
+    k: usize,
+    writer: PartWriter,
+    plans: Vec<(usize, Plan)>,
+    opts: &Options,
+) -> Result<RunReport, RunError> {
     // Bounded: when the writer falls behind, trajectories wait for it instead
     // of piling rows up in memory.
     let (tx, rx) = mpsc::sync_channel(256);
@@ -1019,29 +1282,45 @@ fn execute(cfg: &RunConfig, dir: &Path, k: usize, writer: PartWriter, plans: Vec
     let pool: BlockPool = Arc::new(Mutex::new(Vec::new()));
     let writer_pool = pool.clone();
     let writer_thread = std::thread::spawn(move || writer_loop(writer, rx, stop, writer_pool));
-    let session = Session { pool, cfg, factory: opts.factory, ckpt_dir: checkpoint_dir(dir, k), stop: &opts.stop };
-    let pool = rayon::ThreadPoolBuilder::new().num_threads(opts.threads).build().map_err(|e| RunError::Threads(e.to_string()))?;
+    let session = Session {
+        pool,
+        cfg,
+        factory: opts.factory,
+        ckpt_dir: checkpoint_dir(dir, k),
+        stop: &opts.stop,
+    };
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(opts.threads)
+        .build()
+        .map_err(|e| RunError::Threads(e.to_string()))?;
     let progress = Progress::new(plans.len(), opts.progress_bar);
     let errors: Mutex<Vec<String>> = Mutex::new(Vec::new());
     pool.install(|| {
-        plans.into_par_iter().for_each(|(index, plan)| match session.run_one(index, plan, tx.clone()) {
-            Ok(Ended::Done) => progress.tick(),
-            Ok(Ended::Stopped | Ended::Skipped) => {}
-            Err(e) => {
-                errors.lock().unwrap_or_else(|p| p.into_inner()).push(e);
-                // Without a working writer nothing more can be saved: stop cleanly.
-                opts.stop.store(true, Ordering::Relaxed);
+        plans.into_par_iter().for_each(|(index, plan)| {
+            match session.run_one(index, plan, tx.clone()) {
+                Ok(Ended::Done) => progress.tick(),
+                Ok(Ended::Stopped | Ended::Skipped) => {}
+                Err(e) => {
+                    errors.lock().unwrap_or_else(|p| p.into_inner()).push(e);
+                    // Without a working writer nothing more can be saved: stop cleanly.
+                    opts.stop.store(true, Ordering::Relaxed);
+                }
             }
         })
     });
     drop(tx);
     progress.finish();
-    let written = writer_thread.join().map_err(|_| RunError::Writer("the writer thread panicked".into()))?;
+    let written = writer_thread
+        .join()
+        .map_err(|_| RunError::Writer("the writer thread panicked".into()))?;
     written.map_err(RunError::Writer)?;
-    if let Some(e) = errors.into_inner().unwrap_or_else(|p| p.into_inner()).into_iter().next() {
+    if let Some(e) = errors
+        .into_inner()
+        .unwrap_or_else(|p| p.into_inner())
+        .into_iter()
+        .next()
+    {
         return Err(RunError::Writer(e));
     }
     Ok(RunReport::default())
 }
-
-

@@ -67,8 +67,14 @@ pub enum FileError {
 /// text file: whitespace-separated numbers, one row per line, `#` starts a
 /// comment, blank lines are skipped.
 pub fn read_hessian(path: &Path, n: usize) -> Result<DMatrix<f64>, FileError> {
-    let text = std::fs::read_to_string(path).map_err(|e| FileError::Io { path: path.to_path_buf(), message: e.to_string() })?;
-    parse_hessian(&text, n).map_err(|message| FileError::Content { path: path.to_path_buf(), message })
+    let text = std::fs::read_to_string(path).map_err(|e| FileError::Io {
+        path: path.to_path_buf(),
+        message: e.to_string(),
+    })?;
+    parse_hessian(&text, n).map_err(|message| FileError::Content {
+        path: path.to_path_buf(),
+        message,
+    })
 }
 
 /// The text form of [`read_hessian`]; the error names the line.
@@ -87,7 +93,9 @@ pub fn parse_hessian(text: &str, n: usize) -> Result<DMatrix<f64>, String> {
         }
         let mut row = Vec::with_capacity(n.min(4096));
         for t in line.split_whitespace() {
-            let x = t.parse::<f64>().map_err(|_| format!("line {}: {t:?} is not a number", k + 1))?;
+            let x = t
+                .parse::<f64>()
+                .map_err(|_| format!("line {}: {t:?} is not a number", k + 1))?;
             if !x.is_finite() {
                 return Err(format!("line {}: non-finite entry {x}", k + 1));
             }
@@ -104,7 +112,10 @@ pub fn parse_hessian(text: &str, n: usize) -> Result<DMatrix<f64>, String> {
         } else {
             format!("{} ragged rows", rows.len())
         };
-        return Err(format!("the Hessian is {shape} but the geometry's {} atoms need {n}×{n}", n / 3));
+        return Err(format!(
+            "the Hessian is {shape} but the geometry's {} atoms need {n}×{n}",
+            n / 3
+        ));
     }
     Ok(DMatrix::from_fn(n, n, |i, j| rows[i][j]))
 }
@@ -150,29 +161,56 @@ pub struct ModesFile {
 impl ModesFile {
     /// Read and check a modes file.
     pub fn read(path: &Path) -> Result<ModesFile, FileError> {
-        let text = std::fs::read_to_string(path).map_err(|e| FileError::Io { path: path.into(), message: e.to_string() })?;
-        let m: ModesFile = toml::from_str(&text)
-            .map_err(|e| FileError::Content { path: path.into(), message: e.to_string().trim_end().to_string() })?;
-        let bad = |message: String| FileError::Content { path: path.into(), message };
+        let text = std::fs::read_to_string(path).map_err(|e| FileError::Io {
+            path: path.into(),
+            message: e.to_string(),
+        })?;
+        let m: ModesFile = toml::from_str(&text).map_err(|e| FileError::Content {
+            path: path.into(),
+            message: e.to_string().trim_end().to_string(),
+        })?;
+        let bad = |message: String| FileError::Content {
+            path: path.into(),
+            message,
+        };
         if m.format != MODES_FORMAT {
-            return Err(bad(format!("key `format` = {:?}; expected {MODES_FORMAT:?}", m.format)));
+            return Err(bad(format!(
+                "key `format` = {:?}; expected {MODES_FORMAT:?}",
+                m.format
+            )));
         }
         if m.version != 1 {
-            return Err(bad(format!("key `version` = {}; this program reads version 1", m.version)));
+            return Err(bad(format!(
+                "key `version` = {}; this program reads version 1",
+                m.version
+            )));
         }
         if m.coordinates != "model" && m.coordinates != "cartesian" {
-            return Err(bad(format!("key `coordinates` = {:?}; expected \"model\" or \"cartesian\"", m.coordinates)));
+            return Err(bad(format!(
+                "key `coordinates` = {:?}; expected \"model\" or \"cartesian\"",
+                m.coordinates
+            )));
         }
         let n = m.masses_me.len();
         if n == 0 || m.reference_bohr.len() != n {
             return Err(bad(format!("keys `masses_me` ({n}) and `reference_bohr` ({}) must have one entry per coordinate", m.reference_bohr.len())));
         }
-        if let Some((i, x)) = m.masses_me.iter().enumerate().find(|(_, x)| !(**x > 0.0 && x.is_finite())) {
-            return Err(bad(format!("key `masses_me`: entry {i} = {x}; masses must be positive")));
+        if let Some((i, x)) = m
+            .masses_me
+            .iter()
+            .enumerate()
+            .find(|(_, x)| !(**x > 0.0 && x.is_finite()))
+        {
+            return Err(bad(format!(
+                "key `masses_me`: entry {i} = {x}; masses must be positive"
+            )));
         }
         for (k, mode) in m.mode.iter().enumerate() {
             if mode.vector.len() != n {
-                return Err(bad(format!("[[mode]] entry {k}: `vector` has {} entries for {n} coordinates", mode.vector.len())));
+                return Err(bad(format!(
+                    "[[mode]] entry {k}: `vector` has {} entries for {n} coordinates",
+                    mode.vector.len()
+                )));
             }
             if !mode.omega_hartree.is_finite() || mode.vector.iter().any(|x| !x.is_finite()) {
                 return Err(bad(format!("[[mode]] entry {k}: non-finite values")));
@@ -186,9 +224,16 @@ impl ModesFile {
 
     /// Write as TOML.
     pub fn write(&self, path: &Path) -> Result<(), FileError> {
-        let text = toml::to_string(self).map_err(|e| FileError::Content { path: path.into(), message: e.to_string() })?;
-        let header = "# flipswarm normal modes: ω in hartree/ħ, vectors mass-weighted and orthonormal\n";
-        std::fs::write(path, format!("{header}{text}")).map_err(|e| FileError::Io { path: path.into(), message: e.to_string() })
+        let text = toml::to_string(self).map_err(|e| FileError::Content {
+            path: path.into(),
+            message: e.to_string(),
+        })?;
+        let header =
+            "# flipswarm normal modes: ω in hartree/ħ, vectors mass-weighted and orthonormal\n";
+        std::fs::write(path, format!("{header}{text}")).map_err(|e| FileError::Io {
+            path: path.into(),
+            message: e.to_string(),
+        })
     }
 }
 
@@ -229,7 +274,10 @@ pub struct InitialConditions {
 fn h5err(path: &Path, what: &str) -> impl Fn(hdf5::Error) -> FileError {
     let what = what.to_string();
     let path = path.to_path_buf();
-    move |e| FileError::Io { path: path.clone(), message: format!("{what}: {e}") }
+    move |e| FileError::Io {
+        path: path.clone(),
+        message: format!("{what}: {e}"),
+    }
 }
 
 fn flat(rows: &[Vec<f64>]) -> Vec<f64> {
@@ -250,16 +298,28 @@ impl InitialConditions {
     /// Write to a new HDF5 file (refuses to overwrite).
     pub fn write(&self, path: &Path) -> Result<(), FileError> {
         if path.exists() {
-            return Err(FileError::Io { path: path.into(), message: "exists already; choose another name or remove it".into() });
+            return Err(FileError::Io {
+                path: path.into(),
+                message: "exists already; choose another name or remove it".into(),
+            });
         }
         let tmp = path.with_extension("h5.partial");
         let _ = std::fs::remove_file(&tmp);
         {
             let f = hdf5::File::create(&tmp).map_err(h5err(path, "cannot create"))?;
             crate::ensemble::h5::close_on_exec(&tmp);
-            let s = |v: &str| VarLenUnicode::from_str(v).map_err(|e| FileError::Content { path: path.into(), message: e.to_string() });
+            let s = |v: &str| {
+                VarLenUnicode::from_str(v).map_err(|e| FileError::Content {
+                    path: path.into(),
+                    message: e.to_string(),
+                })
+            };
             let root_str = |name: &str, v: &str| -> Result<(), FileError> {
-                f.new_attr::<VarLenUnicode>().create(name).map_err(h5err(path, name))?.write_scalar(&s(v)?).map_err(h5err(path, name))
+                f.new_attr::<VarLenUnicode>()
+                    .create(name)
+                    .map_err(h5err(path, name))?
+                    .write_scalar(&s(v)?)
+                    .map_err(h5err(path, name))
             };
             root_str("format", IC_FORMAT)?;
             root_str("coordinates", &self.coordinates)?;
@@ -268,61 +328,168 @@ impl InitialConditions {
             root_str("program", concat!("flipswarm ", env!("CARGO_PKG_VERSION")))?;
             root_str(
                 "selection",
-                self.excitation.as_ref().map_or("none", |e| e.selection.as_str()),
+                self.excitation
+                    .as_ref()
+                    .map_or("none", |e| e.selection.as_str()),
             )?;
-            f.new_attr::<u32>().create("version").map_err(h5err(path, "version"))?.write_scalar(&1u32).map_err(h5err(path, "version"))?;
-            f.new_attr::<f64>().create("temperature_k").map_err(h5err(path, "temperature"))?.write_scalar(&self.temperature_k).map_err(h5err(path, "temperature"))?;
-            f.new_attr::<u64>().create("seed").map_err(h5err(path, "seed"))?.write_scalar(&self.seed).map_err(h5err(path, "seed"))?;
+            f.new_attr::<u32>()
+                .create("version")
+                .map_err(h5err(path, "version"))?
+                .write_scalar(&1u32)
+                .map_err(h5err(path, "version"))?;
+            f.new_attr::<f64>()
+                .create("temperature_k")
+                .map_err(h5err(path, "temperature"))?
+                .write_scalar(&self.temperature_k)
+                .map_err(h5err(path, "temperature"))?;
+            f.new_attr::<u64>()
+                .create("seed")
+                .map_err(h5err(path, "seed"))?
+                .write_scalar(&self.seed)
+                .map_err(h5err(path, "seed"))?;
             let n = self.positions.len();
             let dof = self.masses.len();
-            let matrix = |name: &str, rows: &[Vec<f64>], cols: usize, units: &str, description: &str| -> Result<(), FileError> {
-                let ds = f.new_dataset::<f64>().shape((rows.len(), cols)).create(name).map_err(h5err(path, name))?;
+            let matrix = |name: &str,
+                          rows: &[Vec<f64>],
+                          cols: usize,
+                          units: &str,
+                          description: &str|
+             -> Result<(), FileError> {
+                let ds = f
+                    .new_dataset::<f64>()
+                    .shape((rows.len(), cols))
+                    .create(name)
+                    .map_err(h5err(path, name))?;
                 ds.write_raw(&flat(rows)).map_err(h5err(path, name))?;
-                ds.new_attr::<VarLenUnicode>().create("units").map_err(h5err(path, name))?.write_scalar(&s(units)?).map_err(h5err(path, name))?;
-                ds.new_attr::<VarLenUnicode>().create("description").map_err(h5err(path, name))?.write_scalar(&s(description)?).map_err(h5err(path, name))?;
+                ds.new_attr::<VarLenUnicode>()
+                    .create("units")
+                    .map_err(h5err(path, name))?
+                    .write_scalar(&s(units)?)
+                    .map_err(h5err(path, name))?;
+                ds.new_attr::<VarLenUnicode>()
+                    .create("description")
+                    .map_err(h5err(path, name))?
+                    .write_scalar(&s(description)?)
+                    .map_err(h5err(path, name))?;
                 Ok(())
             };
-            matrix("positions", &self.positions, dof, "bohr", "one row per initial condition")?;
-            matrix("velocities", &self.velocities, dof, "bohr / atomic time unit", "one row per initial condition")?;
-            matrix("masses", std::slice::from_ref(&self.masses), dof, "electron mass", "mass of each coordinate")?;
+            matrix(
+                "positions",
+                &self.positions,
+                dof,
+                "bohr",
+                "one row per initial condition",
+            )?;
+            matrix(
+                "velocities",
+                &self.velocities,
+                dof,
+                "bohr / atomic time unit",
+                "one row per initial condition",
+            )?;
+            matrix(
+                "masses",
+                std::slice::from_ref(&self.masses),
+                dof,
+                "electron mass",
+                "mass of each coordinate",
+            )?;
             if let Some(x) = &self.excitation {
                 let ns = x.energies.first().map_or(0, |r| r.len());
-                matrix("excitation_energies", &x.energies, ns, "hartree", "E_n - E_0 at each initial geometry (column 0 is the lowest state)")?;
-                matrix("oscillator_strengths", &x.oscillator_strengths, ns, "1", "f_0n = (2/3)(E_n - E_0)|<0|mu|n>|^2 at each initial geometry")?;
-                let states: Vec<i64> = x.initial_state.iter().map(|s| s.map_or(-1, |v| v as i64)).collect();
-                let ds = f.new_dataset::<i64>().shape(n).create("initial_state").map_err(h5err(path, "initial_state"))?;
-                ds.write_raw(&states).map_err(h5err(path, "initial_state"))?;
-                ds.new_attr::<VarLenUnicode>().create("description").map_err(h5err(path, "initial_state"))?.write_scalar(&s("selected initial adiabatic state, 0-based; -1 = not selected")?).map_err(h5err(path, "initial_state"))?;
+                matrix(
+                    "excitation_energies",
+                    &x.energies,
+                    ns,
+                    "hartree",
+                    "E_n - E_0 at each initial geometry (column 0 is the lowest state)",
+                )?;
+                matrix(
+                    "oscillator_strengths",
+                    &x.oscillator_strengths,
+                    ns,
+                    "1",
+                    "f_0n = (2/3)(E_n - E_0)|<0|mu|n>|^2 at each initial geometry",
+                )?;
+                let states: Vec<i64> = x
+                    .initial_state
+                    .iter()
+                    .map(|s| s.map_or(-1, |v| v as i64))
+                    .collect();
+                let ds = f
+                    .new_dataset::<i64>()
+                    .shape(n)
+                    .create("initial_state")
+                    .map_err(h5err(path, "initial_state"))?;
+                ds.write_raw(&states)
+                    .map_err(h5err(path, "initial_state"))?;
+                ds.new_attr::<VarLenUnicode>()
+                    .create("description")
+                    .map_err(h5err(path, "initial_state"))?
+                    .write_scalar(&s(
+                        "selected initial adiabatic state, 0-based; -1 = not selected",
+                    )?)
+                    .map_err(h5err(path, "initial_state"))?;
             }
             f.flush().map_err(h5err(path, "flush"))?;
         }
-        std::fs::rename(&tmp, path).map_err(|e| FileError::Io { path: path.into(), message: e.to_string() })
+        std::fs::rename(&tmp, path).map_err(|e| FileError::Io {
+            path: path.into(),
+            message: e.to_string(),
+        })
     }
 
     /// Read an initial-conditions file.
     pub fn read(path: &Path) -> Result<InitialConditions, FileError> {
-        let content = |message: String| FileError::Content { path: path.into(), message };
-        let f = hdf5::File::open(path).map_err(|e| FileError::Io { path: path.into(), message: format!("cannot open as HDF5: {e}") })?;
-        let get_str = |name: &str| -> Result<String, FileError> {
-            let a = f.attr(name).map_err(|_| content(format!("root attribute `{name}` is missing")))?;
-            Ok(a.read_scalar::<VarLenUnicode>().map_err(|e| content(format!("root attribute `{name}`: {e}")))?.as_str().to_string())
+        let content = |message: String| FileError::Content {
+            path: path.into(),
+            message,
         };
-        let format = get_str("format").map_err(|_| content(format!("not an initial-conditions file (root attribute `format` = {IC_FORMAT:?} missing)")))?;
+        let f = hdf5::File::open(path).map_err(|e| FileError::Io {
+            path: path.into(),
+            message: format!("cannot open as HDF5: {e}"),
+        })?;
+        let get_str = |name: &str| -> Result<String, FileError> {
+            let a = f
+                .attr(name)
+                .map_err(|_| content(format!("root attribute `{name}` is missing")))?;
+            Ok(a.read_scalar::<VarLenUnicode>()
+                .map_err(|e| content(format!("root attribute `{name}`: {e}")))?
+                .as_str()
+                .to_string())
+        };
+        let format = get_str("format").map_err(|_| {
+            content(format!(
+                "not an initial-conditions file (root attribute `format` = {IC_FORMAT:?} missing)"
+            ))
+        })?;
         if format != IC_FORMAT {
-            return Err(content(format!("root attribute `format` = {format:?}; expected {IC_FORMAT:?}")));
+            return Err(content(format!(
+                "root attribute `format` = {format:?}; expected {IC_FORMAT:?}"
+            )));
         }
         let scalar_f64 = |name: &str| -> Result<f64, FileError> {
-            f.attr(name).and_then(|a| a.read_scalar::<f64>()).map_err(|e| content(format!("root attribute `{name}`: {e}")))
+            f.attr(name)
+                .and_then(|a| a.read_scalar::<f64>())
+                .map_err(|e| content(format!("root attribute `{name}`: {e}")))
         };
         let matrix = |name: &str| -> Result<(Vec<Vec<f64>>, usize), FileError> {
-            let ds = f.dataset(name).map_err(|_| content(format!("dataset `{name}` is missing")))?;
+            let ds = f
+                .dataset(name)
+                .map_err(|_| content(format!("dataset `{name}` is missing")))?;
             let shape = ds.shape();
             if shape.len() != 2 {
-                return Err(content(format!("dataset `{name}` has {} dimensions, expected 2", shape.len())));
+                return Err(content(format!(
+                    "dataset `{name}` has {} dimensions, expected 2",
+                    shape.len()
+                )));
             }
-            let data = ds.read_raw::<f64>().map_err(|e| content(format!("dataset `{name}`: {e}")))?;
+            let data = ds
+                .read_raw::<f64>()
+                .map_err(|e| content(format!("dataset `{name}`: {e}")))?;
             if data.iter().any(|x| !x.is_finite()) {
-                return Err(content(format!("dataset `{name}` contains non-finite values")));
+                return Err(content(format!(
+                    "dataset `{name}` contains non-finite values"
+                )));
             }
             let cols = shape[1];
             Ok((data.chunks(cols.max(1)).map(|c| c.to_vec()).collect(), cols))
@@ -330,7 +497,8 @@ impl InitialConditions {
         let (positions, dof) = matrix("positions")?;
         let (velocities, dof_v) = matrix("velocities")?;
         let (masses, dof_m) = matrix("masses")?;
-        if dof_v != dof || dof_m != dof || velocities.len() != positions.len() || masses.len() != 1 {
+        if dof_v != dof || dof_m != dof || velocities.len() != positions.len() || masses.len() != 1
+        {
             return Err(content(format!(
                 "datasets disagree: positions {}×{dof}, velocities {}×{dof_v}, masses {}×{dof_m}",
                 positions.len(),
@@ -349,15 +517,23 @@ impl InitialConditions {
                 .and_then(|d| d.read_raw::<i64>())
                 .map_err(|e| content(format!("dataset `initial_state`: {e}")))?;
             if st.len() != positions.len() {
-                return Err(content("dataset `initial_state` does not match `positions`".into()));
+                return Err(content(
+                    "dataset `initial_state` does not match `positions`".into(),
+                ));
             }
             if let Some(bad) = st.iter().find(|&&s| s < -1 || s >= ns as i64) {
-                return Err(content(format!("dataset `initial_state` holds {bad}, outside -1..{}", ns as i64 - 1)));
+                return Err(content(format!(
+                    "dataset `initial_state` holds {bad}, outside -1..{}",
+                    ns as i64 - 1
+                )));
             }
             Some(Excitation {
                 energies,
                 oscillator_strengths: osc,
-                initial_state: st.iter().map(|&s| if s < 0 { None } else { Some(s as usize) }).collect(),
+                initial_state: st
+                    .iter()
+                    .map(|&s| if s < 0 { None } else { Some(s as usize) })
+                    .collect(),
                 selection: get_str("selection")?,
             })
         } else {
@@ -369,7 +545,10 @@ impl InitialConditions {
             velocities,
             masses: masses.into_iter().next().unwrap_or_default(),
             temperature_k: scalar_f64("temperature_k")?,
-            seed: f.attr("seed").and_then(|a| a.read_scalar::<u64>()).map_err(|e| content(format!("root attribute `seed`: {e}")))?,
+            seed: f
+                .attr("seed")
+                .and_then(|a| a.read_scalar::<u64>())
+                .map_err(|e| content(format!("root attribute `seed`: {e}")))?,
             modes_toml: get_str("modes_toml")?,
             excitation,
         })

@@ -20,7 +20,11 @@ use crate::units;
 pub enum ModesError {
     /// Shapes do not fit together.
     #[error("the Hessian is {rows}×{cols} but {atoms} atoms need {n}×{n}", n = 3 * atoms)]
-    Shape { rows: usize, cols: usize, atoms: usize },
+    Shape {
+        rows: usize,
+        cols: usize,
+        atoms: usize,
+    },
     /// Shapes do not fit together (model coordinates).
     #[error("the Hessian is {rows}×{cols} but {n} coordinates need {n}×{n}")]
     CoordinateShape { rows: usize, cols: usize, n: usize },
@@ -51,11 +55,19 @@ pub struct NormalModes {
 impl NormalModes {
     /// Frequencies in cm⁻¹ (negative = imaginary).
     pub fn wavenumbers(&self) -> Vec<f64> {
-        self.omegas.iter().map(|&w| units::hartree_to_cm1(w)).collect()
+        self.omegas
+            .iter()
+            .map(|&w| units::hartree_to_cm1(w))
+            .collect()
     }
     /// Indices of imaginary modes.
     pub fn imaginary(&self) -> Vec<usize> {
-        self.omegas.iter().enumerate().filter(|(_, w)| **w < 0.0).map(|(i, _)| i).collect()
+        self.omegas
+            .iter()
+            .enumerate()
+            .filter(|(_, w)| **w < 0.0)
+            .map(|(i, _)| i)
+            .collect()
     }
 }
 
@@ -64,10 +76,23 @@ impl NormalModes {
 pub fn external_vectors(positions: &[[f64; 3]], masses: &[f64]) -> Vec<DVector<f64>> {
     let n = positions.len();
     let total: f64 = masses.iter().sum();
-    let com: [f64; 3] = std::array::from_fn(|k| positions.iter().zip(masses).map(|(p, m)| p[k] * m).sum::<f64>() / total);
+    let com: [f64; 3] = std::array::from_fn(|k| {
+        positions
+            .iter()
+            .zip(masses)
+            .map(|(p, m)| p[k] * m)
+            .sum::<f64>()
+            / total
+    });
     let mut raw = Vec::new();
     for k in 0..3 {
-        raw.push(DVector::from_fn(3 * n, |i, _| if i % 3 == k { masses[i / 3].sqrt() } else { 0.0 }));
+        raw.push(DVector::from_fn(3 * n, |i, _| {
+            if i % 3 == k {
+                masses[i / 3].sqrt()
+            } else {
+                0.0
+            }
+        }));
     }
     for axis in 0..3 {
         // Rotation about `axis`: δr = e_axis × (r − com).
@@ -75,7 +100,11 @@ pub fn external_vectors(positions: &[[f64; 3]], masses: &[f64]) -> Vec<DVector<f
             let (a, c) = (i / 3, i % 3);
             let r: [f64; 3] = std::array::from_fn(|k| positions[a][k] - com[k]);
             let e: [f64; 3] = std::array::from_fn(|k| if k == axis { 1.0 } else { 0.0 });
-            let cross = [e[1] * r[2] - e[2] * r[1], e[2] * r[0] - e[0] * r[2], e[0] * r[1] - e[1] * r[0]];
+            let cross = [
+                e[1] * r[2] - e[2] * r[1],
+                e[2] * r[0] - e[0] * r[2],
+                e[0] * r[1] - e[1] * r[0],
+            ];
             cross[c] * masses[a].sqrt()
         }));
     }
@@ -99,15 +128,27 @@ pub fn external_vectors(positions: &[[f64; 3]], masses: &[f64]) -> Vec<DVector<f
 
 /// Normal modes of the Cartesian Hessian `hessian` (3N×3N, hartree/bohr²)
 /// at `positions` (bohr) with atomic `masses` (electron masses).
-pub fn normal_modes(hessian: &DMatrix<f64>, positions: &[[f64; 3]], masses: &[f64]) -> Result<NormalModes, ModesError> {
+pub fn normal_modes(
+    hessian: &DMatrix<f64>,
+    positions: &[[f64; 3]],
+    masses: &[f64],
+) -> Result<NormalModes, ModesError> {
     let n = positions.len();
     if hessian.nrows() != 3 * n || hessian.ncols() != 3 * n || masses.len() != n {
-        return Err(ModesError::Shape { rows: hessian.nrows(), cols: hessian.ncols(), atoms: n });
+        return Err(ModesError::Shape {
+            rows: hessian.nrows(),
+            cols: hessian.ncols(),
+            atoms: n,
+        });
     }
     if n < 2 {
         return Err(ModesError::TooFewAtoms(n));
     }
-    if let Some((index, &mass)) = masses.iter().enumerate().find(|(_, m)| !(**m > 0.0 && m.is_finite())) {
+    if let Some((index, &mass)) = masses
+        .iter()
+        .enumerate()
+        .find(|(_, m)| !(**m > 0.0 && m.is_finite()))
+    {
         return Err(ModesError::Mass { index, mass });
     }
     if hessian.iter().any(|x| !x.is_finite()) {
@@ -135,8 +176,16 @@ pub fn normal_modes(hessian: &DMatrix<f64>, positions: &[[f64; 3]], masses: &[f6
         let l = modes.eigenvalues[i];
         l.signum() * l.abs().sqrt()
     });
-    let vectors = &b * DMatrix::from_fn(cols.len(), cols.len(), |r, c| modes.eigenvectors[(r, order[c])]);
-    Ok(NormalModes { omegas: omegas.collect(), vectors, masses: masses.to_vec(), linear })
+    let vectors = &b
+        * DMatrix::from_fn(cols.len(), cols.len(), |r, c| {
+            modes.eigenvectors[(r, order[c])]
+        });
+    Ok(NormalModes {
+        omegas: omegas.collect(),
+        vectors,
+        masses: masses.to_vec(),
+        linear,
+    })
 }
 
 /// Central finite-difference Hessian of `gradient` (a function of the 3N
@@ -158,7 +207,11 @@ where
             minus[j] -= h;
             let gp = gradient(&plus)?;
             let gm = gradient(&minus)?;
-            Ok(gp.iter().zip(&gm).map(|(a, b)| (a - b) / (2.0 * h)).collect())
+            Ok(gp
+                .iter()
+                .zip(&gm)
+                .map(|(a, b)| (a - b) / (2.0 * h))
+                .collect())
         })
         .collect();
     let mut hess = DMatrix::zeros(n, n);
@@ -174,12 +227,23 @@ where
 /// per coordinate: no translations or rotations to project (LVC models are
 /// already written in normal coordinates). ω² are the eigenvalues of
 /// M^{−1/2} H M^{−1/2}.
-pub fn normal_modes_of_coordinates(hessian: &DMatrix<f64>, masses: &[f64]) -> Result<NormalModes, ModesError> {
+pub fn normal_modes_of_coordinates(
+    hessian: &DMatrix<f64>,
+    masses: &[f64],
+) -> Result<NormalModes, ModesError> {
     let n = masses.len();
     if hessian.nrows() != n || hessian.ncols() != n {
-        return Err(ModesError::CoordinateShape { rows: hessian.nrows(), cols: hessian.ncols(), n });
+        return Err(ModesError::CoordinateShape {
+            rows: hessian.nrows(),
+            cols: hessian.ncols(),
+            n,
+        });
     }
-    if let Some((index, &mass)) = masses.iter().enumerate().find(|(_, m)| !(**m > 0.0 && m.is_finite())) {
+    if let Some((index, &mass)) = masses
+        .iter()
+        .enumerate()
+        .find(|(_, m)| !(**m > 0.0 && m.is_finite()))
+    {
         return Err(ModesError::Mass { index, mass });
     }
     if hessian.iter().any(|x| !x.is_finite()) {
@@ -190,7 +254,15 @@ pub fn normal_modes_of_coordinates(hessian: &DMatrix<f64>, masses: &[f64]) -> Re
     let e = SymmetricEigen::new(hm);
     let mut order: Vec<usize> = (0..n).collect();
     order.sort_by(|&i, &j| e.eigenvalues[i].total_cmp(&e.eigenvalues[j]));
-    let omegas = order.iter().map(|&i| e.eigenvalues[i].signum() * e.eigenvalues[i].abs().sqrt()).collect();
+    let omegas = order
+        .iter()
+        .map(|&i| e.eigenvalues[i].signum() * e.eigenvalues[i].abs().sqrt())
+        .collect();
     let vectors = DMatrix::from_fn(n, n, |r, c| e.eigenvectors[(r, order[c])]);
-    Ok(NormalModes { omegas, vectors, masses: masses.to_vec(), linear: false })
+    Ok(NormalModes {
+        omegas,
+        vectors,
+        masses: masses.to_vec(),
+        linear: false,
+    })
 }

@@ -31,7 +31,10 @@ pub enum LineShape {
 pub fn cross_section_prefactor_ev_a2() -> f64 {
     // 2π² α ħ²/m_e in atomic units is 2π² α (hartree·bohr²).
     let alpha = 1.0 / units::SPEED_OF_LIGHT_AU;
-    2.0 * std::f64::consts::PI.powi(2) * alpha * units::HARTREE_IN_EV * units::BOHR_IN_ANGSTROM.powi(2)
+    2.0 * std::f64::consts::PI.powi(2)
+        * alpha
+        * units::HARTREE_IN_EV
+        * units::BOHR_IN_ANGSTROM.powi(2)
 }
 
 /// ε (M⁻¹ cm⁻¹) per σ (Å²).
@@ -80,16 +83,23 @@ impl Spectrum {
     /// CSV: energy, wavelength, σ, ε, then σ_n per state.
     pub fn to_csv(&self) -> String {
         let ns = self.per_state_a2.len();
-        let mut s = String::from("energy_ev,wavelength_nm,cross_section_a2,molar_absorption_m-1cm-1");
+        let mut s =
+            String::from("energy_ev,wavelength_nm,cross_section_a2,molar_absorption_m-1cm-1");
         for n in 1..ns {
             s.push_str(&format!(",cross_section_state{n}_a2"));
         }
         s.push('\n');
         let eps = self.molar_absorption();
         // hc = 1239.84198 eV nm (CODATA 2018 through the units table).
-        let hc_ev_nm = units::PLANCK_J_S * units::SPEED_OF_LIGHT_SI / units::ELEMENTARY_CHARGE_C * 1e9;
+        let hc_ev_nm =
+            units::PLANCK_J_S * units::SPEED_OF_LIGHT_SI / units::ELEMENTARY_CHARGE_C * 1e9;
         for (k, &e) in self.energies_ev.iter().enumerate() {
-            s.push_str(&format!("{e:.6},{:.4},{:.8e},{:.8e}", hc_ev_nm / e, self.cross_section_a2[k], eps[k]));
+            s.push_str(&format!(
+                "{e:.6},{:.4},{:.8e},{:.8e}",
+                hc_ev_nm / e,
+                self.cross_section_a2[k],
+                eps[k]
+            ));
             for n in 1..ns {
                 s.push_str(&format!(",{:.8e}", self.per_state_a2[n][k]));
             }
@@ -101,7 +111,14 @@ impl Spectrum {
 
 /// σ(E) on `grid` (eV) from transitions `(state, ΔE in eV, f)` of `n_geometries`
 /// geometries with `n_states` states.
-pub fn spectrum(transitions: &[(usize, f64, f64)], n_geometries: usize, n_states: usize, shape: LineShape, hwhm_ev: f64, grid: &[f64]) -> Spectrum {
+pub fn spectrum(
+    transitions: &[(usize, f64, f64)],
+    n_geometries: usize,
+    n_states: usize,
+    shape: LineShape,
+    hwhm_ev: f64,
+    grid: &[f64],
+) -> Spectrum {
     let pref = cross_section_prefactor_ev_a2() / n_geometries.max(1) as f64;
     let mut per = vec![vec![0.0; grid.len()]; n_states];
     for &(n, de, f) in transitions {
@@ -109,8 +126,14 @@ pub fn spectrum(transitions: &[(usize, f64, f64)], n_geometries: usize, n_states
             per[n][k] += pref * f * line(shape, e - de, hwhm_ev);
         }
     }
-    let total = (0..grid.len()).map(|k| per.iter().map(|p| p[k]).sum()).collect();
-    Spectrum { energies_ev: grid.to_vec(), cross_section_a2: total, per_state_a2: per }
+    let total = (0..grid.len())
+        .map(|k| per.iter().map(|p| p[k]).sum())
+        .collect();
+    Spectrum {
+        energies_ev: grid.to_vec(),
+        cross_section_a2: total,
+        per_state_a2: per,
+    }
 }
 
 #[cfg(test)]
@@ -125,16 +148,32 @@ mod tests {
         let pref = cross_section_prefactor_ev_a2();
         let grid: Vec<f64> = (0..=8000).map(|k| 2.0 + 4.0 * k as f64 / 8000.0).collect();
         for (shape, g0, frac) in [
-            (LineShape::Gaussian, (std::f64::consts::LN_2 / std::f64::consts::PI).sqrt() / 0.05, 1.0),
-            (LineShape::Lorentzian, 1.0 / (std::f64::consts::PI * 0.05), 2.0 / std::f64::consts::PI * 40.0f64.atan()),
+            (
+                LineShape::Gaussian,
+                (std::f64::consts::LN_2 / std::f64::consts::PI).sqrt() / 0.05,
+                1.0,
+            ),
+            (
+                LineShape::Lorentzian,
+                1.0 / (std::f64::consts::PI * 0.05),
+                2.0 / std::f64::consts::PI * 40.0f64.atan(),
+            ),
         ] {
             let sp = spectrum(&[(1, 4.0, 0.2)], 1, 2, shape, 0.05, &grid);
             let peak = sp.cross_section_a2[4000];
             assert!((peak - pref * 0.2 * g0).abs() < 1e-12 * peak, "{shape:?}");
-            assert!((sp.integral() / (pref * 0.2 * frac) - 1.0).abs() < 1e-6, "{shape:?}: {}", sp.integral());
+            assert!(
+                (sp.integral() / (pref * 0.2 * frac) - 1.0).abs() < 1e-6,
+                "{shape:?}: {}",
+                sp.integral()
+            );
             // half maximum at ±HWHM
             let half = sp.cross_section_a2[4000 + 100];
-            assert!((half / peak - 0.5).abs() < 1e-9, "{shape:?}: {}", half / peak);
+            assert!(
+                (half / peak - 0.5).abs() < 1e-9,
+                "{shape:?}: {}",
+                half / peak
+            );
         }
     }
 
@@ -142,6 +181,10 @@ mod tests {
     fn prefactor_is_the_textbook_value() {
         // π e² ħ/(2 m_e c ε₀) = 1.0976 eV·Å² (common practice; equivalently
         // ∫σ dν = (π e²/m_e c) f = 2.654e-2 cm² s⁻¹ · f in Gaussian units).
-        assert!((cross_section_prefactor_ev_a2() - 1.0976).abs() < 1e-3, "{}", cross_section_prefactor_ev_a2());
+        assert!(
+            (cross_section_prefactor_ev_a2() - 1.0976).abs() < 1e-3,
+            "{}",
+            cross_section_prefactor_ev_a2()
+        );
     }
 }

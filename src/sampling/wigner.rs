@@ -33,7 +33,12 @@ pub fn widths(omega: f64, kt: f64) -> (f64, f64) {
 }
 
 /// One draw (Q, P) per mode; modes listed in `frozen` stay at Q = P = 0.
-pub fn sample<R: Rng>(omegas: &[f64], kt: f64, frozen: &[usize], rng: &mut R) -> (Vec<f64>, Vec<f64>) {
+pub fn sample<R: Rng>(
+    omegas: &[f64],
+    kt: f64,
+    frozen: &[usize],
+    rng: &mut R,
+) -> (Vec<f64>, Vec<f64>) {
     let mut q = vec![0.0; omegas.len()];
     let mut p = vec![0.0; omegas.len()];
     for (k, &w) in omegas.iter().enumerate() {
@@ -77,7 +82,9 @@ pub fn remove_net_momenta(q: &[f64], v: &mut [f64], masses: &[f64]) {
         inertia += (Matrix3::identity() * d.norm_squared() - d * d.transpose()) * masses[a];
         l += d.cross(&vel(v, a)) * masses[a];
     }
-    let Ok(pinv) = inertia.pseudo_inverse(1e-10 * inertia.norm().max(f64::MIN_POSITIVE)) else { return };
+    let Ok(pinv) = inertia.pseudo_inverse(1e-10 * inertia.norm().max(f64::MIN_POSITIVE)) else {
+        return;
+    };
     let omega = pinv * l;
     for a in 0..n {
         let d = r(a) - com;

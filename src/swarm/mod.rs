@@ -32,7 +32,9 @@ pub fn make_backend(model: &ModelSpec) -> Box<dyn Backend> {
         ModelSpec::Lvc { model, .. } => Box::new(DiabaticBackend::new(model.clone())),
         ModelSpec::Harmonic(m) => Box::new(DiabaticBackend::new(m.clone())),
         ModelSpec::Morse(m) => Box::new(DiabaticBackend::new(m.clone())),
-        ModelSpec::Molecule { spec, .. } => Box::new(crate::electronic::qc::backend::MrsfBackend::new(spec.clone())),
+        ModelSpec::Molecule { spec, .. } => Box::new(
+            crate::electronic::qc::backend::MrsfBackend::new(spec.clone()),
+        ),
     }
 }
 
@@ -47,7 +49,11 @@ pub fn trajectory_rng(seed: u64, index: usize, stream: u64) -> ChaCha20Rng {
 /// Positions, velocities (atomic units) and initial state of trajectory
 /// `index`: the state is `start.state` unless the initial-conditions file
 /// selected one for this trajectory.
-pub fn initial_condition(cfg: &RunConfig, masses: &[f64], index: usize) -> (Vec<f64>, Vec<f64>, usize) {
+pub fn initial_condition(
+    cfg: &RunConfig,
+    masses: &[f64],
+    index: usize,
+) -> (Vec<f64>, Vec<f64>, usize) {
     if let Sampling::File { rows, .. } = &cfg.sampling {
         let (q, v, state) = &rows[index];
         return (q.clone(), v.clone(), state.unwrap_or(cfg.initial_state));
@@ -59,12 +65,25 @@ pub fn initial_condition(cfg: &RunConfig, masses: &[f64], index: usize) -> (Vec<
 fn sampled(cfg: &RunConfig, masses: &[f64], index: usize) -> (Vec<f64>, Vec<f64>) {
     let mut rng = trajectory_rng(cfg.seed, index, 0);
     match (&cfg.sampling, &cfg.model) {
-        (Sampling::Fixed { position, momentum }, _) => (vec![*position], vec![momentum / masses[0]]),
-        (Sampling::Wavepacket { position, momentum, width }, _) => {
+        (Sampling::Fixed { position, momentum }, _) => {
+            (vec![*position], vec![momentum / masses[0]])
+        }
+        (
+            Sampling::Wavepacket {
+                position,
+                momentum,
+                width,
+            },
+            _,
+        ) => {
             // Wigner function of ψ ∝ exp(−(x−x0)²/4σ² + i p0 x): a product of
             // Gaussians with σ_x = σ and σ_p = ħ/(2σ) (common practice).
-            let x = Normal::new(*position, *width).expect("validated width").sample(&mut rng);
-            let p = Normal::new(*momentum, 0.5 / width).expect("validated width").sample(&mut rng);
+            let x = Normal::new(*position, *width)
+                .expect("validated width")
+                .sample(&mut rng);
+            let p = Normal::new(*momentum, 0.5 / width)
+                .expect("validated width")
+                .sample(&mut rng);
             (vec![x], vec![p / masses[0]])
         }
         (Sampling::HarmonicGround, ModelSpec::Lvc { model, .. }) => {
@@ -73,12 +92,22 @@ fn sampled(cfg: &RunConfig, masses: &[f64], index: usize) -> (Vec<f64>, Vec<f64>
             let mut q = Vec::with_capacity(model.n_modes());
             let mut v = Vec::with_capacity(model.n_modes());
             for &w in &model.omegas {
-                q.push(Normal::new(0.0, (0.5 / w).sqrt()).expect("ω > 0").sample(&mut rng));
-                v.push(Normal::new(0.0, (0.5 * w).sqrt()).expect("ω > 0").sample(&mut rng));
+                q.push(
+                    Normal::new(0.0, (0.5 / w).sqrt())
+                        .expect("ω > 0")
+                        .sample(&mut rng),
+                );
+                v.push(
+                    Normal::new(0.0, (0.5 * w).sqrt())
+                        .expect("ω > 0")
+                        .sample(&mut rng),
+                );
             }
             (q, v)
         }
-        (_, ModelSpec::Molecule { spec, .. }) => (spec.reference_coordinates(), vec![0.0; spec.masses().len()]),
+        (_, ModelSpec::Molecule { spec, .. }) => {
+            (spec.reference_coordinates(), vec![0.0; spec.masses().len()])
+        }
         (_, m) => (vec![0.0; m.n_dof()], vec![0.0; m.n_dof()]),
     }
 }
@@ -113,11 +142,26 @@ impl Outcome {
             index: data.header.index,
             status: data.status.clone(),
             active: last.map_or(data.header.initial_state, |r| r.active as usize),
-            populations: last.map_or_else(Vec::new, |r| r.amplitudes.iter().map(|c| c.norm_sqr()).collect()),
+            populations: last.map_or_else(Vec::new, |r| {
+                r.amplitudes.iter().map(|c| c.norm_sqr()).collect()
+            }),
             steps: last.map_or(0, |r| r.step),
-            max_drift: data.rows.iter().map(|r| (r.total - e0).abs()).fold(0.0, f64::max),
+            max_drift: data
+                .rows
+                .iter()
+                .map(|r| (r.total - e0).abs())
+                .fold(0.0, f64::max),
             hops: data.hops.clone(),
-            series: data.rows.iter().map(|r| (r.active as usize, r.amplitudes.iter().map(|c| c.norm_sqr()).collect())).collect(),
+            series: data
+                .rows
+                .iter()
+                .map(|r| {
+                    (
+                        r.active as usize,
+                        r.amplitudes.iter().map(|c| c.norm_sqr()).collect(),
+                    )
+                })
+                .collect(),
         }
     }
 }
@@ -147,7 +191,11 @@ pub fn run_one(cfg: &RunConfig, index: usize, record_every: u64) -> Outcome {
     let masses = backend.info().masses;
     let (q, v, state) = initial_condition(cfg, &masses, index);
     let rng = trajectory_rng(cfg.seed, index, 1);
-    let mut rec = Recorder { every: record_every.max(1), max_drift: 0.0, series: Vec::new() };
+    let mut rec = Recorder {
+        every: record_every.max(1),
+        max_drift: 0.0,
+        series: Vec::new(),
+    };
     let fail = |reason: String| Outcome {
         index,
         status: Status::Failed { step: 0, reason },
@@ -158,12 +206,16 @@ pub fn run_one(cfg: &RunConfig, index: usize, record_every: u64) -> Outcome {
         hops: vec![],
         series: vec![],
     };
-    let mut traj = match Trajectory::start(backend.as_mut(), cfg.settings.clone(), q, v, state, rng) {
+    let mut traj = match Trajectory::start(backend.as_mut(), cfg.settings.clone(), q, v, state, rng)
+    {
         Ok(t) => t,
         Err(e) => return fail(e.to_string()),
     };
     if let Err(e) = traj.run(&mut rec) {
-        traj.state.status = Status::Failed { step: traj.state.step, reason: e };
+        traj.state.status = Status::Failed {
+            step: traj.state.step,
+            reason: e,
+        };
     }
     Outcome {
         index,
@@ -180,8 +232,15 @@ pub fn run_one(cfg: &RunConfig, index: usize, record_every: u64) -> Outcome {
 /// Run trajectories `indices` on `threads` threads (0 = all cores), with a
 /// progress bar on a terminal or periodic log lines. Outcomes come back in
 /// index order.
-pub fn run_indices(cfg: &RunConfig, indices: &[usize], threads: usize, record_every: u64) -> Result<Vec<Outcome>, rayon::ThreadPoolBuildError> {
-    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build()?;
+pub fn run_indices(
+    cfg: &RunConfig,
+    indices: &[usize],
+    threads: usize,
+    record_every: u64,
+) -> Result<Vec<Outcome>, rayon::ThreadPoolBuildError> {
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(threads)
+        .build()?;
     let progress = Progress::new(indices.len(), true);
     let outcomes = pool.install(|| {
         indices
@@ -217,7 +276,13 @@ impl Progress {
             }
             b
         });
-        Self { bar, done: AtomicUsize::new(0), total, started: Instant::now(), last: Mutex::new(Instant::now()) }
+        Self {
+            bar,
+            done: AtomicUsize::new(0),
+            total,
+            started: Instant::now(),
+            last: Mutex::new(Instant::now()),
+        }
     }
 
     pub(crate) fn tick(&self) {
@@ -231,7 +296,10 @@ impl Progress {
             *last = Instant::now();
             let secs = self.started.elapsed().as_secs_f64();
             let eta = secs / n as f64 * (self.total - n) as f64;
-            tracing::info!("trajectories done: {n}/{} ({secs:.1} s elapsed, about {eta:.0} s left)", self.total);
+            tracing::info!(
+                "trajectories done: {n}/{} ({secs:.1} s elapsed, about {eta:.0} s left)",
+                self.total
+            );
         }
     }
 
@@ -241,7 +309,6 @@ impl Progress {
         }
     }
 }
-
 
 /// How often (in steps) populations are recorded: about 200 points per curve.
 pub fn record_interval(cfg: &RunConfig) -> u64 {

@@ -71,7 +71,10 @@ impl Summary {
     /// Summarise outcomes of an ensemble.
     pub fn new(cfg: &RunConfig, outcomes: &[Outcome]) -> Self {
         let n_states = cfg.model.n_states();
-        let ok: Vec<&Outcome> = outcomes.iter().filter(|o| matches!(o.status, Status::Finished(_))).collect();
+        let ok: Vec<&Outcome> = outcomes
+            .iter()
+            .filter(|o| matches!(o.status, Status::Finished(_)))
+            .collect();
         let failed = outcomes
             .iter()
             .filter_map(|o| match &o.status {
@@ -92,16 +95,33 @@ impl Summary {
                         continue;
                     }
                     let (probability, standard_error) = estimate(count, n);
-                    channels.push(ChannelEstimate { channel, state, probability, standard_error, count });
+                    channels.push(ChannelEstimate {
+                        channel,
+                        state,
+                        probability,
+                        standard_error,
+                        count,
+                    });
                 }
             }
         }
-        let state_fractions = (0..n_states).map(|s| estimate(ok.iter().filter(|o| o.active == s).count(), n)).collect();
+        let state_fractions = (0..n_states)
+            .map(|s| estimate(ok.iter().filter(|o| o.active == s).count(), n))
+            .collect();
         let mean_populations = (0..n_states)
-            .map(|s| if n == 0 { 0.0 } else { ok.iter().map(|o| o.populations[s]).sum::<f64>() / n as f64 })
+            .map(|s| {
+                if n == 0 {
+                    0.0
+                } else {
+                    ok.iter().map(|o| o.populations[s]).sum::<f64>() / n as f64
+                }
+            })
             .collect();
         let hops = outcomes.iter().flat_map(|o| o.hops.iter());
-        let (acc, fru) = hops.fold((0, 0), |(a, f), h| if h.accepted { (a + 1, f) } else { (a, f + 1) });
+        let (acc, fru) = hops.fold(
+            (0, 0),
+            |(a, f), h| if h.accepted { (a + 1, f) } else { (a, f + 1) },
+        );
         Self {
             title: cfg.title.clone(),
             trajectories: outcomes.len(),
@@ -118,7 +138,9 @@ impl Summary {
 
     /// The probability of one channel and state (0 when absent).
     pub fn channel(&self, channel: Channel, state: usize) -> Option<&ChannelEstimate> {
-        self.channels.iter().find(|c| c.channel == channel && c.state == state)
+        self.channels
+            .iter()
+            .find(|c| c.channel == channel && c.state == state)
     }
 
     /// Human-readable table.
@@ -129,7 +151,13 @@ impl Summary {
         if !self.title.is_empty() {
             let _ = writeln!(s, "{}", self.title);
         }
-        let _ = writeln!(s, "trajectories: {} run, {} finished, {} failed", self.trajectories, self.finished, self.failed.len());
+        let _ = writeln!(
+            s,
+            "trajectories: {} run, {} finished, {} failed",
+            self.trajectories,
+            self.finished,
+            self.failed.len()
+        );
         if !self.channels.is_empty() {
             let _ = writeln!(s, "\n  channel      state  probability  std. error  count");
             for c in &self.channels {
@@ -138,14 +166,27 @@ impl Summary {
                     Channel::Transmitted => "transmitted",
                     Channel::Inside => "inside",
                 };
-                let _ = writeln!(s, "  {name:<11}  {:>5}  {:>11.4}  {:>10.4}  {:>5}", c.state, c.probability, c.standard_error, c.count);
+                let _ = writeln!(
+                    s,
+                    "  {name:<11}  {:>5}  {:>11.4}  {:>10.4}  {:>5}",
+                    c.state, c.probability, c.standard_error, c.count
+                );
             }
         }
         let _ = writeln!(s, "\n  state  fraction on state  std. error  mean |c|²");
-        for (k, ((p, e), c)) in self.state_fractions.iter().zip(&self.mean_populations).enumerate() {
+        for (k, ((p, e), c)) in self
+            .state_fractions
+            .iter()
+            .zip(&self.mean_populations)
+            .enumerate()
+        {
             let _ = writeln!(s, "  {k:>5}  {p:>17.4}  {e:>10.4}  {c:>9.4}");
         }
-        let _ = writeln!(s, "\nhops: {} accepted, {} frustrated; largest energy drift {:.2e} hartree ({:.2e} eV)", self.hops_accepted, self.hops_frustrated, self.max_energy_drift, ev);
+        let _ = writeln!(
+            s,
+            "\nhops: {} accepted, {} frustrated; largest energy drift {:.2e} hartree ({:.2e} eV)",
+            self.hops_accepted, self.hops_frustrated, self.max_energy_drift, ev
+        );
         for (i, step, reason) in self.failed.iter().take(20) {
             let _ = writeln!(s, "failed: trajectory {i} at step {step}: {reason}");
         }
@@ -201,8 +242,15 @@ impl PopulationCurves {
                 }
             }
         }
-        let times = (0..len).map(|t| t as f64 * record_every as f64 * cfg.settings.dt).collect();
-        Self { times, fractions, populations, trajectories: ok.len() }
+        let times = (0..len)
+            .map(|t| t as f64 * record_every as f64 * cfg.settings.dt)
+            .collect();
+        Self {
+            times,
+            fractions,
+            populations,
+            trajectories: ok.len(),
+        }
     }
 
     /// CSV text: time in fs, then fraction and mean |c|² per state.

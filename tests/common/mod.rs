@@ -18,5 +18,8 @@ pub fn scratch(suite: &str, name: &str) -> PathBuf {
 /// Every trajectory of a part or ensemble file.
 pub fn read_all(part: &Path) -> Vec<flipswarm::ensemble::h5::TrajectoryData> {
     let r = flipswarm::ensemble::h5::PartReader::open(part).unwrap();
-    r.trajectory_indices().into_iter().map(|i| r.read(i).unwrap()).collect()
+    r.trajectory_indices()
+        .into_iter()
+        .map(|i| r.read(i).unwrap())
+        .collect()
 }

@@ -31,7 +31,12 @@ pub fn molecule_from(atoms: &Value) -> Molecule {
     let mut pos = Vec::new();
     for a in atoms.as_array().unwrap() {
         els.push(Element::from_atomic_number(a["z"].as_u64().unwrap()).unwrap());
-        let p: Vec<f64> = a["position_bohr"].as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect();
+        let p: Vec<f64> = a["position_bohr"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|x| x.as_f64().unwrap())
+            .collect();
         pos.push([p[0], p[1], p[2]]);
     }
     Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
@@ -41,8 +46,16 @@ pub fn molecule_from(atoms: &Value) -> Molecule {
 /// scripts/reference/scf_energies.py and qc_integrals.py: (Z, position).
 pub fn test_atoms(name: &str) -> Vec<(u64, [f64; 3])> {
     match name {
-        "h2o" => vec![(8, [0.0, 0.0, 0.1]), (1, [0.0, 1.43, -0.98]), (1, [0.05, -1.45, -0.95])],
-        "ch2" => vec![(6, [0.0, 0.0, 0.19]), (1, [0.0, 1.87, -0.57]), (1, [0.02, -1.86, -0.58])],
+        "h2o" => vec![
+            (8, [0.0, 0.0, 0.1]),
+            (1, [0.0, 1.43, -0.98]),
+            (1, [0.05, -1.45, -0.95]),
+        ],
+        "ch2" => vec![
+            (6, [0.0, 0.0, 0.19]),
+            (1, [0.0, 1.87, -0.57]),
+            (1, [0.02, -1.86, -0.58]),
+        ],
         "ch2o" => vec![
             (6, [0.0, 0.0, -1.0]),
             (8, [0.0, 0.02, 1.28]),
@@ -66,14 +79,20 @@ pub fn test_atoms(name: &str) -> Vec<(u64, [f64; 3])> {
 
 /// A molecule from (Z, position in bohr).
 pub fn molecule_z(list: &[(u64, [f64; 3])]) -> Molecule {
-    let els: Vec<Element> = list.iter().map(|(z, _)| Element::from_atomic_number(*z).unwrap()).collect();
+    let els: Vec<Element> = list
+        .iter()
+        .map(|(z, _)| Element::from_atomic_number(*z).unwrap())
+        .collect();
     let pos: Vec<[f64; 3]> = list.iter().map(|(_, p)| *p).collect();
     Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
 }
 
 /// A molecule from (symbol, position in bohr).
 pub fn molecule_of(atoms: &[(&str, [f64; 3])]) -> Molecule {
-    let els: Vec<Element> = atoms.iter().map(|(s, _)| Element::from_symbol(s).unwrap()).collect();
+    let els: Vec<Element> = atoms
+        .iter()
+        .map(|(s, _)| Element::from_symbol(s).unwrap())
+        .collect();
     let pos: Vec<[f64; 3]> = atoms.iter().map(|(_, p)| *p).collect();
     Molecule::from_elements_positions_bohr(&els, &pos).unwrap()
 }

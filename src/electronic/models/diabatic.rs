@@ -62,7 +62,10 @@ pub(crate) fn jacobi(w: &DMatrix<f64>) -> (Vec<f64>, DMatrix<f64>) {
     let mut v = DMatrix::<f64>::identity(n, n);
     let scale = a.norm();
     for _sweep in 0..64 {
-        let off: f64 = (0..n).flat_map(|p| (p + 1..n).map(move |q| (p, q))).map(|(p, q)| a[(p, q)] * a[(p, q)]).sum();
+        let off: f64 = (0..n)
+            .flat_map(|p| (p + 1..n).map(move |q| (p, q)))
+            .map(|(p, q)| a[(p, q)] * a[(p, q)])
+            .sum();
         if off <= (f64::EPSILON * 1e-3 * scale).powi(2) || off == 0.0 {
             break;
         }
@@ -130,7 +133,15 @@ impl<M: DiabaticModel> DiabaticBackend<M> {
     pub fn new(model: M) -> Self {
         let n = model.n_states();
         let n_dof = model.masses().len();
-        Self { model, n, n_dof, current: None, previous_vectors: None, spare: None, results: Results::default() }
+        Self {
+            model,
+            n,
+            n_dof,
+            current: None,
+            previous_vectors: None,
+            spare: None,
+            results: Results::default(),
+        }
     }
 
     /// The wrapped model.
@@ -143,7 +154,10 @@ impl<M: DiabaticModel> DiabaticBackend<M> {
         // dynamics calls this once per step, so it allocates as little as it can.
         let (mut w, mut dw) = match self.spare.take() {
             Some(buffers) => buffers,
-            None => (DMatrix::zeros(self.n, self.n), vec![DMatrix::zeros(self.n, self.n); self.n_dof]),
+            None => (
+                DMatrix::zeros(self.n, self.n),
+                vec![DMatrix::zeros(self.n, self.n); self.n_dof],
+            ),
         };
         self.model.diabatic(q, &mut w, &mut dw);
         let (energies, vectors) = eigh_ascending(&w);
@@ -161,7 +175,11 @@ impl<M: DiabaticModel> DiabaticBackend<M> {
         results.transition_dipoles = None;
         results.diagnostics = Default::default();
         self.results = results;
-        self.current = Some(Point { q: q.to_vec(), vectors, dw });
+        self.current = Some(Point {
+            q: q.to_vec(),
+            vectors,
+            dw,
+        });
     }
 
     /// u_iᵀ (∂W/∂q_k) u_j for all k.
@@ -189,13 +207,20 @@ impl<M: DiabaticModel> DiabaticBackend<M> {
 
 impl<M: DiabaticModel> Backend for DiabaticBackend<M> {
     fn info(&self) -> BackendInfo {
-        BackendInfo { name: self.model.name(), n_states: self.n, masses: self.model.masses() }
+        BackendInfo {
+            name: self.model.name(),
+            n_states: self.n,
+            masses: self.model.masses(),
+        }
     }
 
     fn compute(&mut self, q: &[f64], request: &Request) -> Result<&Results, BackendError> {
         check_geometry(q, self.n_dof)?;
         if let Some(&state) = request.gradients.iter().find(|&&s| s >= self.n) {
-            return Err(BackendError::NoSuchState { state, n_states: self.n });
+            return Err(BackendError::NoSuchState {
+                state,
+                n_states: self.n,
+            });
         }
         let same = self.current.as_ref().is_some_and(|p| p.q == q);
         if !same {
@@ -222,7 +247,11 @@ impl<M: DiabaticModel> Backend for DiabaticBackend<M> {
             };
             let u = &point.vectors;
             let ad: Vec<DMatrix<f64>> = mu.iter().map(|m| u.transpose() * m * u).collect();
-            self.results.transition_dipoles = Some((0..self.n).map(|j| [ad[0][(0, j)], ad[1][(0, j)], ad[2][(0, j)]]).collect());
+            self.results.transition_dipoles = Some(
+                (0..self.n)
+                    .map(|j| [ad[0][(0, j)], ad[1][(0, j)], ad[2][(0, j)]])
+                    .collect(),
+            );
         }
         if request.couplings && self.results.couplings.is_none() {
             let mut c = Couplings::zeros(self.n, self.n_dof);
@@ -245,7 +274,10 @@ impl<M: DiabaticModel> Backend for DiabaticBackend<M> {
 
     fn snapshot(&self) -> Snapshot {
         match &self.current {
-            None => Snapshot { backend: self.model.name(), ..Snapshot::default() },
+            None => Snapshot {
+                backend: self.model.name(),
+                ..Snapshot::default()
+            },
             Some(p) => Snapshot {
                 backend: self.model.name(),
                 geometry: p.q.clone(),
@@ -301,12 +333,20 @@ mod tests {
                 let m = DMatrix::from_fn(n, n, |_, _| rng.gen_range(-1.0..1.0));
                 let w = (&m + m.transpose()) * 0.5;
                 let (e, u) = eigh_ascending(&w);
-                let mut reference: Vec<f64> = SymmetricEigen::new(w.clone()).eigenvalues.iter().copied().collect();
+                let mut reference: Vec<f64> = SymmetricEigen::new(w.clone())
+                    .eigenvalues
+                    .iter()
+                    .copied()
+                    .collect();
                 reference.sort_by(f64::total_cmp);
                 for k in 0..n {
                     assert!((e[k] - reference[k]).abs() < 1e-12);
                     let uk = u.column(k);
-                    assert!((&w * uk - uk * e[k]).norm() < 1e-14, "n={n} residual {}", (&w * uk - uk * e[k]).norm());
+                    assert!(
+                        (&w * uk - uk * e[k]).norm() < 1e-14,
+                        "n={n} residual {}",
+                        (&w * uk - uk * e[k]).norm()
+                    );
                 }
                 assert!((u.transpose() * &u - DMatrix::identity(n, n)).norm() < 1e-14);
             }
@@ -316,7 +356,12 @@ mod tests {
     #[test]
     fn closed_form_two_state_matches_general_solver() {
         // fast vs reference implementation (design §11)
-        for &(a, b, d) in &[(0.3, -0.2, -0.1), (0.0, 0.0, 0.0), (1.0, 1e-9, 1.0), (-0.5, 0.7, 0.2)] {
+        for &(a, b, d) in &[
+            (0.3, -0.2, -0.1),
+            (0.0, 0.0, 0.0),
+            (1.0, 1e-9, 1.0),
+            (-0.5, 0.7, 0.2),
+        ] {
             let w = DMatrix::from_row_slice(2, 2, &[a, b, b, d]);
             let (e, u) = eigh_ascending(&w);
             let eig = SymmetricEigen::new(w.clone());

@@ -112,37 +112,67 @@ impl Lvc {
     /// Read and validate a model file.
     pub fn from_file(path: &Path) -> Result<Self, LvcError> {
         let origin = path.display().to_string();
-        let text = std::fs::read_to_string(path)
-            .map_err(|e| LvcError { origin: origin.clone(), message: format!("cannot read: {e}") })?;
+        let text = std::fs::read_to_string(path).map_err(|e| LvcError {
+            origin: origin.clone(),
+            message: format!("cannot read: {e}"),
+        })?;
         Self::from_toml(&text, &origin)
     }
 
     /// Parse and validate model text; `origin` names it in messages.
     pub fn from_toml(text: &str, origin: &str) -> Result<Self, LvcError> {
-        let err = |message: String| LvcError { origin: origin.to_string(), message };
-        let raw: RawLvc = toml::from_str(text).map_err(|e| err(e.to_string().trim_end().to_string()))?;
+        let err = |message: String| LvcError {
+            origin: origin.to_string(),
+            message,
+        };
+        let raw: RawLvc =
+            toml::from_str(text).map_err(|e| err(e.to_string().trim_end().to_string()))?;
         let n_modes = raw.frequencies_ev.len();
         let n_states = raw.vertical_ev.len();
         if n_modes == 0 {
-            return Err(err("key `frequencies_ev`: at least one mode is needed".into()));
+            return Err(err(
+                "key `frequencies_ev`: at least one mode is needed".into()
+            ));
         }
         if n_states == 0 {
             return Err(err("key `vertical_ev`: at least one state is needed".into()));
         }
-        if let Some((i, w)) = raw.frequencies_ev.iter().enumerate().find(|(_, w)| !(**w > 0.0 && w.is_finite())) {
-            return Err(err(format!("key `frequencies_ev`: mode {i} has frequency {w} eV; frequencies must be positive")));
+        if let Some((i, w)) = raw
+            .frequencies_ev
+            .iter()
+            .enumerate()
+            .find(|(_, w)| !(**w > 0.0 && w.is_finite()))
+        {
+            return Err(err(format!(
+                "key `frequencies_ev`: mode {i} has frequency {w} eV; frequencies must be positive"
+            )));
         }
-        if let Some((i, e)) = raw.vertical_ev.iter().enumerate().find(|(_, e)| !e.is_finite()) {
-            return Err(err(format!("key `vertical_ev`: state {i} has non-finite energy {e}")));
+        if let Some((i, e)) = raw
+            .vertical_ev
+            .iter()
+            .enumerate()
+            .find(|(_, e)| !e.is_finite())
+        {
+            return Err(err(format!(
+                "key `vertical_ev`: state {i} has non-finite energy {e}"
+            )));
         }
         let mut gradients = Vec::new();
         for (k, g) in raw.gradient.iter().enumerate() {
             let at = format!("[[gradient]] entry {k}");
             if g.state >= n_states {
-                return Err(err(format!("{at}: key `state` = {} but the model has {n_states} states (0–{})", g.state, n_states - 1)));
+                return Err(err(format!(
+                    "{at}: key `state` = {} but the model has {n_states} states (0–{})",
+                    g.state,
+                    n_states - 1
+                )));
             }
             if g.mode >= n_modes {
-                return Err(err(format!("{at}: key `mode` = {} but the model has {n_modes} modes (0–{})", g.mode, n_modes - 1)));
+                return Err(err(format!(
+                    "{at}: key `mode` = {} but the model has {n_modes} modes (0–{})",
+                    g.mode,
+                    n_modes - 1
+                )));
             }
             if !g.value_ev.is_finite() {
                 return Err(err(format!("{at}: key `value_ev` is not finite")));
@@ -154,13 +184,21 @@ impl Lvc {
             let at = format!("[[coupling]] entry {k}");
             let [n, m] = c.states;
             if n >= n_states || m >= n_states {
-                return Err(err(format!("{at}: key `states` = [{n}, {m}] but the model has {n_states} states")));
+                return Err(err(format!(
+                    "{at}: key `states` = [{n}, {m}] but the model has {n_states} states"
+                )));
             }
             if n == m {
-                return Err(err(format!("{at}: key `states` = [{n}, {m}] couples a state to itself; use [[gradient]]")));
+                return Err(err(format!(
+                    "{at}: key `states` = [{n}, {m}] couples a state to itself; use [[gradient]]"
+                )));
             }
             if c.mode >= n_modes {
-                return Err(err(format!("{at}: key `mode` = {} but the model has {n_modes} modes (0–{})", c.mode, n_modes - 1)));
+                return Err(err(format!(
+                    "{at}: key `mode` = {} but the model has {n_modes} modes (0–{})",
+                    c.mode,
+                    n_modes - 1
+                )));
             }
             if !c.value_ev.is_finite() {
                 return Err(err(format!("{at}: key `value_ev` is not finite")));
@@ -172,7 +210,9 @@ impl Lvc {
             let at = format!("[[dipole]] entry {k}");
             let [n, m] = d.states;
             if n >= n_states || m >= n_states {
-                return Err(err(format!("{at}: key `states` = [{n}, {m}] but the model has {n_states} states")));
+                return Err(err(format!(
+                    "{at}: key `states` = [{n}, {m}] but the model has {n_states} states"
+                )));
             }
             if d.value_au.iter().any(|v| !v.is_finite()) {
                 return Err(err(format!("{at}: key `value_au` is not finite")));
@@ -182,8 +222,16 @@ impl Lvc {
         Ok(Self {
             dipoles,
             description: raw.description,
-            omegas: raw.frequencies_ev.iter().map(|&w| units::ev_to_hartree(w)).collect(),
-            vertical: raw.vertical_ev.iter().map(|&e| units::ev_to_hartree(e)).collect(),
+            omegas: raw
+                .frequencies_ev
+                .iter()
+                .map(|&w| units::ev_to_hartree(w))
+                .collect(),
+            vertical: raw
+                .vertical_ev
+                .iter()
+                .map(|&e| units::ev_to_hartree(e))
+                .collect(),
             gradients,
             couplings,
         })
@@ -210,7 +258,11 @@ impl DiabaticModel for Lvc {
             return None;
         }
         let n = self.vertical.len();
-        let mut out = [DMatrix::zeros(n, n), DMatrix::zeros(n, n), DMatrix::zeros(n, n)];
+        let mut out = [
+            DMatrix::zeros(n, n),
+            DMatrix::zeros(n, n),
+            DMatrix::zeros(n, n),
+        ];
         for &(a, b, v) in &self.dipoles {
             for k in 0..3 {
                 out[k][(a, b)] = v[k];
@@ -220,7 +272,11 @@ impl DiabaticModel for Lvc {
         Some(out)
     }
     fn diabatic(&self, x: &[f64], w: &mut DMatrix<f64>, dw: &mut [DMatrix<f64>]) {
-        let harmonic: f64 = x.iter().zip(&self.omegas).map(|(x, w)| 0.5 * w * w * x * x).sum();
+        let harmonic: f64 = x
+            .iter()
+            .zip(&self.omegas)
+            .map(|(x, w)| 0.5 * w * w * x * x)
+            .sum();
         w.fill(0.0);
         for (n, e) in self.vertical.iter().enumerate() {
             w[(n, n)] = e + harmonic;

@@ -38,7 +38,10 @@ pub struct Tully {
 impl Tully {
     /// The model with the published mass of 2000 electron masses.
     pub fn new(model: TullyModel) -> Self {
-        Self { model, mass: 2000.0 }
+        Self {
+            model,
+            mass: 2000.0,
+        }
     }
 
     /// Diabatic matrix elements (V11, V22, V12) and their x-derivatives.
@@ -60,7 +63,10 @@ impl Tully {
                 let (a, b, c, d, e0) = (0.10, 0.28, 0.015, 0.06, 0.05);
                 let e = (-b * x * x).exp();
                 let g = c * (-d * x * x).exp();
-                ([0.0, -a * e + e0, g], [0.0, 2.0 * a * b * x * e, -2.0 * d * x * g])
+                (
+                    [0.0, -a * e + e0, g],
+                    [0.0, 2.0 * a * b * x * e, -2.0 * d * x * g],
+                )
             }
             TullyModel::ExtendedCoupling => {
                 let (a, b, c) = (6e-4, 0.10, 0.90);
@@ -124,7 +130,11 @@ mod tests {
                 let (m, _) = t.elements(x - h);
                 for k in 0..3 {
                     let fd = (p[k] - m[k]) / (2.0 * h);
-                    assert!((fd - d[k]).abs() < 1e-9, "{model:?} x={x} k={k}: {fd} vs {}", d[k]);
+                    assert!(
+                        (fd - d[k]).abs() < 1e-9,
+                        "{model:?} x={x} k={k}: {fd} vs {}",
+                        d[k]
+                    );
                 }
             }
         }

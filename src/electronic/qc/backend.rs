@@ -47,7 +47,8 @@ use super::response::tracking::ReferenceCharacter;
 use super::response::{self, ExcitedStates, Method, StateRequest};
 use super::scf::{Guess, ScfResult};
 use crate::electronic::{
-    check_geometry, Backend, BackendError, BackendInfo, Couplings, Diagnostics, Request, Results, Snapshot,
+    check_geometry, Backend, BackendError, BackendInfo, Couplings, Diagnostics, Request, Results,
+    Snapshot,
 };
 use nalgebra::DMatrix;
 use rayon::prelude::*;
@@ -99,11 +100,21 @@ pub struct MolecularSpec {
 impl MolecularSpec {
     /// Masses per Cartesian coordinate (electron masses).
     pub fn masses(&self) -> Vec<f64> {
-        self.calculation.molecule.masses_me().iter().flat_map(|&m| [m, m, m]).collect()
+        self.calculation
+            .molecule
+            .masses_me()
+            .iter()
+            .flat_map(|&m| [m, m, m])
+            .collect()
     }
     /// The reference geometry as flat Cartesian coordinates (bohr).
     pub fn reference_coordinates(&self) -> Vec<f64> {
-        self.calculation.molecule.atoms.iter().flat_map(|a| a.position_bohr).collect()
+        self.calculation
+            .molecule
+            .atoms
+            .iter()
+            .flat_map(|a| a.position_bohr)
+            .collect()
     }
 }
 
@@ -183,7 +194,14 @@ impl MrsfBackend {
     /// A back end for `spec`.
     pub fn new(spec: Arc<MolecularSpec>) -> MrsfBackend {
         let masses = spec.masses();
-        MrsfBackend { spec, masses, current: None, previous: None, results: Results::default(), timings: Timings::default() }
+        MrsfBackend {
+            spec,
+            masses,
+            current: None,
+            previous: None,
+            results: Results::default(),
+            timings: Timings::default(),
+        }
     }
 
     /// Time spent so far, by part.
@@ -196,20 +214,33 @@ impl MrsfBackend {
     }
 
     /// SCF and response at `q` from `guess`.
-    fn solve(spec: &MolecularSpec, q: &[f64], guess: &Guess) -> Result<(BasisSet, ScfResult, ExcitedStates), BackendError> {
+    fn solve(
+        spec: &MolecularSpec,
+        q: &[f64],
+        guess: &Guess,
+    ) -> Result<(BasisSet, ScfResult, ExcitedStates), BackendError> {
         Self::solve_timed(spec, q, guess).map(|(b, s, x, _)| (b, s, x))
     }
 
     /// As [`Self::solve`], with the SCF and response times (s).
-    fn solve_timed(spec: &MolecularSpec, q: &[f64], guess: &Guess) -> Result<(BasisSet, ScfResult, ExcitedStates, [f64; 2]), BackendError> {
+    fn solve_timed(
+        spec: &MolecularSpec,
+        q: &[f64],
+        guess: &Guess,
+    ) -> Result<(BasisSet, ScfResult, ExcitedStates, [f64; 2]), BackendError> {
         let calc = &spec.calculation;
         let t0 = std::time::Instant::now();
         let basis = calc.basis_at(&positions(q)).map_err(failed)?;
         let (scf, mut engine, cx) = calc.scf_with_engine(&basis, guess).map_err(failed)?;
         let t1 = std::time::Instant::now();
-        let request = StateRequest { method: Method::Mrsf, singlets: spec.singlets, triplets: 0 };
-        let excited = response::excited_states(&basis, &scf, cx, &mut engine, request, &calc.davidson)
-            .map_err(|e| BackendError::Failed(format!("MRSF response: {e}")))?;
+        let request = StateRequest {
+            method: Method::Mrsf,
+            singlets: spec.singlets,
+            triplets: 0,
+        };
+        let excited =
+            response::excited_states(&basis, &scf, cx, &mut engine, request, &calc.davidson)
+                .map_err(|e| BackendError::Failed(format!("MRSF response: {e}")))?;
         if excited.states.len() < spec.singlets {
             return Err(BackendError::Failed(format!(
                 "{} singlets computed, {} tracked",
@@ -228,7 +259,11 @@ impl MrsfBackend {
     /// A new geometry: SCF, response, character check, overlaps.
     fn new_point(&mut self, q: &[f64]) -> Result<(), BackendError> {
         if let Some(p) = self.current.take() {
-            self.previous = Some(Previous { q: p.q, basis: p.basis, vectors: p.vectors });
+            self.previous = Some(Previous {
+                q: p.q,
+                basis: p.basis,
+                vectors: p.vectors,
+            });
         }
         let spec = self.spec.clone();
         let guess = match &self.previous {
@@ -243,13 +278,21 @@ impl MrsfBackend {
         let mut restarted = None;
         let solved = match Self::solve_timed(&spec, q, &guess) {
             Err(BackendError::Failed(why)) if self.previous.is_some() && why.starts_with("SCF") => {
-                let first = why.lines().next().unwrap_or("").trim_end_matches(':').trim_end_matches("; last iterations").to_string();
+                let first = why
+                    .lines()
+                    .next()
+                    .unwrap_or("")
+                    .trim_end_matches(':')
+                    .trim_end_matches("; last iterations")
+                    .to_string();
                 match Self::solve_timed(&spec, q, &Guess::AtomicSuperposition) {
                     Ok(x) => {
                         restarted = Some(format!("the reference SCF started from the previous orbitals failed ({first}); converged from the atomic guess instead"));
                         Ok(x)
                     }
-                    Err(again) => Err(BackendError::Failed(format!("{why}\n(retried from the atomic guess: {again})"))),
+                    Err(again) => Err(BackendError::Failed(format!(
+                        "{why}\n(retried from the atomic guess: {again})"
+                    ))),
                 }
             }
             other => other,
@@ -271,8 +314,12 @@ impl MrsfBackend {
         };
         if let Some(prev) = &self.previous {
             let nc = vectors.n_core;
-            let before = ReferenceCharacter { open_shells: prev.vectors.orbitals.columns(nc, 2).into_owned() };
-            let now = ReferenceCharacter { open_shells: vectors.orbitals.columns(nc, 2).into_owned() };
+            let before = ReferenceCharacter {
+                open_shells: prev.vectors.orbitals.columns(nc, 2).into_owned(),
+            };
+            let now = ReferenceCharacter {
+                open_shells: vectors.orbitals.columns(nc, 2).into_owned(),
+            };
             let check = now.compare(&basis, &before, &prev.basis).map_err(failed)?;
             if check.changed {
                 diagnostics.warnings.push(format!(
@@ -287,7 +334,15 @@ impl MrsfBackend {
             ..Results::default()
         };
         self.timings.overlaps += t_overlaps.elapsed().as_secs_f64();
-        self.current = Some(Point { q: q.to_vec(), basis, scf, excited, vectors, gradients: vec![None; n], displaced: None });
+        self.current = Some(Point {
+            q: q.to_vec(),
+            basis,
+            scf,
+            excited,
+            vectors,
+            gradients: vec![None; n],
+            displaced: None,
+        });
         Ok(())
     }
 
@@ -306,7 +361,9 @@ impl MrsfBackend {
         let n = spec.singlets;
         let guess = guess_from(&point.vectors, &spec.calculation);
         let indices: Vec<usize> = (0..n).collect();
-        let jobs: Vec<(usize, f64)> = (0..point.q.len()).flat_map(|k| [(k, step), (k, -step)]).collect();
+        let jobs: Vec<(usize, f64)> = (0..point.q.len())
+            .flat_map(|k| [(k, step), (k, -step)])
+            .collect();
         let base = &point.q;
         let done: Vec<Result<(Vec<f64>, BasisSet, StateVectors), BackendError>> = jobs
             .par_iter()
@@ -314,7 +371,9 @@ impl MrsfBackend {
                 let mut q = base.clone();
                 q[k] += h;
                 let (basis, _, excited) = Self::solve(&spec, &q, &guess).map_err(|e| {
-                    BackendError::Failed(format!("displaced geometry (coordinate {k}, {h:+e} bohr): {e}"))
+                    BackendError::Failed(format!(
+                        "displaced geometry (coordinate {k}, {h:+e} bohr): {e}"
+                    ))
                 })?;
                 let vectors = StateVectors::from_states(&excited, &indices).map_err(failed)?;
                 Ok((Self::energies(&excited, n), basis, vectors))
@@ -330,7 +389,11 @@ impl MrsfBackend {
         if numerical {
             let dof = point.q.len();
             for (s, g) in point.gradients.iter_mut().enumerate() {
-                *g = Some((0..dof).map(|k| (energies[2 * k][s] - energies[2 * k + 1][s]) / (2.0 * step)).collect());
+                *g = Some(
+                    (0..dof)
+                        .map(|k| (energies[2 * k][s] - energies[2 * k + 1][s]) / (2.0 * step))
+                        .collect(),
+                );
             }
         }
         point.displaced = Some(displaced);
@@ -342,7 +405,11 @@ impl MrsfBackend {
     fn gradients(&mut self, states: &[usize]) -> Result<(), BackendError> {
         let missing: Vec<usize> = {
             let point = self.current.as_ref().expect("a current point");
-            let mut m: Vec<usize> = states.iter().copied().filter(|&s| point.gradients[s].is_none()).collect();
+            let mut m: Vec<usize> = states
+                .iter()
+                .copied()
+                .filter(|&s| point.gradients[s].is_none())
+                .collect();
             m.dedup();
             m
         };
@@ -355,8 +422,16 @@ impl MrsfBackend {
                 let started = std::time::Instant::now();
                 let calc = &self.spec.calculation;
                 let point = self.current.as_mut().expect("a current point");
-                let g = mrsf_state_gradients(&point.basis, &point.scf, &point.excited, &missing, &calc.potential, &calc.jk, zvector)
-                    .map_err(|e| BackendError::Failed(format!("analytic MRSF gradient: {e}")))?;
+                let g = mrsf_state_gradients(
+                    &point.basis,
+                    &point.scf,
+                    &point.excited,
+                    &missing,
+                    &calc.potential,
+                    &calc.jk,
+                    zvector,
+                )
+                .map_err(|e| BackendError::Failed(format!("analytic MRSF gradient: {e}")))?;
                 for (s, gs) in missing.iter().zip(g) {
                     point.gradients[*s] = Some(gs.into_iter().flatten().collect());
                 }
@@ -402,7 +477,11 @@ impl MrsfBackend {
 
 impl Backend for MrsfBackend {
     fn info(&self) -> BackendInfo {
-        BackendInfo { name: self.spec.label.clone(), n_states: self.spec.singlets, masses: self.masses.clone() }
+        BackendInfo {
+            name: self.spec.label.clone(),
+            n_states: self.spec.singlets,
+            masses: self.masses.clone(),
+        }
     }
 
     fn compute(&mut self, q: &[f64], request: &Request) -> Result<&Results, BackendError> {
@@ -418,7 +497,8 @@ impl Backend for MrsfBackend {
                 if let Some(prev) = &self.previous {
                     let t = std::time::Instant::now();
                     let p = self.current.as_ref().expect("just computed");
-                    let s = state_overlaps(&prev.vectors, &prev.basis, &p.vectors, &p.basis).map_err(failed)?;
+                    let s = state_overlaps(&prev.vectors, &prev.basis, &p.vectors, &p.basis)
+                        .map_err(failed)?;
                     self.results.overlaps = Some(s);
                     self.timings.overlaps += t.elapsed().as_secs_f64();
                 }
@@ -440,7 +520,10 @@ impl Backend for MrsfBackend {
         }
         if request.transition_dipoles && self.results.transition_dipoles.is_none() {
             let x = &point.excited;
-            let dipoles = (0..n).map(|i| x.transition_dipole(0, i)).collect::<Result<Vec<_>, _>>().map_err(failed)?;
+            let dipoles = (0..n)
+                .map(|i| x.transition_dipole(0, i))
+                .collect::<Result<Vec<_>, _>>()
+                .map_err(failed)?;
             self.results.transition_dipoles = Some(dipoles);
         }
         Ok(&self.results)
@@ -450,16 +533,31 @@ impl Backend for MrsfBackend {
         let (q, v) = match (&self.current, &self.previous) {
             (Some(p), _) => (p.q.clone(), &p.vectors),
             (None, Some(p)) => (p.q.clone(), &p.vectors),
-            (None, None) => return Snapshot { backend: self.spec.label.clone(), geometry: Vec::new(), reals: Vec::new() },
+            (None, None) => {
+                return Snapshot {
+                    backend: self.spec.label.clone(),
+                    geometry: Vec::new(),
+                    reals: Vec::new(),
+                }
+            }
         };
         let c = &v.orbitals;
-        let mut reals = vec![c.nrows() as f64, c.ncols() as f64, v.n_core as f64, v.len() as f64];
+        let mut reals = vec![
+            c.nrows() as f64,
+            c.ncols() as f64,
+            v.n_core as f64,
+            v.len() as f64,
+        ];
         reals.extend_from_slice(c.as_slice());
         for (xp, xm) in &v.amplitudes {
             reals.extend_from_slice(xp.as_slice());
             reals.extend_from_slice(xm.as_slice());
         }
-        Snapshot { backend: self.spec.label.clone(), geometry: q, reals }
+        Snapshot {
+            backend: self.spec.label.clone(),
+            geometry: q,
+            reals,
+        }
     }
 
     fn restore(&mut self, snapshot: &Snapshot) -> Result<(), BackendError> {
@@ -475,7 +573,8 @@ impl Backend for MrsfBackend {
             self.previous = None;
             return Ok(());
         }
-        check_geometry(&snapshot.geometry, self.n_dof()).map_err(|e| BackendError::Snapshot(e.to_string()))?;
+        check_geometry(&snapshot.geometry, self.n_dof())
+            .map_err(|e| BackendError::Snapshot(e.to_string()))?;
         let r = &snapshot.reals;
         let bad = |what: &str| BackendError::Snapshot(format!("electronic record: {what}"));
         if r.len() < 4 || r[..4].iter().any(|x| x.fract() != 0.0 || *x < 0.0) {
@@ -490,9 +589,16 @@ impl Backend for MrsfBackend {
         if r.len() != need {
             return Err(bad(&format!("{} numbers, {need} expected", r.len())));
         }
-        let basis = self.spec.calculation.basis_at(&positions(&snapshot.geometry)).map_err(|e| bad(&e.to_string()))?;
+        let basis = self
+            .spec
+            .calculation
+            .basis_at(&positions(&snapshot.geometry))
+            .map_err(|e| bad(&e.to_string()))?;
         if basis.nbf != nbf {
-            return Err(bad(&format!("{nbf} basis functions recorded, the basis has {}", basis.nbf)));
+            return Err(bad(&format!(
+                "{nbf} basis functions recorded, the basis has {}",
+                basis.nbf
+            )));
         }
         let mut at = 4;
         let mut take = |rows: usize, cols: usize| {
@@ -501,11 +607,17 @@ impl Backend for MrsfBackend {
             m
         };
         let orbitals = take(nbf, nmo);
-        let amplitudes = (0..ns).map(|_| (take(nocc, nvir), take(nocc, nvir))).collect();
+        let amplitudes = (0..ns)
+            .map(|_| (take(nocc, nvir), take(nocc, nvir)))
+            .collect();
         self.previous = Some(Previous {
             q: snapshot.geometry.clone(),
             basis,
-            vectors: StateVectors { n_core: nc, orbitals, amplitudes },
+            vectors: StateVectors {
+                n_core: nc,
+                orbitals,
+                amplitudes,
+            },
         });
         Ok(())
     }

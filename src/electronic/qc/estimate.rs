@@ -65,12 +65,21 @@ pub fn human(bytes: usize) -> String {
 
 /// Estimate for `nbf` basis functions on `atoms` atoms with `electrons`
 /// electrons, an optional Kohn–Sham grid and `roots` response roots.
-pub fn memory(nbf: usize, atoms: usize, electrons: usize, grid: Option<&GridSpec>, roots: usize, jk: &JkOptions) -> MemoryEstimate {
+pub fn memory(
+    nbf: usize,
+    atoms: usize,
+    electrons: usize,
+    grid: Option<&GridSpec>,
+    roots: usize,
+    jk: &JkOptions,
+) -> MemoryEstimate {
     let f = std::mem::size_of::<f64>();
     let eri = EriStore::bytes_needed(nbf);
     let integrals = if eri <= jk.max_in_core_bytes { eri } else { 0 };
     let points = grid.map_or(0, |g| {
-        let radial = g.radial.unwrap_or_else(|| g.radial_per_row.iter().copied().max().unwrap_or(0));
+        let radial = g
+            .radial
+            .unwrap_or_else(|| g.radial_per_row.iter().copied().max().unwrap_or(0));
         atoms * radial * g.angular
     });
     let ao_values = (points * nbf * 4 * f).min(if grid.is_some() { AO_CACHE_BYTES } else { 0 });
@@ -106,7 +115,10 @@ mod tests {
         let e = memory(100, 10, 40, None, 4, &jk);
         assert_eq!(e.integrals, 102_030_200);
         assert_eq!(e.grid, 0);
-        let direct = JkOptions { max_in_core_bytes: 1 << 20, ..JkOptions::default() };
+        let direct = JkOptions {
+            max_in_core_bytes: 1 << 20,
+            ..JkOptions::default()
+        };
         assert_eq!(memory(100, 10, 40, None, 4, &direct).integrals, 0);
         let g = GridSpec::level("coarse").unwrap();
         let ks = memory(100, 10, 40, Some(&g), 4, &jk);

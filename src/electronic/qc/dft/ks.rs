@@ -24,7 +24,9 @@ use super::grid::{GridError, GridSpec, MolecularGrid};
 use super::xc::{Family, Functional, Spin, XcError, XcInput, XcOutput};
 use crate::electronic::qc::basis::BasisSet;
 use crate::electronic::qc::integrals::JkOptions;
-use crate::electronic::qc::scf::fock::{coulomb_exchange_terms, FockBuilder, JkEngine, TwoElectronTerms};
+use crate::electronic::qc::scf::fock::{
+    coulomb_exchange_terms, FockBuilder, JkEngine, TwoElectronTerms,
+};
 use crate::electronic::qc::scf::{Reference, ScfError};
 use nalgebra::{DMatrix, DMatrixView};
 use rayon::prelude::*;
@@ -88,7 +90,11 @@ impl KohnSham {
     /// Grid, AO screening data and integral engine for `basis`; the
     /// functional is evaluated spin-polarised unless `reference` is
     /// restricted closed-shell.
-    pub fn new(basis: &BasisSet, reference: Reference, opts: &KsOptions) -> Result<KohnSham, KsError> {
+    pub fn new(
+        basis: &BasisSet,
+        reference: Reference,
+        opts: &KsOptions,
+    ) -> Result<KohnSham, KsError> {
         let spin = if reference == Reference::Restricted {
             Spin::Unpolarized
         } else {
@@ -116,8 +122,13 @@ impl KohnSham {
             }));
         }
         let engine = JkEngine::new(basis, opts.jk.clone());
-        tracing::debug!("Kohn-Sham set-up: integral engine {:.3} s", t.elapsed().as_secs_f64());
-        let ao_cache = (0..grid.blocks.len()).map(|_| std::sync::OnceLock::new()).collect();
+        tracing::debug!(
+            "Kohn-Sham set-up: integral engine {:.3} s",
+            t.elapsed().as_secs_f64()
+        );
+        let ao_cache = (0..grid.blocks.len())
+            .map(|_| std::sync::OnceLock::new())
+            .collect();
         Ok(KohnSham {
             engine,
             ao_cache,
@@ -173,7 +184,12 @@ impl KohnSham {
         Ok((p.va, p.vb))
     }
 
-    fn xc(&self, da: &DMatrix<f64>, db: &DMatrix<f64>, restricted: bool) -> Result<XcParts, ScfError> {
+    fn xc(
+        &self,
+        da: &DMatrix<f64>,
+        db: &DMatrix<f64>,
+        restricted: bool,
+    ) -> Result<XcParts, ScfError> {
         let n = self.nbf;
         if self.functional.is_hf_only() {
             return Ok(XcParts {
@@ -205,13 +221,19 @@ impl KohnSham {
             .par_iter()
             .enumerate()
             .map(|(ci, range)| {
-                let mut guard = workers[ci].lock().map_err(|_| ScfError::Xc("a grid worker panicked".into()))?;
+                let mut guard = workers[ci]
+                    .lock()
+                    .map_err(|_| ScfError::Xc("a grid worker panicked".into()))?;
                 let w: &mut Worker = &mut guard;
                 let mut acc = XcParts {
                     energy: 0.0,
                     electrons: 0.0,
                     va: DMatrix::zeros(n, n),
-                    vb: if polarized { DMatrix::zeros(n, n) } else { DMatrix::zeros(0, 0) },
+                    vb: if polarized {
+                        DMatrix::zeros(n, n)
+                    } else {
+                        DMatrix::zeros(0, 0)
+                    },
                 };
                 for blk in range.clone() {
                     let block = &grid.blocks[blk];
@@ -304,7 +326,11 @@ impl<'a> BlockAo<'a> {
             np: v.npts(),
             phi: v.component(COMP_VALUE),
             grad: if v.deriv() >= 1 {
-                Some([v.component(COMP_X), v.component(COMP_Y), v.component(COMP_Z)])
+                Some([
+                    v.component(COMP_X),
+                    v.component(COMP_Y),
+                    v.component(COMP_Z),
+                ])
             } else {
                 None
             },
@@ -385,7 +411,13 @@ fn xc_err(e: XcError) -> ScfError {
     ScfError::Xc(e.to_string())
 }
 
-fn block_unpolarized(b: &BlockAo, weights: &[f64], dtot: &DMatrix<f64>, w: &mut Worker, acc: &mut XcParts) -> Result<(), ScfError> {
+fn block_unpolarized(
+    b: &BlockAo,
+    weights: &[f64],
+    dtot: &DMatrix<f64>,
+    w: &mut Worker,
+    acc: &mut XcParts,
+) -> Result<(), ScfError> {
     let np = b.np;
     let t = b.phi() * sub_density(dtot, b.aos);
     let (rho, grad) = density_and_gradient(b, &t);
@@ -393,16 +425,24 @@ fn block_unpolarized(b: &BlockAo, weights: &[f64], dtot: &DMatrix<f64>, w: &mut 
     w.rho.extend_from_slice(&rho);
     w.sigma.clear();
     if let Some(g) = &grad {
-        w.sigma.extend((0..np).map(|p| g[0][p] * g[0][p] + g[1][p] * g[1][p] + g[2][p] * g[2][p]));
+        w.sigma
+            .extend((0..np).map(|p| g[0][p] * g[0][p] + g[1][p] * g[1][p] + g[2][p] * g[2][p]));
     }
-    let input = XcInput { rho: &w.rho, sigma: &w.sigma };
+    let input = XcInput {
+        rho: &w.rho,
+        sigma: &w.sigma,
+    };
     w.func.eval(&input, 1, &mut w.out).map_err(xc_err)?;
     acc.energy += w.out.energy(&input, weights).map_err(xc_err)?;
     acc.electrons += weights.iter().zip(&rho).map(|(a, r)| a * r).sum::<f64>();
     // u_pν = w_p [½ v_ρ φ_ν + 2 v_σ ∇ρ·∇φ_ν]
     let a: Vec<f64> = (0..np).map(|p| 0.5 * weights[p] * w.out.vrho[p]).collect();
     let c = grad.as_ref().map(|g| {
-        let f = |k: usize| (0..np).map(|p| 2.0 * weights[p] * w.out.vsigma[p] * g[k][p]).collect::<Vec<f64>>();
+        let f = |k: usize| {
+            (0..np)
+                .map(|p| 2.0 * weights[p] * w.out.vsigma[p] * g[k][p])
+                .collect::<Vec<f64>>()
+        };
         [f(0), f(1), f(2)]
     });
     let sub = potential_block(b, &a, c.as_ref());
@@ -431,18 +471,25 @@ fn block_polarized(
     w.sigma.clear();
     if let (Some(ga), Some(gb)) = (&ga, &gb) {
         for p in 0..np {
-            let dot = |x: &[Vec<f64>; 3], y: &[Vec<f64>; 3]| x[0][p] * y[0][p] + x[1][p] * y[1][p] + x[2][p] * y[2][p];
+            let dot = |x: &[Vec<f64>; 3], y: &[Vec<f64>; 3]| {
+                x[0][p] * y[0][p] + x[1][p] * y[1][p] + x[2][p] * y[2][p]
+            };
             w.sigma.push(dot(ga, ga));
             w.sigma.push(dot(ga, gb));
             w.sigma.push(dot(gb, gb));
         }
     }
-    let input = XcInput { rho: &w.rho, sigma: &w.sigma };
+    let input = XcInput {
+        rho: &w.rho,
+        sigma: &w.sigma,
+    };
     w.func.eval(&input, 1, &mut w.out).map_err(xc_err)?;
     acc.energy += w.out.energy(&input, weights).map_err(xc_err)?;
     acc.electrons += (0..np).map(|p| weights[p] * (ra[p] + rb[p])).sum::<f64>();
     for spin in 0..2 {
-        let a: Vec<f64> = (0..np).map(|p| 0.5 * weights[p] * w.out.vrho[2 * p + spin]).collect();
+        let a: Vec<f64> = (0..np)
+            .map(|p| 0.5 * weights[p] * w.out.vrho[2 * p + spin])
+            .collect();
         let c = match (&ga, &gb) {
             (Some(ga), Some(gb)) => {
                 let (own, other) = if spin == 0 { (ga, gb) } else { (gb, ga) };
@@ -451,7 +498,8 @@ fn block_polarized(
                     (0..np)
                         .map(|p| {
                             weights[p]
-                                * (2.0 * w.out.vsigma[3 * p + own_index] * own[k][p] + w.out.vsigma[3 * p + 1] * other[k][p])
+                                * (2.0 * w.out.vsigma[3 * p + own_index] * own[k][p]
+                                    + w.out.vsigma[3 * p + 1] * other[k][p])
                         })
                         .collect::<Vec<f64>>()
                 };
@@ -460,7 +508,11 @@ fn block_polarized(
             _ => None,
         };
         let sub = potential_block(b, &a, c.as_ref());
-        scatter(if spin == 0 { &mut acc.va } else { &mut acc.vb }, b.aos, &sub);
+        scatter(
+            if spin == 0 { &mut acc.va } else { &mut acc.vb },
+            b.aos,
+            &sub,
+        );
     }
     Ok(())
 }
@@ -475,7 +527,8 @@ impl FockBuilder for KohnSham {
     ) -> Result<TwoElectronTerms, ScfError> {
         let cx = self.functional.exact_exchange();
         let t0 = std::time::Instant::now();
-        let mut terms = coulomb_exchange_terms(&mut self.engine, cx, d_alpha, d_beta, restricted, fresh)?;
+        let mut terms =
+            coulomb_exchange_terms(&mut self.engine, cx, d_alpha, d_beta, restricted, fresh)?;
         let t1 = std::time::Instant::now();
         let xc = self.xc(d_alpha, d_beta, restricted)?;
         tracing::debug!(
@@ -486,7 +539,11 @@ impl FockBuilder for KohnSham {
         terms.g_alpha += &xc.va;
         terms.g_beta += &xc.vb;
         terms.xc = xc.energy;
-        terms.grid_electrons = if xc.electrons.is_nan() { None } else { Some(xc.electrons) };
+        terms.grid_electrons = if xc.electrons.is_nan() {
+            None
+        } else {
+            Some(xc.electrons)
+        };
         Ok(terms)
     }
 
@@ -505,7 +562,14 @@ pub fn kohn_sham(
     opts: &KsOptions,
 ) -> Result<crate::electronic::qc::scf::ScfResult, KsRunError> {
     let mut builder = KohnSham::new(basis, reference, opts)?;
-    Ok(crate::electronic::qc::scf::run(basis, electrons, reference, &mut builder, guess, scf)?)
+    Ok(crate::electronic::qc::scf::run(
+        basis,
+        electrons,
+        reference,
+        &mut builder,
+        guess,
+        scf,
+    )?)
 }
 
 /// Errors of [`kohn_sham`]: set-up or SCF.

@@ -25,7 +25,9 @@ use crate::chem::Molecule;
 use crate::electronic::qc::basis::{BasisSet, BasisSetData, Harmonics};
 use crate::electronic::qc::dft::ks::{KohnSham, KsOptions};
 use crate::electronic::qc::integrals::JkOptions;
-use crate::electronic::qc::response::{self, davidson::DavidsonOptions, ExcitedStates, Method, StateRequest};
+use crate::electronic::qc::response::{
+    self, davidson::DavidsonOptions, ExcitedStates, Method, StateRequest,
+};
 use crate::electronic::qc::scf::fock::{HartreeFock, JkEngine};
 use crate::electronic::qc::scf::{self, Electrons, Guess, Reference, ScfOptions, ScfResult};
 use rayon::prelude::*;
@@ -83,7 +85,10 @@ where
             };
             let e = energies(&p).map_err(fail)?;
             if e.len() != count {
-                return Err(fail(format!("{} energies returned, {count} expected", e.len())));
+                return Err(fail(format!(
+                    "{} energies returned, {count} expected",
+                    e.len()
+                )));
             }
             Ok(e)
         })
@@ -182,22 +187,48 @@ impl ScfEnergy {
     ) -> Result<(ScfResult, JkEngine, f64), GradientError> {
         Ok(match &self.potential {
             Potential::HartreeFock => {
-                let mut b = HartreeFock { engine: JkEngine::new(basis, self.jk.clone()), exchange_fraction: 1.0 };
-                let r = scf::run(basis, self.electrons, self.reference, &mut b, guess, &self.scf)?;
+                let mut b = HartreeFock {
+                    engine: JkEngine::new(basis, self.jk.clone()),
+                    exchange_fraction: 1.0,
+                };
+                let r = scf::run(
+                    basis,
+                    self.electrons,
+                    self.reference,
+                    &mut b,
+                    guess,
+                    &self.scf,
+                )?;
                 (r, b.engine, 1.0)
             }
             Potential::KohnSham { functional, grid } => {
-                let opts = KsOptions { functional: functional.clone(), grid: grid.clone(), jk: self.jk.clone() };
+                let opts = KsOptions {
+                    functional: functional.clone(),
+                    grid: grid.clone(),
+                    jk: self.jk.clone(),
+                };
                 let mut b = KohnSham::new(basis, self.reference, &opts)?;
                 let cx = b.functional().exact_exchange();
-                let r = scf::run(basis, self.electrons, self.reference, &mut b, guess, &self.scf)?;
+                let r = scf::run(
+                    basis,
+                    self.electrons,
+                    self.reference,
+                    &mut b,
+                    guess,
+                    &self.scf,
+                )?;
                 (r, b.into_engine(), cx)
             }
         })
     }
 
     /// SCF (and, for an MRSF target, the excited states) at `positions`.
-    pub fn compute(&self, positions: &[[f64; 3]], guess: &Guess, target: &Target) -> Result<Computed, GradientError> {
+    pub fn compute(
+        &self,
+        positions: &[[f64; 3]],
+        guess: &Guess,
+        target: &Target,
+    ) -> Result<Computed, GradientError> {
         let basis = self.basis_at(positions)?;
         let (result, mut engine, cx) = self.scf_with_engine(&basis, guess)?;
         match target {
@@ -207,14 +238,25 @@ impl ScfEnergy {
                 scf: result,
                 excited: None,
             }),
-            Target::Mrsf { label, singlets, triplets } => {
+            Target::Mrsf {
+                label,
+                singlets,
+                triplets,
+            } => {
                 let request = StateRequest {
                     method: Method::Mrsf,
                     singlets: *singlets,
                     triplets: *triplets,
                 };
-                let x = response::excited_states(&basis, &result, cx, &mut engine, request, &self.davidson)
-                    .map_err(|e| GradientError::Response(e.to_string()))?;
+                let x = response::excited_states(
+                    &basis,
+                    &result,
+                    cx,
+                    &mut engine,
+                    request,
+                    &self.davidson,
+                )
+                .map_err(|e| GradientError::Response(e.to_string()))?;
                 let energy = state_energy(&x, label)?;
                 Ok(Computed {
                     energy,
@@ -240,13 +282,17 @@ impl ScfEnergy {
         let reference = match reference {
             Some(r) => r,
             None => {
-                owned = self.compute(positions, &Guess::AtomicSuperposition, &Target::Ground)?.scf;
+                owned = self
+                    .compute(positions, &Guess::AtomicSuperposition, &Target::Ground)?
+                    .scf;
                 &owned
             }
         };
         let guess = orbital_guess(reference);
         central_differences(positions, step, |p| {
-            self.compute(p, &guess, target).map(|c| c.energy).map_err(|e| e.to_string())
+            self.compute(p, &guess, target)
+                .map(|c| c.energy)
+                .map_err(|e| e.to_string())
         })
     }
 
@@ -276,7 +322,9 @@ impl ScfEnergy {
         }
         let guess = orbital_guess(&c.scf);
         central_differences_many(positions, step, labels.len(), |p| {
-            let c = self.compute(p, &guess, &target).map_err(|e| e.to_string())?;
+            let c = self
+                .compute(p, &guess, &target)
+                .map_err(|e| e.to_string())?;
             let x = c.excited.as_ref().ok_or("no excited states computed")?;
             labels
                 .iter()
@@ -309,7 +357,9 @@ pub fn orbital_guess(r: &ScfResult) -> Guess {
 pub fn state_energy(x: &ExcitedStates, label: &str) -> Result<f64, GradientError> {
     let mut labels = Vec::new();
     for i in 0..x.states.len() {
-        let l = x.label(i).map_err(|e| GradientError::Response(e.to_string()))?;
+        let l = x
+            .label(i)
+            .map_err(|e| GradientError::Response(e.to_string()))?;
         if l.eq_ignore_ascii_case(label) {
             return Ok(x.states[i].energy);
         }
@@ -317,6 +367,10 @@ pub fn state_energy(x: &ExcitedStates, label: &str) -> Result<f64, GradientError
     }
     Err(GradientError::StateNotComputed {
         requested: label.to_string(),
-        available: if labels.is_empty() { "none".into() } else { labels.join(", ") },
+        available: if labels.is_empty() {
+            "none".into()
+        } else {
+            labels.join(", ")
+        },
     })
 }

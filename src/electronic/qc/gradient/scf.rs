@@ -158,14 +158,21 @@ pub fn scf_gradient_terms(
     let (cx, functional, grid) = match potential {
         Potential::HartreeFock => (1.0, None, None),
         Potential::KohnSham { functional, grid } => {
-            let spin = if restricted { Spin::Unpolarized } else { Spin::Polarized };
+            let spin = if restricted {
+                Spin::Unpolarized
+            } else {
+                Spin::Polarized
+            };
             let f = Functional::preset_or_libxc(functional, spin)
                 .map_err(|e| GradientError::Ks(e.into()))?;
             let cx = f.exact_exchange();
             let g = if f.is_hf_only() {
                 None
             } else {
-                Some(MolecularGrid::build(&basis.nuclei, grid).map_err(|e| GradientError::Ks(e.into()))?)
+                Some(
+                    MolecularGrid::build(&basis.nuclei, grid)
+                        .map_err(|e| GradientError::Ks(e.into()))?,
+                )
             };
             (cx, Some(f), g)
         }

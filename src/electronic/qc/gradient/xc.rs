@@ -91,8 +91,16 @@ pub fn xc_gradient(
     if polarized == restricted {
         return Err(GradientError::Input(format!(
             "a {} functional for a {} reference",
-            if polarized { "spin-polarised" } else { "spin-unpolarised" },
-            if restricted { "closed-shell" } else { "open-shell" }
+            if polarized {
+                "spin-polarised"
+            } else {
+                "spin-unpolarised"
+            },
+            if restricted {
+                "closed-shell"
+            } else {
+                "open-shell"
+            }
         )));
     }
     let gga = functional.family() == Family::Gga;
@@ -227,7 +235,10 @@ fn block_gradient(
         };
         (rho[0].clone(), s)
     };
-    let input = XcInput { rho: &rho_in, sigma: &sigma_in };
+    let input = XcInput {
+        rho: &rho_in,
+        sigma: &sigma_in,
+    };
     func.eval(&input, 1, out).map_err(xc_err)?;
     acc.energy += out.energy(&input, weights).map_err(xc_err)?;
     // Y summed: per AO column (basis-centre term) and over everything (points).
@@ -264,7 +275,9 @@ fn block_gradient(
                     if let Some(c) = &c {
                         for l in 0..3 {
                             let hkl = values.get(hess_comp(k, l), j, p);
-                            v += 2.0 * c[l][p] * (hkl * ts[(p, j)] + dphi[k][(p, j)] * tl[s][l][(p, j)]);
+                            v += 2.0
+                                * c[l][p]
+                                * (hkl * ts[(p, j)] + dphi[k][(p, j)] * tl[s][l][(p, j)]);
                         }
                     }
                     y += v;

@@ -214,6 +214,15 @@ impl ShellPairData {
     /// overlap-size contribution is below 1e−17 for every contraction pair
     /// are dropped.
     pub fn from_groups(a: &RawGroup, b: &RawGroup) -> ShellPairData {
+        let list = significant_primitive_pairs(a, b);
+        let mut pd = ShellPairData::unsorted(a, b, &list);
+        pd.sort_primitives();
+        pd
+    }
+
+    /// The pair data for the given primitive pairs (index into the exponents
+    /// of a and b), in that order, with `qprim` unset (∞).
+    fn unsorted(a: &RawGroup, b: &RawGroup, list: &[(usize, usize)]) -> ShellPairData {
         let ca = components_table(a.l);
         let cb = components_table(b.l);
         let nab = ca.len() * cb.len();
@@ -221,51 +230,41 @@ impl ShellPairData {
         let herm = hermite_table(lab);
         let nherm = herm.len();
         let (ga, gb) = (a.coefs.len(), b.coefs.len());
-        let ab = [
-            a.center[0] - b.center[0],
-            a.center[1] - b.center[1],
-            a.center[2] - b.center[2],
-        ];
-        let r2 = ab[0] * ab[0] + ab[1] * ab[1] + ab[2] * ab[2];
-        let mut prims = Vec::new();
+        let r2 = distance2(a.center, b.center);
+        let mut prims = Vec::with_capacity(list.len());
         let mut e = Vec::new();
         let mut kv = Vec::new();
         let (mut ex, mut ey, mut ez) = (E1d::new(), E1d::new(), E1d::new());
-        for (pa, &ea) in a.exps.iter().enumerate() {
-            for (pb, &eb) in b.exps.iter().enumerate() {
-                let p = ea + eb;
-                let g = (-ea * eb / p * r2).exp();
-                let ks: Vec<f64> = (0..ga)
+        for &(pa, pb) in list {
+            let (ea, eb) = (a.exps[pa], b.exps[pb]);
+            let p = ea + eb;
+            let g = (-ea * eb / p * r2).exp();
+            kv.extend(
+                (0..ga)
                     .flat_map(|x| (0..gb).map(move |y| (x, y)))
-                    .map(|(x, y)| a.coefs[x][pa] * b.coefs[y][pb] * g)
-                    .collect();
-                let kmax = ks.iter().fold(0.0f64, |m, v| m.max(v.abs()));
-                if kmax * (PI / p).powf(1.5) < 1e-17 {
-                    continue;
-                }
-                let pc = [
-                    (ea * a.center[0] + eb * b.center[0]) / p,
-                    (ea * a.center[1] + eb * b.center[1]) / p,
-                    (ea * a.center[2] + eb * b.center[2]) / p,
-                ];
-                let o2p = 0.5 / p;
-                ex.fill(a.l, b.l, o2p, pc[0] - a.center[0], pc[0] - b.center[0]);
-                ey.fill(a.l, b.l, o2p, pc[1] - a.center[1], pc[1] - b.center[1]);
-                ez.fill(a.l, b.l, o2p, pc[2] - a.center[2], pc[2] - b.center[2]);
-                let start = e.len();
-                e.resize(start + nherm * nab, 0.0);
-                for (h, tuv) in herm.iter().enumerate() {
-                    for (ia, xa) in ca.iter().enumerate() {
-                        for (ib, xb) in cb.iter().enumerate() {
-                            e[start + h * nab + ia * cb.len() + ib] = ex.get(xa[0], xb[0], tuv[0])
-                                * ey.get(xa[1], xb[1], tuv[1])
-                                * ez.get(xa[2], xb[2], tuv[2]);
-                        }
+                    .map(|(x, y)| a.coefs[x][pa] * b.coefs[y][pb] * g),
+            );
+            let pc = [
+                (ea * a.center[0] + eb * b.center[0]) / p,
+                (ea * a.center[1] + eb * b.center[1]) / p,
+                (ea * a.center[2] + eb * b.center[2]) / p,
+            ];
+            let o2p = 0.5 / p;
+            ex.fill(a.l, b.l, o2p, pc[0] - a.center[0], pc[0] - b.center[0]);
+            ey.fill(a.l, b.l, o2p, pc[1] - a.center[1], pc[1] - b.center[1]);
+            ez.fill(a.l, b.l, o2p, pc[2] - a.center[2], pc[2] - b.center[2]);
+            let start = e.len();
+            e.resize(start + nherm * nab, 0.0);
+            for (h, tuv) in herm.iter().enumerate() {
+                for (ia, xa) in ca.iter().enumerate() {
+                    for (ib, xb) in cb.iter().enumerate() {
+                        e[start + h * nab + ia * cb.len() + ib] = ex.get(xa[0], xb[0], tuv[0])
+                            * ey.get(xa[1], xb[1], tuv[1])
+                            * ez.get(xa[2], xb[2], tuv[2]);
                     }
                 }
-                kv.extend(ks);
-                prims.push(PrimPair { p, center: pc });
             }
+            prims.push(PrimPair { p, center: pc });
         }
         let pat = e_pattern(a.l, b.l);
         let nnz = pat.herm.len();
@@ -278,7 +277,7 @@ impl ShellPairData {
                 }
             }
         }
-        let mut pd = ShellPairData {
+        ShellPairData {
             la: a.l,
             lb: b.l,
             nctr: (ga, gb),
@@ -289,14 +288,19 @@ impl ShellPairData {
             e,
             k: kv,
             es,
-        };
-        pd.sort_primitives();
-        pd
+        }
     }
 
     /// Fill `qprim` (√max|(ab|ab)| of each primitive pair with its largest
     /// coefficient product) and sort the primitive pairs by it, largest first.
     fn sort_primitives(&mut self) {
+        let q = self.primitive_bounds();
+        self.reorder(&q);
+    }
+
+    /// √max|(ab|ab)| of each primitive pair with its largest coefficient
+    /// product, in the stored order.
+    fn primitive_bounds(&self) -> Vec<f64> {
         thread_local! {
             static WORK: std::cell::RefCell<EriWork> = std::cell::RefCell::new(EriWork::new());
         }
@@ -304,7 +308,7 @@ impl ShellPairData {
         let (nh, nab) = (self.nherm, self.nab);
         let ng = self.nctr.0 * self.nctr.1;
         let nnz = e_pattern(self.la, self.lb).herm.len();
-        let q: Vec<f64> = WORK.with(|w| {
+        WORK.with(|w| {
             let mut w = w.borrow_mut();
             (0..np)
                 .map(|ip| {
@@ -331,7 +335,16 @@ impl ShellPairData {
                     m.sqrt()
                 })
                 .collect()
-        });
+        })
+    }
+
+    /// Sort the primitive pairs by the bounds `q` (largest first, ties in
+    /// the stored order) and store the bounds as `qprim`.
+    fn reorder(&mut self, q: &[f64]) {
+        let np = self.prims.len();
+        let (nh, nab) = (self.nherm, self.nab);
+        let ng = self.nctr.0 * self.nctr.1;
+        let nnz = e_pattern(self.la, self.lb).herm.len();
         let mut order: Vec<usize> = (0..np).collect();
         order.sort_by(|&x, &y| q[y].total_cmp(&q[x]).then(x.cmp(&y)));
         let perm = |v: &[f64], blk: usize| -> Vec<f64> {
@@ -351,6 +364,33 @@ impl ShellPairData {
     pub fn nrows(&self) -> usize {
         self.nctr.0 * self.nctr.1 * self.nab
     }
+}
+
+fn distance2(a: [f64; 3], b: [f64; 3]) -> f64 {
+    (a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2) + (a[2] - b[2]).powi(2)
+}
+
+/// Primitive pairs of (a b) whose overlap-size contribution reaches 1e−17
+/// for some contraction pair, in exponent order.
+fn significant_primitive_pairs(a: &RawGroup, b: &RawGroup) -> Vec<(usize, usize)> {
+    let r2 = distance2(a.center, b.center);
+    let mut list = Vec::new();
+    for (pa, &ea) in a.exps.iter().enumerate() {
+        for (pb, &eb) in b.exps.iter().enumerate() {
+            let p = ea + eb;
+            let g = (-ea * eb / p * r2).exp();
+            let mut kmax = 0.0f64;
+            for ca in &a.coefs {
+                for cb in &b.coefs {
+                    kmax = kmax.max((ca[pa] * cb[pb] * g).abs());
+                }
+            }
+            if kmax * (PI / p).powf(1.5) >= 1e-17 {
+                list.push((pa, pb));
+            }
+        }
+    }
+    list
 }
 
 /// Caller-owned workspace of the ERI kernel.
@@ -405,11 +445,32 @@ impl Default for EriWork {
 /// [`PRIM_THRESHOLD`] are skipped; both primitive lists are sorted by their
 /// bound, so the loops stop at the first one that falls below it.
 pub fn raw_quartet(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
+    let mut raw = std::mem::take(&mut w.raw);
+    raw_quartet_into(&[bra], ket, w, std::slice::from_mut(&mut raw));
+    w.raw = raw;
+}
+
+/// [`raw_quartet`] for several bras that share their primitive pairs (same
+/// exponents, centres, order and `qprim`; [`DerivPairSet`]) against one ket:
+/// the ket contraction `W[tuv][cd]` is built once per bra primitive, for the
+/// Hermite range of `bras[0]` (the largest la + lb; the Hermite tables of
+/// smaller ranges are its prefixes), and applied to every bra. `outs[m]`
+/// receives the raw block of `bras[m]`.
+fn raw_quartet_into(
+    bras: &[&ShellPairData],
+    ket: &ShellPairData,
+    w: &mut EriWork,
+    outs: &mut [Vec<f64>],
+) {
+    debug_assert_eq!(bras.len(), outs.len());
+    let bra = bras[0];
+    debug_assert!(bras
+        .iter()
+        .all(|m| m.la + m.lb <= bra.la + bra.lb && m.prims.len() == bra.prims.len()));
     let lt = bra.la + bra.lb + ket.la + ket.lb;
     let d = lt + 1;
     let hab = hermite_table(bra.la + bra.lb);
     let hcd = hermite_table(ket.la + ket.lb);
-    let pat_b = e_pattern(bra.la, bra.lb);
     let pat_k = e_pattern(ket.la, ket.lb);
     w.offs_ab.clear();
     w.offs_ab
@@ -427,28 +488,24 @@ pub fn raw_quartet(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
         let t = hcd[h];
         (t[0] * d + t[1]) * d + t[2]
     }));
-    let (nca, ncb) = (
-        components_table(bra.la).len(),
-        components_table(bra.lb).len(),
-    );
     let (ncc, ncd) = (
         components_table(ket.la).len(),
         components_table(ket.lb).len(),
     );
-    let (ga, gb) = bra.nctr;
     let (gc, gd) = ket.nctr;
     let ncdc = ket.nab;
-    let nrow_b = gb * ncb; // extent of index B
     let ncol = gc * ncc * gd * ncd; // extent of the combined ket index
     let nhab = bra.nherm;
-    let (nnz_b, nnz_k) = (pat_b.herm.len(), pat_k.herm.len());
+    let nnz_k = pat_k.herm.len();
     let gcd = gc * gd;
     let ket_single = gcd == 1;
     // Internal layout while accumulating: W[tuv][g][cd] and raw[row][g][cd]
     // with g = (c1, d1) the ket contraction pair; permuted to
     // [row][c1 cc][d1 dd] at the end.
-    w.raw.clear();
-    w.raw.resize(ga * nca * nrow_b * ncol, 0.0);
+    for (m, out) in bras.iter().zip(outs.iter_mut()) {
+        out.clear();
+        out.resize(m.nrows() * ncol, 0.0);
+    }
     w.w.resize(nhab * ncol, 0.0);
     let two_pi_52 = 2.0 * PI.powf(2.5);
     let qk_max = ket.qprim.first().copied().unwrap_or(0.0);
@@ -536,25 +593,32 @@ pub fn raw_quartet(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
                 }
             }
         }
-        let esb = &bra.es[ip * nnz_b..(ip + 1) * nnz_b];
-        let kp = &bra.k[ip * ga * gb..(ip + 1) * ga * gb];
-        for a1 in 0..ga {
-            for b1 in 0..gb {
-                let k = kp[a1 * gb + b1];
-                if k == 0.0 {
-                    continue;
-                }
-                for ca in 0..nca {
-                    for cb in 0..ncb {
-                        let ab = ca * ncb + cb;
-                        let row = (a1 * nca + ca) * nrow_b + b1 * ncb + cb;
-                        let orow = &mut w.raw[row * ncol..(row + 1) * ncol];
-                        for kk in pat_b.start[ab]..pat_b.start[ab + 1] {
-                            let h1 = pat_b.herm[kk];
-                            let e = esb[kk] * k * w.sign_ab[h1];
-                            let wrow = &w.w[h1 * ncol..(h1 + 1) * ncol];
-                            for (o, &x) in orow.iter_mut().zip(wrow) {
-                                *o += e * x;
+        for (m, out) in bras.iter().zip(outs.iter_mut()) {
+            let pat_b = e_pattern(m.la, m.lb);
+            let nnz_b = pat_b.herm.len();
+            let (nca, ncb) = (components_table(m.la).len(), components_table(m.lb).len());
+            let (ga, gb) = m.nctr;
+            let nrow_b = gb * ncb; // extent of index B
+            let esb = &m.es[ip * nnz_b..(ip + 1) * nnz_b];
+            let kp = &m.k[ip * ga * gb..(ip + 1) * ga * gb];
+            for a1 in 0..ga {
+                for b1 in 0..gb {
+                    let k = kp[a1 * gb + b1];
+                    if k == 0.0 {
+                        continue;
+                    }
+                    for ca in 0..nca {
+                        for cb in 0..ncb {
+                            let ab = ca * ncb + cb;
+                            let row = (a1 * nca + ca) * nrow_b + b1 * ncb + cb;
+                            let orow = &mut out[row * ncol..(row + 1) * ncol];
+                            for kk in pat_b.start[ab]..pat_b.start[ab + 1] {
+                                let h1 = pat_b.herm[kk];
+                                let e = esb[kk] * k * w.sign_ab[h1];
+                                let wrow = &w.w[h1 * ncol..(h1 + 1) * ncol];
+                                for (o, &x) in orow.iter_mut().zip(wrow) {
+                                    *o += e * x;
+                                }
                             }
                         }
                     }
@@ -564,25 +628,27 @@ pub fn raw_quartet(bra: &ShellPairData, ket: &ShellPairData, w: &mut EriWork) {
     }
     if !ket_single {
         // [row][c1 d1][cc dd] → [row][c1 cc][d1 dd]
-        let nrow = ga * nca * nrow_b;
-        w.t1.clear();
-        w.t1.resize(w.raw.len(), 0.0);
-        for row in 0..nrow {
-            let src = &w.raw[row * ncol..(row + 1) * ncol];
-            let dst = &mut w.t1[row * ncol..(row + 1) * ncol];
-            for c1 in 0..gc {
-                for d1 in 0..gd {
-                    let g = (c1 * gd + d1) * ncdc;
-                    for cc in 0..ncc {
-                        for dd in 0..ncd {
-                            dst[(c1 * ncc + cc) * (gd * ncd) + d1 * ncd + dd] =
-                                src[g + cc * ncd + dd];
+        for out in outs.iter_mut() {
+            let nrow = out.len() / ncol;
+            w.t1.clear();
+            w.t1.resize(out.len(), 0.0);
+            for row in 0..nrow {
+                let src = &out[row * ncol..(row + 1) * ncol];
+                let dst = &mut w.t1[row * ncol..(row + 1) * ncol];
+                for c1 in 0..gc {
+                    for d1 in 0..gd {
+                        let g = (c1 * gd + d1) * ncdc;
+                        for cc in 0..ncc {
+                            for dd in 0..ncd {
+                                dst[(c1 * ncc + cc) * (gd * ncd) + d1 * ncd + dd] =
+                                    src[g + cc * ncd + dd];
+                            }
                         }
                     }
                 }
             }
+            std::mem::swap(out, &mut w.t1);
         }
-        std::mem::swap(&mut w.raw, &mut w.t1);
     }
 }
 
@@ -1586,70 +1652,152 @@ pub fn eri_tensor(basis: &BasisSet) -> Vec<f64> {
     t
 }
 
-/// Derived shell pairs for derivatives: (a↑ b), (a↓ b) for every ordered pair.
-struct DerivPairs {
-    up: Vec<ShellPairData>,
-    down: Vec<Option<ShellPairData>>,
+/// The centre-derivative shell pairs of (a b) with one common primitive
+/// order, for [`raw_quartet_into`]: members `[a↑ b, a b↑, a↓ b, a b↓]`,
+/// the lowered ones only for l > 0. "↑" is the shell l + 1 with coefficients
+/// 2α c and "↓" the shell l − 1 (∂/∂A_x of a Cartesian Gaussian is
+/// 2α x^{l+1} − l_x x^{l−1}). The primitive pairs kept are those significant
+/// for any member; every member carries the largest of the members' bounds
+/// as `qprim`, so the screening in the kernel is safe for all of them.
+struct DerivPairSet {
+    members: Vec<ShellPairData>,
+    lowered_a: Option<usize>,
+    lowered_b: Option<usize>,
 }
 
-fn deriv_pairs(raws: &[RawShell]) -> DerivPairs {
-    let ns = raws.len();
-    let idx: Vec<(usize, usize)> = (0..ns).flat_map(|i| (0..ns).map(move |j| (i, j))).collect();
-    let up = idx
-        .par_iter()
-        .map(|&(i, j)| ShellPairData::new(&raws[i].raised(), &raws[j]))
-        .collect();
-    let down = idx
-        .par_iter()
-        .map(|&(i, j)| raws[i].lowered().map(|s| ShellPairData::new(&s, &raws[j])))
-        .collect();
-    DerivPairs { up, down }
+impl DerivPairSet {
+    fn new(a: &RawShell, b: &RawShell) -> DerivPairSet {
+        let (ga, gb) = (RawGroup::single(a), RawGroup::single(b));
+        let mut groups = vec![
+            (RawGroup::single(&a.raised()), gb.clone()),
+            (ga.clone(), RawGroup::single(&b.raised())),
+        ];
+        let mut lowered_a = None;
+        let mut lowered_b = None;
+        if let Some(s) = a.lowered() {
+            lowered_a = Some(groups.len());
+            groups.push((RawGroup::single(&s), gb.clone()));
+        }
+        if let Some(s) = b.lowered() {
+            lowered_b = Some(groups.len());
+            groups.push((ga.clone(), RawGroup::single(&s)));
+        }
+        let nb = b.exps.len();
+        let mut keep = vec![false; a.exps.len() * nb];
+        for (x, y) in &groups {
+            for (pa, pb) in significant_primitive_pairs(x, y) {
+                keep[pa * nb + pb] = true;
+            }
+        }
+        let list: Vec<(usize, usize)> = (0..keep.len())
+            .filter(|&x| keep[x])
+            .map(|x| (x / nb, x % nb))
+            .collect();
+        let mut members: Vec<ShellPairData> = groups
+            .iter()
+            .map(|(x, y)| ShellPairData::unsorted(x, y, &list))
+            .collect();
+        let mut q = vec![0.0f64; list.len()];
+        for m in &members {
+            for (qi, v) in q.iter_mut().zip(m.primitive_bounds()) {
+                *qi = qi.max(v);
+            }
+        }
+        for m in &mut members {
+            m.reorder(&q);
+        }
+        DerivPairSet {
+            members,
+            lowered_a,
+            lowered_b,
+        }
+    }
 }
 
-/// Raw bra-derivative quartet (∂a/∂A_d b|cd) for d = x,y,z into `out[d]`
-/// (Cartesian, `[a][b][c][d]`) from the raised/lowered bra pairs.
-#[allow(clippy::too_many_arguments)]
-fn raw_bra_derivative_quartet(
+/// Caller-owned buffers of [`raw_pair_derivative_quartet`].
+#[derive(Default)]
+struct DerivWork {
+    parts: Vec<Vec<f64>>,
+    /// (∂a/∂A_d b|cd) in `out[d]`, (a ∂b/∂B_d|cd) in `out[3 + d]`.
+    out: [Vec<f64>; 6],
+}
+
+/// Raw Cartesian (∂a/∂A_d b|cd) and (a ∂b/∂B_d|cd), d = x, y, z, layout
+/// `[a][b][c][d]`, into `dw.out` from one kernel call for all members of the
+/// bra's [`DerivPairSet`].
+fn raw_pair_derivative_quartet(
     la: usize,
     lb: usize,
-    up: &ShellPairData,
-    down: Option<&ShellPairData>,
+    set: &DerivPairSet,
     ket: &ShellPairData,
     w: &mut EriWork,
-    buf_up: &mut Vec<f64>,
-    out: &mut [Vec<f64>; 3],
+    dw: &mut DerivWork,
 ) {
     use super::cart::component_index;
-    raw_quartet_any(up, ket, w);
-    std::mem::swap(buf_up, &mut w.raw);
-    let has_down = down.is_some();
-    if let Some(dn) = down {
-        raw_quartet_any(dn, ket, w);
+    let nm = set.members.len();
+    let mut refs: [&ShellPairData; 4] = [&set.members[0]; 4];
+    for (r, m) in refs.iter_mut().zip(&set.members) {
+        *r = m;
     }
+    dw.parts.resize_with(4, Vec::new);
+    raw_quartet_into(&refs[..nm], ket, w, &mut dw.parts[..nm]);
     let ca = components_table(la);
-    let ncb = components_table(lb).len();
-    let ncd = ket.nab;
-    for (d, o) in out.iter_mut().enumerate() {
+    let cb = components_table(lb);
+    let (nca, ncb) = (ca.len(), cb.len());
+    let ncbu = components_table(lb + 1).len();
+    let ncd = ket.nrows();
+    for o in dw.out.iter_mut() {
         o.clear();
-        o.resize(ca.len() * ncb * ncd, 0.0);
+        o.resize(nca * ncb * ncd, 0.0);
+    }
+    let parts = &dw.parts;
+    let (up_a, up_b) = (&parts[0], &parts[1]);
+    let dn_a = set.lowered_a.map(|m| &parts[m]);
+    let dn_b = set.lowered_b.map(|m| &parts[m]);
+    let ncbd = if lb > 0 {
+        components_table(lb - 1).len()
+    } else {
+        0
+    };
+    for d in 0..3 {
+        let (lo, hi) = dw.out.split_at_mut(3);
+        let (oa, ob) = (&mut lo[d], &mut hi[d]);
         for (ia, xa) in ca.iter().enumerate() {
             let mut xu = *xa;
             xu[d] += 1;
             let iu = component_index(xu);
-            let lower = if xa[d] > 0 && has_down {
-                let mut xd = *xa;
-                xd[d] -= 1;
-                Some((component_index(xd), xa[d] as f64))
-            } else {
-                None
+            let lower_a = match dn_a {
+                Some(dn) if xa[d] > 0 => {
+                    let mut xd = *xa;
+                    xd[d] -= 1;
+                    Some((dn, component_index(xd), xa[d] as f64))
+                }
+                _ => None,
             };
-            for b in 0..ncb {
-                for cd in 0..ncd {
-                    let mut v = buf_up[(iu * ncb + b) * ncd + cd];
-                    if let Some((idn, f)) = lower {
-                        v -= f * w.raw[(idn * ncb + b) * ncd + cd];
+            for (ib, xb) in cb.iter().enumerate() {
+                let dst = (ia * ncb + ib) * ncd;
+                // A: (a+1_d b| − n_d(a) (a−1_d b|
+                let src = (iu * ncb + ib) * ncd;
+                oa[dst..dst + ncd].copy_from_slice(&up_a[src..src + ncd]);
+                if let Some((dn, idn, f)) = lower_a {
+                    let src = (idn * ncb + ib) * ncd;
+                    for (o, v) in oa[dst..dst + ncd].iter_mut().zip(&dn[src..src + ncd]) {
+                        *o -= f * v;
                     }
-                    o[(ia * ncb + b) * ncd + cd] = v;
+                }
+                // B: (a b+1_d| − n_d(b) (a b−1_d|
+                let mut xu = *xb;
+                xu[d] += 1;
+                let src = (ia * ncbu + component_index(xu)) * ncd;
+                ob[dst..dst + ncd].copy_from_slice(&up_b[src..src + ncd]);
+                if let (Some(dn), true) = (dn_b, xb[d] > 0) {
+                    let mut xd = *xb;
+                    xd[d] -= 1;
+                    let src = (ia * ncbd + component_index(xd)) * ncd;
+                    let f = xb[d] as f64;
+                    for (o, v) in ob[dst..dst + ncd].iter_mut().zip(&dn[src..src + ncd]) {
+                        *o -= f * v;
+                    }
                 }
             }
         }
@@ -1663,10 +1811,12 @@ pub fn eri_bra_derivative_tensor(basis: &BasisSet) -> [Vec<f64>; 3] {
     let raws: Vec<RawShell> = basis.shells.iter().map(RawShell::from_shell).collect();
     let ns = raws.len();
     let n = basis.nbf;
-    let dp = deriv_pairs(&raws);
-    let kets: Vec<ShellPairData> = (0..ns)
-        .flat_map(|k| (0..ns).map(move |l| (k, l)))
-        .collect::<Vec<_>>()
+    let ordered: Vec<(usize, usize)> = (0..ns).flat_map(|k| (0..ns).map(move |l| (k, l))).collect();
+    let sets: Vec<DerivPairSet> = ordered
+        .par_iter()
+        .map(|&(i, j)| DerivPairSet::new(&raws[i], &raws[j]))
+        .collect();
+    let kets: Vec<ShellPairData> = ordered
         .par_iter()
         .map(|&(k, l)| ShellPairData::new(&raws[k], &raws[l]))
         .collect();
@@ -1676,22 +1826,18 @@ pub fn eri_bra_derivative_tensor(basis: &BasisSet) -> [Vec<f64>; 3] {
         vec![0.0; n * n * n * n],
     ];
     let mut w = EriWork::new();
-    let mut buf = Vec::new();
-    let mut raw3 = [Vec::new(), Vec::new(), Vec::new()];
+    let mut dw = DerivWork::default();
     for i in 0..ns {
         for j in 0..ns {
             for k in 0..ns {
                 for l in 0..ns {
-                    let ket = &kets[k * ns + l];
-                    raw_bra_derivative_quartet(
+                    raw_pair_derivative_quartet(
                         raws[i].l,
                         raws[j].l,
-                        &dp.up[i * ns + j],
-                        dp.down[i * ns + j].as_ref(),
-                        ket,
+                        &sets[i * ns + j],
+                        &kets[k * ns + l],
                         &mut w,
-                        &mut buf,
-                        &mut raw3,
+                        &mut dw,
                     );
                     let info = [
                         (basis.shells[i].l, basis.shells[i].pure, 1),
@@ -1711,10 +1857,10 @@ pub fn eri_bra_derivative_tensor(basis: &BasisSet) -> [Vec<f64>; 3] {
                         basis.shells[k].nfunc(),
                         basis.shells[l].nfunc(),
                     ];
-                    for d in 0..3 {
-                        std::mem::swap(&mut w.raw, &mut raw3[d]);
+                    for (d, od) in out.iter_mut().enumerate() {
+                        std::mem::swap(&mut w.raw, &mut dw.out[d]);
                         transform_quartet(info, &mut w);
-                        std::mem::swap(&mut w.raw, &mut raw3[d]);
+                        std::mem::swap(&mut w.raw, &mut dw.out[d]);
                         let mut x = 0;
                         for a in 0..nf[0] {
                             for b in 0..nf[1] {
@@ -1722,7 +1868,7 @@ pub fn eri_bra_derivative_tensor(basis: &BasisSet) -> [Vec<f64>; 3] {
                                     for e in 0..nf[3] {
                                         let (ga, gb, gc, ge) =
                                             (offs[0] + a, offs[1] + b, offs[2] + c, offs[3] + e);
-                                        out[d][((ga * n + gb) * n + gc) * n + ge] = w.out[x];
+                                        od[((ga * n + gb) * n + gc) * n + ge] = w.out[x];
                                         x += 1;
                                     }
                                 }
@@ -1740,14 +1886,8 @@ pub fn eri_bra_derivative_tensor(basis: &BasisSet) -> [Vec<f64>; 3] {
 ///   E₂ = ½ Σ_abcd (ab|cd) [c_J D_ab D_cd − c_K Σ_m D^m_ac D^m_bd],  D = Σ_m D^m,
 /// for fixed symmetric AO densities D^m (restricted: one density, c_J = 1,
 /// c_K = ½; unrestricted: D^α and D^β, c_J = 1, c_K = 1; hybrids scale c_K).
-/// Returns dE₂/dR per atom (hartree/bohr).
-///
-/// With Γ symmetrised over the 8 index permutations, every centre derivative
-/// is a first-function derivative of some ordering, so
-///   dE₂/dR_K = 2 Σ_{a on K} Σ_bcd (∂a/∂A b|cd) Γ_abcd,
-/// evaluated from the raised/lowered bra shells (no translational-invariance
-/// shortcut). Parallel over the first shell; the per-atom sums are reduced in
-/// a fixed order.
+/// Returns dE₂/dR per atom (hartree/bohr). One Coulomb pair (½c_J, D, D) and
+/// one exchange pair (−½c_K, D^m, D^m) per density for [`eri_gradient_pairs`].
 pub fn jk_gradient(
     basis: &BasisSet,
     densities: &[DMatrix<f64>],
@@ -1755,105 +1895,19 @@ pub fn jk_gradient(
     c_k: f64,
 ) -> Result<Vec<[f64; 3]>, TwoElectronError> {
     let n = basis.nbf;
-    let dens = check_densities(n, densities)?;
-    let mut dt = vec![0.0; n * n];
-    for d in &dens {
-        for (x, y) in dt.iter_mut().zip(d) {
-            *x += y;
-        }
+    check_densities(n, densities)?;
+    let mut dt = DMatrix::zeros(n, n);
+    for d in densities {
+        dt += d;
     }
-    let raws: Vec<RawShell> = basis.shells.iter().map(RawShell::from_shell).collect();
-    let ns = raws.len();
-    let dp = deriv_pairs(&raws);
-    let (kets, schwarz_kl) = single_shell_pairs(basis, &raws);
-    // bra Schwarz bound from the undifferentiated pair (screening only)
-    let ao: Vec<(usize, usize)> = basis
-        .shells
-        .iter()
-        .zip(&basis.offsets)
-        .map(|(s, &o)| (o, s.nfunc()))
-        .collect();
-    // dE/dA (A = centre of the first function): by the permutational symmetry
-    // every centre's derivative is a first-function derivative of some ordering,
-    // so dE₂/dR_K = 4 · ½ Σ_{a on K} Σ_bcd (∂_A a b|cd) Γ_abcd with Γ symmetric.
-    let atoms: Vec<usize> = basis.shells.iter().map(|s| s.atom).collect();
-    let per_i: Vec<[f64; 3]> = (0..ns)
-        .into_par_iter()
-        .map(|i| {
-            let mut g = [0.0; 3];
-            let mut w = EriWork::new();
-            let mut buf = Vec::new();
-            let mut raw3 = [Vec::new(), Vec::new(), Vec::new()];
-            for j in 0..ns {
-                for k in 0..ns {
-                    for l in 0..=k {
-                        if schwarz_kl[pair_index(k, l)] * schwarz_kl[pair_index(i, j)] < 1e-14 {
-                            continue;
-                        }
-                        let ket = &kets[pair_index(k, l)];
-                        // The stored pair (k,l) has k ≥ l: its data are for (k l).
-                        raw_bra_derivative_quartet(
-                            raws[i].l,
-                            raws[j].l,
-                            &dp.up[i * ns + j],
-                            dp.down[i * ns + j].as_ref(),
-                            ket,
-                            &mut w,
-                            &mut buf,
-                            &mut raw3,
-                        );
-                        let info = [
-                            (basis.shells[i].l, basis.shells[i].pure, 1),
-                            (basis.shells[j].l, basis.shells[j].pure, 1),
-                            (basis.shells[k].l, basis.shells[k].pure, 1),
-                            (basis.shells[l].l, basis.shells[l].pure, 1),
-                        ];
-                        let (oi, ni) = ao[i];
-                        let (oj, nj) = ao[j];
-                        let (ok, nk) = ao[k];
-                        let (ol, nl) = ao[l];
-                        let kl_factor = if k == l { 1.0 } else { 2.0 };
-                        for (d, gd) in g.iter_mut().enumerate() {
-                            std::mem::swap(&mut w.raw, &mut raw3[d]);
-                            transform_quartet(info, &mut w);
-                            std::mem::swap(&mut w.raw, &mut raw3[d]);
-                            let mut x = 0;
-                            let mut s = 0.0;
-                            for a in oi..oi + ni {
-                                for b in oj..oj + nj {
-                                    for c in ok..ok + nk {
-                                        for e in ol..ol + nl {
-                                            let v = w.out[x];
-                                            x += 1;
-                                            let mut gam = c_j * dt[a * n + b] * dt[c * n + e];
-                                            // exchange part symmetrised over c ↔ e (the kl pair is folded)
-                                            let mut kx = 0.0;
-                                            for dm in &dens {
-                                                kx += 0.5
-                                                    * (dm[a * n + c] * dm[b * n + e]
-                                                        + dm[a * n + e] * dm[b * n + c]);
-                                            }
-                                            gam -= c_k * kx;
-                                            s += v * gam;
-                                        }
-                                    }
-                                }
-                            }
-                            *gd += 2.0 * kl_factor * s;
-                        }
-                    }
-                }
-            }
-            g
-        })
-        .collect();
-    let mut grad = vec![[0.0; 3]; basis.natoms()];
-    for (i, g) in per_i.iter().enumerate() {
-        for d in 0..3 {
-            grad[atoms[i]][d] += g[d];
-        }
-    }
-    Ok(grad)
+    let pairs = DensityPairs {
+        coulomb: vec![(0.5 * c_j, dt.clone(), dt)],
+        exchange: densities
+            .iter()
+            .map(|d| (-0.5 * c_k, d.clone(), d.clone()))
+            .collect(),
+    };
+    Ok(eri_gradient_pairs(basis, &[pairs])?.remove(0))
 }
 
 /// Densities of one energy expression for [`eri_gradient_pairs`]:
@@ -1877,8 +1931,15 @@ pub struct DensityPairs {
 /// with P̄ the symmetric part; for an exchange pair the contraction splits
 /// into (P_s, Q_s) and (P_a, Q_a) (symmetric/antisymmetric parts; the mixed
 /// terms cancel under the (ab)↔(cd) exchange), each with
-/// Γ = ¼(P_ac Q_bd + P_bc Q_ad + P_ad Q_bc + P_bd Q_ac). Then, as in
-/// [`jk_gradient`], dE/dR_K = 4 Σ_{a on K} Σ_bcd (∂a/∂A b|cd) Γ_abcd.
+/// Γ = ¼(P_ac Q_bd + P_bc Q_ad + P_ad Q_bc + P_bd Q_ac). Γ is then invariant
+/// under the 8 permutations as well, so E = Σ_abcd (ab|cd) Γ_abcd is a sum
+/// over the unique shell quartets (ij|kl), i ≥ j, k ≥ l, ij ≥ kl, each with
+/// its degeneracy, and dE/dR_K collects from every unique quartet the four
+/// centre derivatives (∂a b|cd), (a ∂b|cd), (ab|∂c d), (ab|c ∂d) of the
+/// functions on K: two [`raw_pair_derivative_quartet`] calls per quartet
+/// (bra pair raised against the ket, ket pair raised against the bra), no
+/// translational-invariance shortcut, Γ built once. Parallel over the first
+/// shell; the per-atom sums are reduced in a fixed order.
 pub fn eri_gradient_pairs(
     basis: &BasisSet,
     groups: &[DensityPairs],
@@ -1894,25 +1955,39 @@ pub fn eri_gradient_pairs(
         let mut exch = Vec::new();
         for (c, p, q) in &g.coulomb {
             let d = check_densities(n, &[p.clone(), q.clone()]).map_err(|e| match e {
-                TwoElectronError::DensityShape { rows, cols, nbf, .. } => {
-                    TwoElectronError::DensityShape { index, rows, cols, nbf }
-                }
+                TwoElectronError::DensityShape {
+                    rows, cols, nbf, ..
+                } => TwoElectronError::DensityShape {
+                    index,
+                    rows,
+                    cols,
+                    nbf,
+                },
             })?;
             index += 1;
             let sym = |m: &Vec<f64>| -> Vec<f64> {
-                (0..n * n).map(|x| 0.5 * (m[x] + m[(x % n) * n + x / n])).collect()
+                (0..n * n)
+                    .map(|x| 0.5 * (m[x] + m[(x % n) * n + x / n]))
+                    .collect()
             };
             coul.push((*c, sym(&d[0]), sym(&d[1])));
         }
         for (c, p, q) in &g.exchange {
             let d = check_densities(n, &[p.clone(), q.clone()]).map_err(|e| match e {
-                TwoElectronError::DensityShape { rows, cols, nbf, .. } => {
-                    TwoElectronError::DensityShape { index, rows, cols, nbf }
-                }
+                TwoElectronError::DensityShape {
+                    rows, cols, nbf, ..
+                } => TwoElectronError::DensityShape {
+                    index,
+                    rows,
+                    cols,
+                    nbf,
+                },
             })?;
             index += 1;
             let part = |m: &Vec<f64>, s: f64| -> Vec<f64> {
-                (0..n * n).map(|x| 0.5 * (m[x] + s * m[(x % n) * n + x / n])).collect()
+                (0..n * n)
+                    .map(|x| 0.5 * (m[x] + s * m[(x % n) * n + x / n]))
+                    .collect()
             };
             let (ps, qs) = (part(&d[0], 1.0), part(&d[1], 1.0));
             exch.push((*c, ps, qs));
@@ -1926,8 +2001,12 @@ pub fn eri_gradient_pairs(
     let ng = groups.len();
     let raws: Vec<RawShell> = basis.shells.iter().map(RawShell::from_shell).collect();
     let ns = raws.len();
-    let dp = deriv_pairs(&raws);
-    let (kets, schwarz_kl) = single_shell_pairs(basis, &raws);
+    let (pairs, schwarz) = single_shell_pairs(basis, &raws);
+    let tri: Vec<(usize, usize)> = (0..ns).flat_map(|i| (0..=i).map(move |j| (i, j))).collect();
+    let sets: Vec<DerivPairSet> = tri
+        .par_iter()
+        .map(|&(i, j)| DerivPairSet::new(&raws[i], &raws[j]))
+        .collect();
     let ao: Vec<(usize, usize)> = basis
         .shells
         .iter()
@@ -1935,81 +2014,111 @@ pub fn eri_gradient_pairs(
         .map(|(s, &o)| (o, s.nfunc()))
         .collect();
     let atoms: Vec<usize> = basis.shells.iter().map(|s| s.atom).collect();
+    let natoms = basis.natoms();
+    let info_of = |s: usize| (basis.shells[s].l, basis.shells[s].pure, 1);
     let per_i: Vec<Vec<[f64; 3]>> = (0..ns)
         .into_par_iter()
         .map(|i| {
-            let mut g = vec![[0.0; 3]; ng];
+            // per group and atom
+            let mut g = vec![[0.0; 3]; ng * natoms];
             let mut w = EriWork::new();
-            let mut buf = Vec::new();
-            let mut raw3 = [Vec::new(), Vec::new(), Vec::new()];
+            let mut dw = DerivWork::default();
             let mut gam = Vec::new();
-            for j in 0..ns {
-                for k in 0..ns {
-                    for l in 0..=k {
-                        if schwarz_kl[pair_index(k, l)] * schwarz_kl[pair_index(i, j)] < 1e-14 {
-                            continue;
-                        }
-                        let ket = &kets[pair_index(k, l)];
-                        raw_bra_derivative_quartet(
-                            raws[i].l,
-                            raws[j].l,
-                            &dp.up[i * ns + j],
-                            dp.down[i * ns + j].as_ref(),
-                            ket,
-                            &mut w,
-                            &mut buf,
-                            &mut raw3,
-                        );
-                        let info = [
-                            (basis.shells[i].l, basis.shells[i].pure, 1),
-                            (basis.shells[j].l, basis.shells[j].pure, 1),
-                            (basis.shells[k].l, basis.shells[k].pure, 1),
-                            (basis.shells[l].l, basis.shells[l].pure, 1),
-                        ];
-                        let (oi, ni) = ao[i];
-                        let (oj, nj) = ao[j];
-                        let (ok, nk) = ao[k];
-                        let (ol, nl) = ao[l];
-                        let kl_factor = if k == l { 1.0 } else { 2.0 };
-                        // Γ of every group for this block, in the order of w.out.
-                        let nblk = ni * nj * nk * nl;
-                        gam.clear();
-                        gam.resize(ng * nblk, 0.0);
-                        for (gi, (coul, exch)) in flat.iter().enumerate() {
-                            let gg = &mut gam[gi * nblk..(gi + 1) * nblk];
-                            let mut x = 0;
-                            for a in oi..oi + ni {
-                                for b in oj..oj + nj {
-                                    for c in ok..ok + nk {
-                                        for e in ol..ol + nl {
-                                            let mut s = 0.0;
-                                            for (cf, p, q) in coul {
-                                                s += cf * 0.5 * (p[a * n + b] * q[c * n + e] + q[a * n + b] * p[c * n + e]);
-                                            }
-                                            for (cf, p, q) in exch {
-                                                s += cf
-                                                    * 0.25
-                                                    * (p[a * n + c] * q[b * n + e]
-                                                        + p[b * n + c] * q[a * n + e]
-                                                        + p[a * n + e] * q[b * n + c]
-                                                        + p[b * n + e] * q[a * n + c]);
-                                            }
-                                            gg[x] = s;
-                                            x += 1;
+            for j in 0..=i {
+                let pij = pair_index(i, j);
+                for pkl in 0..=pij {
+                    if schwarz[pkl] * schwarz[pij] < 1e-14 {
+                        continue;
+                    }
+                    let (k, l) = tri[pkl];
+                    let deg = (if i == j { 1.0 } else { 2.0 })
+                        * (if k == l { 1.0 } else { 2.0 })
+                        * (if pij == pkl { 1.0 } else { 2.0 });
+                    let (oi, ni) = ao[i];
+                    let (oj, nj) = ao[j];
+                    let (ok, nk) = ao[k];
+                    let (ol, nl) = ao[l];
+                    let (nab, ncd) = (ni * nj, nk * nl);
+                    let nblk = nab * ncd;
+                    // Γ of every group for this block, layout [a][b][c][d].
+                    gam.clear();
+                    gam.resize(ng * nblk, 0.0);
+                    for (gi, (coul, exch)) in flat.iter().enumerate() {
+                        let gg = &mut gam[gi * nblk..(gi + 1) * nblk];
+                        let mut x = 0;
+                        for a in oi..oi + ni {
+                            for b in oj..oj + nj {
+                                for c in ok..ok + nk {
+                                    for e in ol..ol + nl {
+                                        let mut s = 0.0;
+                                        for (cf, p, q) in coul {
+                                            s += cf
+                                                * 0.5
+                                                * (p[a * n + b] * q[c * n + e]
+                                                    + q[a * n + b] * p[c * n + e]);
                                         }
+                                        for (cf, p, q) in exch {
+                                            s += cf
+                                                * 0.25
+                                                * (p[a * n + c] * q[b * n + e]
+                                                    + p[b * n + c] * q[a * n + e]
+                                                    + p[a * n + e] * q[b * n + c]
+                                                    + p[b * n + e] * q[a * n + c]);
+                                        }
+                                        gg[x] = deg * s;
+                                        x += 1;
                                     }
                                 }
                             }
                         }
-                        for d in 0..3 {
-                            std::mem::swap(&mut w.raw, &mut raw3[d]);
-                            transform_quartet(info, &mut w);
-                            std::mem::swap(&mut w.raw, &mut raw3[d]);
-                            for (gi, gv) in g.iter_mut().enumerate() {
-                                let gg = &gam[gi * nblk..(gi + 1) * nblk];
-                                let s: f64 = w.out[..nblk].iter().zip(gg).map(|(v, y)| v * y).sum();
-                                gv[d] += 4.0 * kl_factor * s;
+                    }
+                    // Bra centres A (out 0..3) and B (out 3..6): layout [a][b][c][d].
+                    raw_pair_derivative_quartet(
+                        raws[i].l,
+                        raws[j].l,
+                        &sets[pij],
+                        &pairs[pkl],
+                        &mut w,
+                        &mut dw,
+                    );
+                    let info = [info_of(i), info_of(j), info_of(k), info_of(l)];
+                    for part in 0..6 {
+                        std::mem::swap(&mut w.raw, &mut dw.out[part]);
+                        transform_quartet(info, &mut w);
+                        std::mem::swap(&mut w.raw, &mut dw.out[part]);
+                        let atom = if part < 3 { atoms[i] } else { atoms[j] };
+                        for gi in 0..ng {
+                            let gg = &gam[gi * nblk..(gi + 1) * nblk];
+                            let s: f64 = w.out[..nblk].iter().zip(gg).map(|(v, y)| v * y).sum();
+                            g[gi * natoms + atom][part % 3] += s;
+                        }
+                    }
+                    // Ket centres C and D: the ket pair raised against the
+                    // bra, layout [c][d][a][b].
+                    raw_pair_derivative_quartet(
+                        raws[k].l,
+                        raws[l].l,
+                        &sets[pkl],
+                        &pairs[pij],
+                        &mut w,
+                        &mut dw,
+                    );
+                    let info = [info_of(k), info_of(l), info_of(i), info_of(j)];
+                    for part in 0..6 {
+                        std::mem::swap(&mut w.raw, &mut dw.out[part]);
+                        transform_quartet(info, &mut w);
+                        std::mem::swap(&mut w.raw, &mut dw.out[part]);
+                        let atom = if part < 3 { atoms[k] } else { atoms[l] };
+                        for gi in 0..ng {
+                            let gg = &gam[gi * nblk..(gi + 1) * nblk];
+                            let mut s = 0.0;
+                            for cd in 0..ncd {
+                                let row = &w.out[cd * nab..(cd + 1) * nab];
+                                for (ab, v) in row.iter().enumerate() {
+                                    s += v * gg[ab * ncd + cd];
+                                }
                             }
+                            g[gi * natoms + atom][part % 3] += s;
                         }
                     }
                 }
@@ -2017,11 +2126,13 @@ pub fn eri_gradient_pairs(
             g
         })
         .collect();
-    let mut grad = vec![vec![[0.0; 3]; basis.natoms()]; ng];
-    for (i, g) in per_i.iter().enumerate() {
-        for (gi, gv) in g.iter().enumerate() {
-            for d in 0..3 {
-                grad[gi][atoms[i]][d] += gv[d];
+    let mut grad = vec![vec![[0.0; 3]; natoms]; ng];
+    for g in &per_i {
+        for (gi, gv) in grad.iter_mut().enumerate() {
+            for (a, ga) in gv.iter_mut().enumerate() {
+                for d in 0..3 {
+                    ga[d] += g[gi * natoms + a][d];
+                }
             }
         }
     }

@@ -97,12 +97,21 @@ impl fmt::Display for Crossing {
 
 /// Minimise the mean energy of two states subject to their degeneracy.
 /// `pair` evaluates both states at a geometry.
-pub fn minimize_crossing<F, E>(start: &[[f64; 3]], opts: &CrossingOptions, mut pair: F) -> Result<Crossing, OptimizeError>
+pub fn minimize_crossing<F, E>(
+    start: &[[f64; 3]],
+    opts: &CrossingOptions,
+    mut pair: F,
+) -> Result<Crossing, OptimizeError>
 where
     F: FnMut(&[[f64; 3]]) -> Result<StatePair, E>,
     E: fmt::Display,
 {
-    if !(opts.alpha > 0.0 && opts.sigma > 0.0 && opts.growth > 1.0 && opts.gap_tolerance > 0.0 && opts.max_stages > 0) {
+    if !(opts.alpha > 0.0
+        && opts.sigma > 0.0
+        && opts.growth > 1.0
+        && opts.gap_tolerance > 0.0
+        && opts.max_stages > 0)
+    {
         return Err(OptimizeError::Options(format!(
             "crossing search needs α > 0, σ > 0, growth > 1, gap tolerance > 0 and at least one stage, got {opts:?}"
         )));
@@ -115,30 +124,37 @@ where
         let alpha = opts.alpha;
         let s = sigma;
         let mut seen: Option<StatePair> = None;
-        let result = minimize(&x, &opts.stage, |p| -> Result<(f64, Vec<[f64; 3]>), String> {
-            let st = pair(p).map_err(|e| e.to_string())?;
-            let gap = st.upper - st.lower;
-            if gap < -1e-10 {
-                return Err(format!("the upper state lies below the lower one by {:.2e} Eh", -gap));
-            }
-            let gap = gap.max(0.0);
-            let value = 0.5 * (st.lower + st.upper) + s * gap * gap / (gap + alpha);
-            let slope = s * (gap * gap + 2.0 * alpha * gap) / ((gap + alpha) * (gap + alpha));
-            let g = st
-                .lower_gradient
-                .iter()
-                .zip(&st.upper_gradient)
-                .map(|(a, b)| {
-                    let mut out = [0.0; 3];
-                    for k in 0..3 {
-                        out[k] = 0.5 * (a[k] + b[k]) + slope * (b[k] - a[k]);
-                    }
-                    out
-                })
-                .collect();
-            seen = Some(st);
-            Ok((value, g))
-        });
+        let result = minimize(
+            &x,
+            &opts.stage,
+            |p| -> Result<(f64, Vec<[f64; 3]>), String> {
+                let st = pair(p).map_err(|e| e.to_string())?;
+                let gap = st.upper - st.lower;
+                if gap < -1e-10 {
+                    return Err(format!(
+                        "the upper state lies below the lower one by {:.2e} Eh",
+                        -gap
+                    ));
+                }
+                let gap = gap.max(0.0);
+                let value = 0.5 * (st.lower + st.upper) + s * gap * gap / (gap + alpha);
+                let slope = s * (gap * gap + 2.0 * alpha * gap) / ((gap + alpha) * (gap + alpha));
+                let g = st
+                    .lower_gradient
+                    .iter()
+                    .zip(&st.upper_gradient)
+                    .map(|(a, b)| {
+                        let mut out = [0.0; 3];
+                        for k in 0..3 {
+                            out[k] = 0.5 * (a[k] + b[k]) + slope * (b[k] - a[k]);
+                        }
+                        out
+                    })
+                    .collect();
+                seen = Some(st);
+                Ok((value, g))
+            },
+        );
         // A stage ends at a minimum of F, or where the trust radius has
         // collapsed (F resolved to its numerical noise): both are a stage's
         // best point. A step limit is a failure unless the gap is already
@@ -148,7 +164,12 @@ where
                 let accepted = r.history.last().is_some_and(|h| h.accepted);
                 (r.positions, r.history, accepted)
             }
-            Err(OptimizeError::NotConverged { last_positions, history: h, reason, .. }) => {
+            Err(OptimizeError::NotConverged {
+                last_positions,
+                history: h,
+                reason,
+                ..
+            }) => {
                 let st = pair(&last_positions).map_err(|e| OptimizeError::Evaluation {
                     step: history.len() + h.len() + 1,
                     message: e.to_string(),
@@ -159,7 +180,9 @@ where
                     history.extend(h);
                     return Err(OptimizeError::NotConverged {
                         steps: history.len(),
-                        reason: format!("{reason} in penalty stage {stage} (σ = {sigma:.1}, gap {gap:.2e} Eh)"),
+                        reason: format!(
+                            "{reason} in penalty stage {stage} (σ = {sigma:.1}, gap {gap:.2e} Eh)"
+                        ),
                         last_positions,
                         energy: 0.5 * (st.lower + st.upper),
                         max_force: 0.0,
@@ -177,7 +200,11 @@ where
         // step): evaluate there once more only if needed.
         let st = match seen {
             Some(st) if exact => st,
-            _ => pair(&x).map_err(|e| OptimizeError::Evaluation { step: history.len() + 1, message: e.to_string(), last_positions: x.clone() })?,
+            _ => pair(&x).map_err(|e| OptimizeError::Evaluation {
+                step: history.len() + 1,
+                message: e.to_string(),
+                last_positions: x.clone(),
+            })?,
         };
         let gap = st.upper - st.lower;
         tracing::info!("crossing search stage {stage}: σ = {sigma:.1}, gap = {gap:.3e} Eh, mean energy {:.10} Eh", 0.5 * (st.lower + st.upper));
@@ -191,9 +218,26 @@ where
                 .zip(&st.lower_gradient)
                 .map(|(u, l)| [u[0] - l[0], u[1] - l[1], u[2] - l[2]])
                 .collect();
-            let norm = diff.iter().flatten().map(|v| v * v).sum::<f64>().sqrt().max(f64::MIN_POSITIVE);
-            let unit = diff.iter().map(|d| [d[0] / norm, d[1] / norm, d[2] / norm]).collect();
-            return Ok(Crossing { positions: x, gap, states: st, gradient_difference: unit, sigma, stages: stage, history });
+            let norm = diff
+                .iter()
+                .flatten()
+                .map(|v| v * v)
+                .sum::<f64>()
+                .sqrt()
+                .max(f64::MIN_POSITIVE);
+            let unit = diff
+                .iter()
+                .map(|d| [d[0] / norm, d[1] / norm, d[2] / norm])
+                .collect();
+            return Ok(Crossing {
+                positions: x,
+                gap,
+                states: st,
+                gradient_difference: unit,
+                sigma,
+                stages: stage,
+                history,
+            });
         }
         sigma *= opts.growth;
     }

@@ -93,11 +93,15 @@ impl OptimizeOptions {
         ];
         for (name, v) in pos {
             if !(v.is_finite() && v > 0.0) {
-                return Err(OptimizeError::Options(format!("{name} must be positive, got {v}")));
+                return Err(OptimizeError::Options(format!(
+                    "{name} must be positive, got {v}"
+                )));
             }
         }
         if self.max_steps == 0 {
-            return Err(OptimizeError::Options("max_steps must be at least 1".into()));
+            return Err(OptimizeError::Options(
+                "max_steps must be at least 1".into(),
+            ));
         }
         Ok(())
     }
@@ -227,7 +231,11 @@ fn to_positions(x: &[f64]) -> Vec<[f64; 3]> {
 /// Minimise the energy returned with its gradient by `f` (positions in
 /// bohr → (energy in Eh, gradient per atom in Eh/bohr)), from `start`.
 /// `f` may keep state (e.g. the last orbitals as the next guess).
-pub fn minimize<F, E>(start: &[[f64; 3]], opts: &OptimizeOptions, mut f: F) -> Result<Optimized, OptimizeError>
+pub fn minimize<F, E>(
+    start: &[[f64; 3]],
+    opts: &OptimizeOptions,
+    mut f: F,
+) -> Result<Optimized, OptimizeError>
 where
     F: FnMut(&[[f64; 3]]) -> Result<(f64, Vec<[f64; 3]>), E>,
     E: fmt::Display,
@@ -241,22 +249,26 @@ where
     }
     let n = 3 * start.len();
     let mut x: Vec<f64> = start.iter().flatten().copied().collect();
-    let mut eval = |step: usize, x: &[f64], last: &[f64]| -> Result<(f64, Vec<f64>), OptimizeError> {
-        let p = to_positions(x);
-        let (e, g) = f(&p).map_err(|e| OptimizeError::Evaluation {
-            step,
-            message: e.to_string(),
-            last_positions: to_positions(last),
-        })?;
-        if g.len() != p.len() || !e.is_finite() || g.iter().flatten().any(|v| !v.is_finite()) {
-            return Err(OptimizeError::Evaluation {
+    let mut eval =
+        |step: usize, x: &[f64], last: &[f64]| -> Result<(f64, Vec<f64>), OptimizeError> {
+            let p = to_positions(x);
+            let (e, g) = f(&p).map_err(|e| OptimizeError::Evaluation {
                 step,
-                message: format!("non-finite energy or gradient of wrong length ({} atoms)", g.len()),
+                message: e.to_string(),
                 last_positions: to_positions(last),
-            });
-        }
-        Ok((e, g.into_iter().flatten().collect()))
-    };
+            })?;
+            if g.len() != p.len() || !e.is_finite() || g.iter().flatten().any(|v| !v.is_finite()) {
+                return Err(OptimizeError::Evaluation {
+                    step,
+                    message: format!(
+                        "non-finite energy or gradient of wrong length ({} atoms)",
+                        g.len()
+                    ),
+                    last_positions: to_positions(last),
+                });
+            }
+            Ok((e, g.into_iter().flatten().collect()))
+        };
     let (mut e, mut g) = eval(1, &x, &x)?;
     let mut history = vec![StepRecord {
         step: 1,
@@ -273,7 +285,9 @@ where
     let mut h = nalgebra::DMatrix::<f64>::identity(n, n) * opts.initial_hessian;
     let mut trust = opts.trust_radius;
     let mut last_step = (f64::INFINITY, f64::INFINITY);
-    let force_ok = |g: &[f64], factor: f64| max_abs(g) < opts.max_force * factor && rms(g) < opts.rms_force * factor;
+    let force_ok = |g: &[f64], factor: f64| {
+        max_abs(g) < opts.max_force * factor && rms(g) < opts.rms_force * factor
+    };
     for step in 2..=opts.max_steps + 1 {
         let converged = force_ok(&g, 1.0)
             && ((last_step.0 < opts.max_step && last_step.1 < opts.rms_step) || force_ok(&g, 0.01));
@@ -303,11 +317,19 @@ where
         let xn: Vec<f64> = x.iter().zip(p.iter()).map(|(a, b)| a + b).collect();
         let (en, gn) = eval(step, &xn, &x)?;
         let de = en - e;
-        let ratio = if predicted != 0.0 { de / predicted } else { 1.0 };
+        let ratio = if predicted != 0.0 {
+            de / predicted
+        } else {
+            1.0
+        };
         // Uphill steps within SCF noise (1e−8 Eh) are accepted.
         let accepted = de < 1e-8;
         if ratio < 0.25 || !accepted {
-            trust = if accepted { 0.5 * trust } else { 0.25 * p.norm() };
+            trust = if accepted {
+                0.5 * trust
+            } else {
+                0.25 * p.norm()
+            };
         } else if ratio > 0.75 && on_boundary {
             trust = (2.0 * trust).min(opts.max_trust_radius);
         }
@@ -383,23 +405,45 @@ pub fn minimize_energy(
     use crate::electronic::qc::gradient::{scf::scf_gradient, GradientError};
     use crate::electronic::qc::scf::Guess;
     let mut guess = Guess::AtomicSuperposition;
-    minimize(start, opts, |p| -> Result<(f64, Vec<[f64; 3]>), GradientError> {
-        let c = calc.compute(p, &guess, target)?;
-        let g = match (gradient, target) {
-            (GradientKind::Analytic, Target::Ground) => scf_gradient(&c.basis, &c.scf, &calc.potential)?,
-            (GradientKind::Analytic, Target::Mrsf { label, .. }) => {
-                use crate::electronic::qc::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
-                let x = c.excited.as_ref().expect("MRSF target");
-                let e = crate::electronic::qc::gradient::numerical::state_energy(x, label)?;
-                let i = x.states.iter().position(|s| s.energy == e).expect("the state just found");
-                let mut g = mrsf_state_gradients(&c.basis, &c.scf, x, &[i], &calc.potential, &calc.jk, &ZVectorOptions::default())?;
-                g.swap_remove(0)
-            }
-            (GradientKind::Numerical(h), _) => calc.numerical_gradient(p, h, target, Some(&c.scf))?,
-        };
-        guess = orbital_guess(&c.scf);
-        Ok((c.energy, g))
-    })
+    minimize(
+        start,
+        opts,
+        |p| -> Result<(f64, Vec<[f64; 3]>), GradientError> {
+            let c = calc.compute(p, &guess, target)?;
+            let g = match (gradient, target) {
+                (GradientKind::Analytic, Target::Ground) => {
+                    scf_gradient(&c.basis, &c.scf, &calc.potential)?
+                }
+                (GradientKind::Analytic, Target::Mrsf { label, .. }) => {
+                    use crate::electronic::qc::gradient::mrsf::{
+                        mrsf_state_gradients, ZVectorOptions,
+                    };
+                    let x = c.excited.as_ref().expect("MRSF target");
+                    let e = crate::electronic::qc::gradient::numerical::state_energy(x, label)?;
+                    let i = x
+                        .states
+                        .iter()
+                        .position(|s| s.energy == e)
+                        .expect("the state just found");
+                    let mut g = mrsf_state_gradients(
+                        &c.basis,
+                        &c.scf,
+                        x,
+                        &[i],
+                        &calc.potential,
+                        &calc.jk,
+                        &ZVectorOptions::default(),
+                    )?;
+                    g.swap_remove(0)
+                }
+                (GradientKind::Numerical(h), _) => {
+                    calc.numerical_gradient(p, h, target, Some(&c.scf))?
+                }
+            };
+            guess = orbital_guess(&c.scf);
+            Ok((c.energy, g))
+        },
+    )
 }
 
 /// The minimum-energy crossing of two MRSF-TDDFT states of `calc` (labels
@@ -420,39 +464,63 @@ pub fn minimize_mrsf_crossing(
     opts: &intersection::CrossingOptions,
 ) -> Result<intersection::Crossing, OptimizeError> {
     use crate::electronic::qc::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
-    use crate::electronic::qc::gradient::numerical::{central_differences_many, orbital_guess, state_energy, Target};
+    use crate::electronic::qc::gradient::numerical::{
+        central_differences_many, orbital_guess, state_energy, Target,
+    };
     use crate::electronic::qc::gradient::GradientError;
     use crate::electronic::qc::scf::Guess;
-    let target = Target::Mrsf { label: lower.to_string(), singlets, triplets };
-    let mut guess = Guess::AtomicSuperposition;
-    let index = |x: &crate::electronic::qc::response::ExcitedStates, label: &str| -> Result<usize, GradientError> {
-        let e = state_energy(x, label)?;
-        Ok(x.states.iter().position(|s| s.energy == e).expect("the state just found"))
+    let target = Target::Mrsf {
+        label: lower.to_string(),
+        singlets,
+        triplets,
     };
-    intersection::minimize_crossing(start, opts, |p| -> Result<intersection::StatePair, GradientError> {
-        let c = calc.compute(p, &guess, &target)?;
-        let x = c.excited.as_ref().expect("MRSF target");
-        let (el, eu) = (state_energy(x, lower)?, state_energy(x, upper)?);
-        let g = orbital_guess(&c.scf);
-        let grads = match gradient {
-            GradientKind::Analytic => mrsf_state_gradients(
-                &c.basis,
-                &c.scf,
-                x,
-                &[index(x, lower)?, index(x, upper)?],
-                &calc.potential,
-                &calc.jk,
-                &ZVectorOptions::default(),
-            )?,
-            GradientKind::Numerical(step) => central_differences_many(p, step, 2, |q| {
-                let d = calc.compute(q, &g, &target).map_err(|e| e.to_string())?;
-                let x = d.excited.as_ref().ok_or("no excited states")?;
-                Ok(vec![state_energy(x, lower).map_err(|e| e.to_string())?, state_energy(x, upper).map_err(|e| e.to_string())?])
-            })?,
-        };
-        guess = g;
-        let mut it = grads.into_iter();
-        let (lower_gradient, upper_gradient) = (it.next().expect("two"), it.next().expect("two"));
-        Ok(intersection::StatePair { lower: el, upper: eu, lower_gradient, upper_gradient })
-    })
+    let mut guess = Guess::AtomicSuperposition;
+    let index = |x: &crate::electronic::qc::response::ExcitedStates,
+                 label: &str|
+     -> Result<usize, GradientError> {
+        let e = state_energy(x, label)?;
+        Ok(x.states
+            .iter()
+            .position(|s| s.energy == e)
+            .expect("the state just found"))
+    };
+    intersection::minimize_crossing(
+        start,
+        opts,
+        |p| -> Result<intersection::StatePair, GradientError> {
+            let c = calc.compute(p, &guess, &target)?;
+            let x = c.excited.as_ref().expect("MRSF target");
+            let (el, eu) = (state_energy(x, lower)?, state_energy(x, upper)?);
+            let g = orbital_guess(&c.scf);
+            let grads = match gradient {
+                GradientKind::Analytic => mrsf_state_gradients(
+                    &c.basis,
+                    &c.scf,
+                    x,
+                    &[index(x, lower)?, index(x, upper)?],
+                    &calc.potential,
+                    &calc.jk,
+                    &ZVectorOptions::default(),
+                )?,
+                GradientKind::Numerical(step) => central_differences_many(p, step, 2, |q| {
+                    let d = calc.compute(q, &g, &target).map_err(|e| e.to_string())?;
+                    let x = d.excited.as_ref().ok_or("no excited states")?;
+                    Ok(vec![
+                        state_energy(x, lower).map_err(|e| e.to_string())?,
+                        state_energy(x, upper).map_err(|e| e.to_string())?,
+                    ])
+                })?,
+            };
+            guess = g;
+            let mut it = grads.into_iter();
+            let (lower_gradient, upper_gradient) =
+                (it.next().expect("two"), it.next().expect("two"));
+            Ok(intersection::StatePair {
+                lower: el,
+                upper: eu,
+                lower_gradient,
+                upper_gradient,
+            })
+        },
+    )
 }

@@ -180,7 +180,9 @@ impl DavidsonOptions {
             )));
         }
         if self.max_iterations == 0 {
-            return Err(ResponseError::InvalidOption("max_iterations must be at least 1".into()));
+            return Err(ResponseError::InvalidOption(
+                "max_iterations must be at least 1".into(),
+            ));
         }
         Ok(())
     }
@@ -351,9 +353,13 @@ fn davidson(
     }
     .min(n);
     let warm = initial.iter().filter(|g| g.len() == n).count() >= nroots;
-    let nguess = if warm { nroots + 2 } else { (2 * nroots).max(nroots + 4) }
-        .min(n)
-        .min(max_sub);
+    let nguess = if warm {
+        nroots + 2
+    } else {
+        (2 * nroots).max(nroots + 4)
+    }
+    .min(n)
+    .min(max_sub);
     let keep_after_collapse = (nroots + 4).min(max_sub / 2).max(nroots);
     let mut order: Vec<usize> = (0..n).collect();
     order.sort_by(|&a, &b| diag[a].total_cmp(&diag[b]).then(a.cmp(&b)));
@@ -414,7 +420,11 @@ fn davidson(
                 all_converged = false;
                 let t = DVector::from_fn(n, |k, _| {
                     let d = theta[r] - diag[k];
-                    let d = if d.abs() < 1e-4 { 1e-4f64.copysign(d) } else { d };
+                    let d = if d.abs() < 1e-4 {
+                        1e-4f64.copysign(d)
+                    } else {
+                        d
+                    };
                     res[k] / d
                 });
                 corrections.push(t);
@@ -427,10 +437,13 @@ fn davidson(
             );
             return Ok(Eigenpairs {
                 values: theta[..nroots].to_vec(),
-                vectors: xs.into_iter().map(|u| {
-                    let nn = u.norm();
-                    u / nn
-                }).collect(),
+                vectors: xs
+                    .into_iter()
+                    .map(|u| {
+                        let nn = u.norm();
+                        u / nn
+                    })
+                    .collect(),
                 info: SolverInfo {
                     kind: SolverKind::Davidson,
                     dimension: n,

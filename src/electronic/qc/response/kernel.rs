@@ -144,7 +144,10 @@ impl Kernel {
             return Err(ResponseError::OddElectrons { electrons: na + nb });
         }
         if na.abs_diff(nb) != 2 {
-            return Err(ResponseError::NotTriplet { alpha: na, beta: nb });
+            return Err(ResponseError::NotTriplet {
+                alpha: na,
+                beta: nb,
+            });
         }
         if !exact_exchange.is_finite() || !(0.0..=1.0).contains(&exact_exchange) {
             return Err(ResponseError::InvalidOption(format!(
@@ -161,10 +164,7 @@ impl Kernel {
         let c = scf.orbitals_alpha.clone();
         let nbf = basis.nbf;
         let nmo = c.ncols();
-        if c.nrows() != nbf
-            || f_up.shape() != (nbf, nbf)
-            || f_down.shape() != (nbf, nbf)
-        {
+        if c.nrows() != nbf || f_up.shape() != (nbf, nbf) || f_down.shape() != (nbf, nbf) {
             return Err(ResponseError::Inconsistent(format!(
                 "orbitals {:?} and Fock matrices {:?}, {:?} do not fit {nbf} basis functions",
                 c.shape(),
@@ -188,7 +188,9 @@ impl Kernel {
         let c_occ = c.columns(0, nocc).into_owned();
         let c_vir = c.columns(n_core, part.n_vir()).into_owned();
         let fa_oo = fa.view((0, 0), (nocc, nocc)).into_owned();
-        let fb_vv = fb.view((n_core, n_core), (part.n_vir(), part.n_vir())).into_owned();
+        let fb_vv = fb
+            .view((n_core, n_core), (part.n_vir(), part.n_vir()))
+            .into_owned();
         // Open-shell exchange and Coulomb matrices (one build of 4 densities).
         let o = |k: usize| c.column(n_core + k).into_owned();
         let mut dens = Vec::with_capacity(4);
@@ -362,7 +364,8 @@ pub(crate) fn explicit_a(kernel: &Kernel, basis: &BasisSet) -> DMatrix<f64> {
     let mut a = DMatrix::zeros(p.sf_dimension(), p.sf_dimension());
     for i in 0..nocc {
         for j in 0..nocc {
-            let m = DMatrix::from_row_slice(n, n, &t2[(i * nocc + j) * n2..(i * nocc + j + 1) * n2]);
+            let m =
+                DMatrix::from_row_slice(n, n, &t2[(i * nocc + j) * n2..(i * nocc + j + 1) * n2]);
             let ab = cv.transpose() * m * cv;
             for ca in 0..nvir {
                 for cb in 0..nvir {

@@ -199,9 +199,9 @@
 //! ```
 
 pub mod davidson;
-pub mod overlap;
 mod kernel;
 mod mrsf;
+pub mod overlap;
 mod properties;
 mod sf;
 pub mod tracking;
@@ -238,10 +238,18 @@ pub fn excited_states(
     request: StateRequest,
     opts: &davidson::DavidsonOptions,
 ) -> Result<ExcitedStates, ResponseError> {
-    let StateRequest { method, singlets, triplets } = request;
+    let StateRequest {
+        method,
+        singlets,
+        triplets,
+    } = request;
     match method {
-        Method::Mrsf => Mrsf::new(basis, scf, exact_exchange, engine)?.solve(singlets, triplets, opts),
-        Method::SpinFlip => SpinFlip::new(basis, scf, exact_exchange, engine)?.solve(singlets + triplets, opts),
+        Method::Mrsf => {
+            Mrsf::new(basis, scf, exact_exchange, engine)?.solve(singlets, triplets, opts)
+        }
+        Method::SpinFlip => {
+            SpinFlip::new(basis, scf, exact_exchange, engine)?.solve(singlets + triplets, opts)
+        }
     }
 }
 

@@ -3,7 +3,7 @@
 //! [`super`](crate::electronic::qc::response)).
 
 use super::davidson::{self, DavidsonOptions, Operator, SolverInfo};
-use super::kernel::{oo_flat, to_matrix, to_vector, Kind, Kernel, Partition};
+use super::kernel::{oo_flat, to_matrix, to_vector, Kernel, Kind, Partition};
 use super::properties::{dominant, fix_phase, ExcitedState, ExcitedStates, Method, StateSpin};
 use super::ResponseError;
 use crate::electronic::qc::basis::BasisSet;
@@ -114,7 +114,8 @@ impl Cross {
                     let zc = z.view((0, kb), (nc, 1));
                     row += (&self.dvc * zc) * eta(k);
                 }
-                out.view_mut((nc + k, 2), (1, nv)).copy_from(&row.transpose());
+                out.view_mut((nc + k, 2), (1, nv))
+                    .copy_from(&row.transpose());
             }
         }
         out
@@ -167,11 +168,20 @@ impl Block {
             _ => (
                 1.0,
                 // O1² = Φ+(O2→O1), O2² = Φ+(O1→O2), open-shell singlet.
-                DMatrix::from_column_slice(4, 3, &[0.0, 0.0, 1.0, 0.0, 0.0, 1.0, 0.0, 0.0, h, 0.0, 0.0, -h]),
+                DMatrix::from_column_slice(
+                    4,
+                    3,
+                    &[0.0, 0.0, 1.0, 0.0, 0.0, 1.0, 0.0, 0.0, h, 0.0, 0.0, -h],
+                ),
                 vec!["O1²", "O2²", "O1,O2 open-shell"],
             ),
         };
-        Block { sign, non_oo, w, oo_labels }
+        Block {
+            sign,
+            non_oo,
+            w,
+            oo_labels,
+        }
     }
 
     fn dim(&self) -> usize {
@@ -235,7 +245,8 @@ impl Operator for MrsfOperator<'_> {
         let p = self.kernel.part;
         let b = self.block;
         let n = b.non_oo.len();
-        let expanded: Vec<(DMatrix<f64>, DVector<f64>)> = vs.iter().map(|v| b.expand(&p, v)).collect();
+        let expanded: Vec<(DMatrix<f64>, DVector<f64>)> =
+            vs.iter().map(|v| b.expand(&p, v)).collect();
         let zpp: Vec<DMatrix<f64>> = expanded.iter().map(|(z, _)| z.clone()).collect();
         let ys = self.kernel.apply_a(self.engine, &zpp)?;
         let mut out = Vec::with_capacity(vs.len());
@@ -472,7 +483,11 @@ impl<'e> Mrsf<'e> {
             energy: e_ref + omega,
             omega,
             excitation: None,
-            s_squared: if spin == StateSpin::Singlet { 2.0 * cv } else { 2.0 },
+            s_squared: if spin == StateSpin::Singlet {
+                2.0 * cv
+            } else {
+                2.0
+            },
             amplitudes: v.iter().copied().collect(),
             x_plus: to_matrix(&p, &xp),
             x_minus: to_matrix(&p, &xm),

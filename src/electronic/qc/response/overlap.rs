@@ -61,13 +61,23 @@ pub struct StateVectors {
 impl StateVectors {
     /// The states `indices` (into [`ExcitedStates::states`]) of a response
     /// calculation.
-    pub fn from_states(x: &ExcitedStates, indices: &[usize]) -> Result<StateVectors, ResponseError> {
+    pub fn from_states(
+        x: &ExcitedStates,
+        indices: &[usize],
+    ) -> Result<StateVectors, ResponseError> {
         let mut amplitudes = Vec::with_capacity(indices.len());
         for &i in indices {
-            let s = x.states.get(i).ok_or(ResponseError::StateIndex { index: i, count: x.states.len() })?;
+            let s = x.states.get(i).ok_or(ResponseError::StateIndex {
+                index: i,
+                count: x.states.len(),
+            })?;
             amplitudes.push((s.x_plus.clone(), s.x_minus.clone()));
         }
-        Ok(StateVectors { n_core: x.partition.n_core, orbitals: x.orbitals.clone(), amplitudes })
+        Ok(StateVectors {
+            n_core: x.partition.n_core,
+            orbitals: x.orbitals.clone(),
+            amplitudes,
+        })
     }
 
     /// Number of states.
@@ -182,7 +192,12 @@ impl PhaseTable {
         };
         let split = |list: &[usize]| -> (usize, usize) {
             let alpha: Vec<usize> = list.iter().copied().filter(|&k| k < nmo).collect();
-            let beta: Vec<usize> = list.iter().copied().filter(|&k| k >= nmo).map(|k| k - nmo).collect();
+            let beta: Vec<usize> = list
+                .iter()
+                .copied()
+                .filter(|&k| k >= nmo)
+                .map(|k| k - nmo)
+                .collect();
             (string_of(&alpha), string_of(&beta))
         };
         let mut plus = Vec::with_capacity((nc + 2) * nvir);
@@ -262,7 +277,9 @@ pub fn state_overlaps(
         )));
     }
     if previous.orbitals.nrows() != prev_basis.nbf || current.orbitals.nrows() != basis.nbf {
-        return Err(ResponseError::Inconsistent("orbitals do not fit their basis sets".into()));
+        return Err(ResponseError::Inconsistent(
+            "orbitals do not fit their basis sets".into(),
+        ));
     }
     let s_ao = integrals::overlap_between(prev_basis, basis);
     let s_mo = previous.orbitals.transpose() * s_ao * &current.orbitals;

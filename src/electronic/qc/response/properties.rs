@@ -230,7 +230,9 @@ impl ExcitedStates {
                     continue;
                 }
                 // Indices are in range by construction.
-                if let (Ok(mu), Ok(f)) = (self.transition_dipole(i, j), self.oscillator_strength(i, j)) {
+                if let (Ok(mu), Ok(f)) =
+                    (self.transition_dipole(i, j), self.oscillator_strength(i, j))
+                {
                     out.push(Transition {
                         from: i,
                         to: j,
@@ -260,7 +262,9 @@ impl ExcitedStates {
     pub fn oscillator_from_ground(&self, i: usize) -> Result<Option<f64>, ResponseError> {
         let s = self.state(i)?;
         match self.ground {
-            Some(g) if g != i && self.states[g].spin == s.spin => Ok(Some(self.oscillator_strength(g, i)?)),
+            Some(g) if g != i && self.states[g].spin == s.spin => {
+                Ok(Some(self.oscillator_strength(g, i)?))
+            }
             _ => Ok(None),
         }
     }
@@ -269,7 +273,10 @@ impl ExcitedStates {
     pub(crate) fn finish(&mut self) {
         self.states.sort_by(|a, b| a.energy.total_cmp(&b.energy));
         self.ground = match self.method {
-            Method::Mrsf => self.states.iter().position(|s| s.spin == StateSpin::Singlet),
+            Method::Mrsf => self
+                .states
+                .iter()
+                .position(|s| s.spin == StateSpin::Singlet),
             Method::SpinFlip => (!self.states.is_empty()).then_some(0),
         };
         let e0 = self.ground.map(|g| self.states[g].energy);

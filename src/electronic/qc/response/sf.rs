@@ -87,7 +87,10 @@ impl<'e> SpinFlip<'e> {
 
     /// σ = A x for one SF vector (flat, column-major n_occ × n_vir).
     pub fn apply(&mut self, x: &DVector<f64>) -> Result<DVector<f64>, ResponseError> {
-        let mut op = SfOperator { kernel: &mut self.kernel, engine: &mut *self.engine };
+        let mut op = SfOperator {
+            kernel: &mut self.kernel,
+            engine: &mut *self.engine,
+        };
         Ok(op.apply(std::slice::from_ref(x))?.remove(0))
     }
 
@@ -104,12 +107,19 @@ impl<'e> SpinFlip<'e> {
 
     /// A as a dense matrix from operator products on unit vectors.
     pub fn dense_matrix(&mut self) -> Result<DMatrix<f64>, ResponseError> {
-        let mut op = SfOperator { kernel: &mut self.kernel, engine: &mut *self.engine };
+        let mut op = SfOperator {
+            kernel: &mut self.kernel,
+            engine: &mut *self.engine,
+        };
         davidson::dense_matrix(&mut op)
     }
 
     /// The `n_states` lowest SF-TDA states.
-    pub fn solve(&mut self, n_states: usize, opts: &DavidsonOptions) -> Result<ExcitedStates, ResponseError> {
+    pub fn solve(
+        &mut self,
+        n_states: usize,
+        opts: &DavidsonOptions,
+    ) -> Result<ExcitedStates, ResponseError> {
         self.solve_from(n_states, opts, None)
     }
 
@@ -129,10 +139,18 @@ impl<'e> SpinFlip<'e> {
                 kind: "spin-flip",
             });
         }
-        let mut op = SfOperator { kernel: &mut self.kernel, engine: &mut *self.engine };
+        let mut op = SfOperator {
+            kernel: &mut self.kernel,
+            engine: &mut *self.engine,
+        };
         let guesses: Vec<DVector<f64>> = previous
             .filter(|prev| prev.method == Method::SpinFlip)
-            .map(|prev| prev.states.iter().map(|s| DVector::from_column_slice(&s.amplitudes)).collect())
+            .map(|prev| {
+                prev.states
+                    .iter()
+                    .map(|s| DVector::from_column_slice(&s.amplitudes))
+                    .collect()
+            })
             .unwrap_or_default();
         let pairs = davidson::lowest_eigenpairs_from(&mut op, n_states, opts, &guesses)?;
         let labels: Vec<String> = (0..p.sf_dimension())

@@ -44,11 +44,16 @@ impl ReferenceCharacter {
     pub fn from_scf(scf: &ScfResult) -> Result<ReferenceCharacter, ResponseError> {
         let (na, nb) = (scf.electrons.alpha, scf.electrons.beta);
         if na.abs_diff(nb) != 2 {
-            return Err(ResponseError::NotTriplet { alpha: na, beta: nb });
+            return Err(ResponseError::NotTriplet {
+                alpha: na,
+                beta: nb,
+            });
         }
         let nc = na.min(nb);
         if scf.orbitals_alpha.ncols() < nc + 2 {
-            return Err(ResponseError::Inconsistent("fewer orbitals than occupied".into()));
+            return Err(ResponseError::Inconsistent(
+                "fewer orbitals than occupied".into(),
+            ));
         }
         Ok(ReferenceCharacter {
             open_shells: scf.orbitals_alpha.columns(nc, 2).into_owned(),

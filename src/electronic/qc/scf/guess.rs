@@ -50,7 +50,11 @@ fn fractional_occupations(eps: &[f64], n_elec: f64) -> Vec<f64> {
 }
 
 /// Spin-summed density of a neutral atom alone (fractional-occupation RHF).
-fn atomic_density(shells: Vec<crate::electronic::qc::basis::Shell>, z: f64, harmonics: Harmonics) -> DMatrix<f64> {
+fn atomic_density(
+    shells: Vec<crate::electronic::qc::basis::Shell>,
+    z: f64,
+    harmonics: Harmonics,
+) -> DMatrix<f64> {
     let center = shells[0].center;
     let basis = BasisSet::from_shells("atom", shells, harmonics, vec![(z, center)]);
     let s = integrals::overlap(&basis);

@@ -264,7 +264,10 @@ pub enum ScfError {
 }
 
 fn format_history(h: &[IterationRecord]) -> String {
-    h.iter().map(|r| format!("  {r}")).collect::<Vec<_>>().join("\n")
+    h.iter()
+        .map(|r| format!("  {r}"))
+        .collect::<Vec<_>>()
+        .join("\n")
 }
 
 /// A converged SCF.
@@ -495,13 +498,16 @@ pub fn run(
                 )));
             }
             let ca = guess::reorthonormalize(&alpha.columns(0, electrons.alpha).into_owned(), &s)
-                .ok_or_else(|| ScfError::Guess("the α guess orbitals became linearly dependent".into()))?;
+                .ok_or_else(|| {
+                ScfError::Guess("the α guess orbitals became linearly dependent".into())
+            })?;
             let cb = if electrons.beta == 0 {
                 DMatrix::zeros(nbf, 0)
             } else {
-                guess::reorthonormalize(&beta.columns(0, electrons.beta).into_owned(), &s).ok_or_else(
-                    || ScfError::Guess("the β guess orbitals became linearly dependent".into()),
-                )?
+                guess::reorthonormalize(&beta.columns(0, electrons.beta).into_owned(), &s)
+                    .ok_or_else(|| {
+                        ScfError::Guess("the β guess orbitals became linearly dependent".into())
+                    })?
             };
             (&ca * ca.transpose(), &cb * cb.transpose())
         }
@@ -568,13 +574,21 @@ pub fn run(
         let delta = energy - e_prev;
         let st = &STAGES[stage];
         let use_diis = st.diis || gradient < 1e-3;
-        let damping = if use_diis && !st.diis { 0.0 } else { st.damping };
+        let damping = if use_diis && !st.diis {
+            0.0
+        } else {
+            st.damping
+        };
         let record = IterationRecord {
             iteration: it,
             energy,
             delta_energy: if it == 1 { 0.0 } else { delta },
             gradient,
-            diis: if use_diis { (diis.len() + 1).min(opts.diis_size.max(2)) } else { 0 },
+            diis: if use_diis {
+                (diis.len() + 1).min(opts.diis_size.max(2))
+            } else {
+                0
+            },
             level_shift: st.level_shift,
             damping,
         };
@@ -598,7 +612,10 @@ pub fn run(
             stage += 1;
             stage_start = it + 1;
             diis.clear();
-            tracing::debug!("scf: no progress, switching to fallback stage {}", stage + 1);
+            tracing::debug!(
+                "scf: no progress, switching to fallback stage {}",
+                stage + 1
+            );
         }
         let mut new_focks = if use_diis {
             diis.extrapolate(focks, errors)
