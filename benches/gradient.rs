@@ -1,7 +1,9 @@
 //! Cost of analytic MRSF-TDDFT state gradients, printed, never asserted
 //! (`cargo bench --bench gradient`).
 //!
-//! Workload: triplet formaldehyde (generic off-symmetry geometry) in 6-31G*,
+//! Workloads: triplet formaldehyde (4 atoms, generic off-symmetry geometry)
+//! and triplet ethylene twisted by about 70° (6 atoms, the size the goal
+//! "≥ 20× faster than numerical" is stated for) in 6-31G*,
 //! ROHF and ROKS BH&HLYP ("coarse" grid) references, MRSF with 2 singlets
 //! and 1 triplet. Per reference, in the same run: the SCF, the MRSF energy
 //! (response solve), the analytic S1 gradient (Z-vector and derivative
@@ -22,13 +24,30 @@ use flipswarm::electronic::qc::scf::fock::JkEngine;
 use flipswarm::electronic::qc::scf::{Electrons, Guess, Reference, ScfOptions};
 use std::time::Instant;
 
-fn formaldehyde() -> (Molecule, Vec<[f64; 3]>) {
-    let atoms: [(u64, [f64; 3]); 4] = [
+fn formaldehyde() -> Vec<(u64, [f64; 3])> {
+    vec![
         (6, [0.0, 0.0, -1.0]),
         (8, [0.0, 0.02, 1.28]),
         (1, [0.0, 1.77, -2.08]),
         (1, [0.03, -1.76, -2.1]),
-    ];
+    ]
+}
+
+/// Ethylene with the second CH₂ rotated by ≈ 70° about the C–C axis (bohr;
+/// C–C 2.52, C–H 2.05, H–C–C ≈ 121.5°, slightly off-symmetric).
+fn twisted_ethylene() -> Vec<(u64, [f64; 3])> {
+    let (s, c) = (70f64.to_radians().sin(), 70f64.to_radians().cos());
+    vec![
+        (6, [0.0, 0.0, 1.26]),
+        (6, [0.0, 0.01, -1.26]),
+        (1, [0.0, 1.748, 2.331]),
+        (1, [0.02, -1.748, 2.331]),
+        (1, [-1.748 * s, 1.748 * c, -2.331]),
+        (1, [1.748 * s, -1.748 * c, -2.34]),
+    ]
+}
+
+fn molecule(atoms: &[(u64, [f64; 3])]) -> (Molecule, Vec<[f64; 3]>) {
     let els: Vec<Element> = atoms
         .iter()
         .map(|(z, _)| Element::from_atomic_number(*z).unwrap())
@@ -40,13 +59,18 @@ fn formaldehyde() -> (Molecule, Vec<[f64; 3]>) {
     )
 }
 
-fn run(name: &str, potential: Potential) {
-    let (mol, pos) = formaldehyde();
+fn run(name: &str, what: &str, atoms: &[(u64, [f64; 3])], potential: Potential) {
+    let (mol, pos) = molecule(atoms);
     let calc = ScfEnergy {
         molecule: mol,
         basis: BasisSetData::builtin("6-31G*").unwrap(),
         harmonics: None,
-        electrons: Electrons::from_charge_multiplicity(16, 0, 3).unwrap(),
+        electrons: Electrons::from_charge_multiplicity(
+            atoms.iter().map(|(z, _)| *z as usize).sum(),
+            0,
+            3,
+        )
+        .unwrap(),
         reference: Reference::RestrictedOpen,
         potential: potential.clone(),
         scf: ScfOptions {
@@ -91,21 +115,27 @@ fn run(name: &str, potential: Potential) {
     let s1 = (0..x.states.len())
         .find(|&i| x.label(i).unwrap() == "S1")
         .unwrap();
-    let t = Instant::now();
-    let g = mrsf_state_gradients(
-        &ground.basis,
-        &ground.scf,
-        &x,
-        &[s1],
-        &potential,
-        &calc.jk,
-        &ZVectorOptions::default(),
-    )
-    .expect("analytic gradient");
-    let t_an = t.elapsed().as_secs_f64();
+    // best of 3 (the first call also pays for lazily built tables and the
+    // thread pool's warm-up)
+    let mut t_an = f64::INFINITY;
+    let mut g = Vec::new();
+    for _ in 0..3 {
+        let t = Instant::now();
+        g = mrsf_state_gradients(
+            &ground.basis,
+            &ground.scf,
+            &x,
+            &[s1],
+            &potential,
+            &calc.jk,
+            &ZVectorOptions::default(),
+        )
+        .expect("analytic gradient");
+        t_an = t_an.min(t.elapsed().as_secs_f64());
+    }
     if analytic_only() {
         println!(
-            "{name} formaldehyde 6-31G* ({} functions): SCF {t_scf:.3} s | MRSF energy {t_mrsf:.3} s | \
+            "{name} {what} 6-31G* ({} functions): SCF {t_scf:.3} s | MRSF energy {t_mrsf:.3} s | \
              analytic S1 gradient {t_an:.3} s ({:.2} × MRSF energy)",
             ground.basis.nbf,
             t_an / t_mrsf
@@ -129,7 +159,7 @@ fn run(name: &str, potential: Potential) {
         .map(|(a, b)| (a - b).abs())
         .fold(0.0, f64::max);
     println!(
-        "{name} formaldehyde 6-31G* ({} functions): SCF {t_scf:.3} s | MRSF energy {t_mrsf:.3} s | \
+        "{name} {what} 6-31G* ({} functions): SCF {t_scf:.3} s | MRSF energy {t_mrsf:.3} s | \
          analytic S1 gradient {t_an:.3} s ({:.2} × MRSF energy, {:.2} × SCF + MRSF) | \
          numerical S1 gradient {t_num:.3} s ({:.1} × analytic) | max |analytic − numerical| {diff:.1e} Eh/bohr",
         ground.basis.nbf,
@@ -150,12 +180,15 @@ fn main() {
         .with_env_filter(tracing_subscriber::EnvFilter::from_default_env())
         .with_writer(std::io::stderr)
         .init();
-    run("ROHF", Potential::HartreeFock);
-    run(
-        "ROKS BH&HLYP (coarse grid)",
-        Potential::KohnSham {
-            functional: "bhhlyp".into(),
-            grid: GridSpec::level("coarse").unwrap(),
-        },
-    );
+    let roks = || Potential::KohnSham {
+        functional: "bhhlyp".into(),
+        grid: GridSpec::level("coarse").unwrap(),
+    };
+    for (what, atoms) in [
+        ("formaldehyde", formaldehyde()),
+        ("twisted ethylene", twisted_ethylene()),
+    ] {
+        run("ROHF", what, &atoms, Potential::HartreeFock);
+        run("ROKS BH&HLYP (coarse grid)", what, &atoms, roks());
+    }
 }
