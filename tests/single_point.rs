@@ -316,4 +316,40 @@ fn optimize_from_the_command_line() {
     assert!(std::fs::read_to_string(&stuck)
         .unwrap()
         .contains("not converged"));
+    // A crossing search (gradient projection, the default) that runs out
+    // of steps names the gap it reached and keeps its last geometry.
+    let twisted = dir.join("twisted.xyz");
+    std::fs::write(
+        &twisted,
+        "6\ntwisted, folded ethylene\nC 0 0 -0.7\nC 0 0 0.7\nH 0 0.920132 -1.274962\n\
+         H 0 -0.920132 -1.274962\nH 0.920132 0.636396 1.10656\nH -0.920132 0.636396 1.10656\n",
+    )
+    .unwrap();
+    let meci = dir.join("meci.xyz");
+    let (code, _, err) = run(&[
+        "optimize",
+        twisted.to_str().unwrap(),
+        "-o",
+        meci.to_str().unwrap(),
+        "--method",
+        "rohf",
+        "--basis",
+        "sto-3g",
+        "--crossing",
+        "S0,S1",
+        "--singlets",
+        "2",
+        "--triplets",
+        "0",
+        "--max-steps",
+        "2",
+    ]);
+    assert_eq!(code, 4, "{err}");
+    assert!(
+        err.contains("step limit 2 (gap") && err.contains("last accepted geometry"),
+        "{err}"
+    );
+    assert!(std::fs::read_to_string(&meci)
+        .unwrap()
+        .contains("S0/S1 crossing of ROHF: not converged"));
 }

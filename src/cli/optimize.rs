@@ -1,6 +1,9 @@
 //! `flipswarm optimize`: minimise the energy of the SCF ground state (analytic
 //! gradients) or of an MRSF-TDDFT state (analytic MRSF gradients) in Cartesian
-//! coordinates, and write the optimised geometry as XYZ (Å).
+//! coordinates, or find the minimum-energy crossing of two MRSF states
+//! (gradient projection or penalty function, see
+//! [`crate::electronic::qc::optimize::intersection`]), and write the
+//! optimised geometry as XYZ (Å).
 //!
 //! Convergence criteria (common practice, see
 //! [`crate::electronic::qc::optimize`]): max/RMS gradient 4.5e−4/3.0e−4
@@ -22,9 +25,10 @@ use crate::electronic::qc::dft::grid::GridSpec;
 use crate::electronic::qc::gradient::numerical::{ScfEnergy, Target, DEFAULT_STEP};
 use crate::electronic::qc::gradient::scf::Potential;
 use crate::electronic::qc::integrals::JkOptions;
-use crate::electronic::qc::optimize::intersection::CrossingOptions;
+use crate::electronic::qc::optimize::intersection::{CrossingOptions, ProjectionOptions};
 use crate::electronic::qc::optimize::{
-    minimize_energy, minimize_mrsf_crossing, GradientKind, OptimizeError, OptimizeOptions,
+    minimize_energy, minimize_mrsf_crossing, minimize_mrsf_crossing_projected, GradientKind,
+    OptimizeError, OptimizeOptions,
 };
 use crate::electronic::qc::response::davidson::DavidsonOptions;
 use crate::electronic::qc::scf::{Reference, ScfOptions};
@@ -63,10 +67,21 @@ pub struct OptimizeArgs {
     #[arg(long)]
     pub state: Option<String>,
     /// Search the minimum-energy crossing of two MRSF states of the same
-    /// spin instead, e.g. `S0,S1` (penalty-function method, analytic
-    /// gradients unless --numerical); the gap and both energies are reported.
+    /// spin instead, e.g. `S0,S1` (analytic gradients unless --numerical);
+    /// the gap, both energies and the branching-plane vectors are reported.
     #[arg(long, value_name = "LOWER,UPPER", conflicts_with = "state")]
     pub crossing: Option<String>,
+    /// Crossing search method: `projection` (gradient projection, converges
+    /// to the crossing itself) or `penalty` (penalty function, gradients
+    /// only, ends slightly off the seam).
+    #[arg(long, value_enum, default_value = "projection")]
+    pub crossing_method: CrossingMethod,
+    /// Second branching-plane vector of the projection search: `update`
+    /// (estimated from the previous steps, no extra cost) or `coupling`
+    /// (derivative coupling from overlaps at 6N displaced geometries per
+    /// step, with --step).
+    #[arg(long, value_enum, default_value = "update")]
+    pub branching: Branching,
     /// Gap at which a crossing search stops (Eh).
     #[arg(long, default_value_t = 1e-4)]
     pub gap_tolerance: f64,
@@ -91,6 +106,24 @@ pub struct OptimizeArgs {
     /// Worker threads (0 = all cores).
     #[arg(long, default_value_t = 0)]
     pub threads: usize,
+}
+
+/// `--crossing-method`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum CrossingMethod {
+    /// Gradient projection.
+    Projection,
+    /// Penalty function.
+    Penalty,
+}
+
+/// `--branching`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum Branching {
+    /// Branching-plane update.
+    Update,
+    /// Derivative coupling by finite differences of overlaps.
+    Coupling,
 }
 
 fn write_geometry(
@@ -245,26 +278,46 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
             eprintln!("error: --gap-tolerance must be positive");
             return exit::INPUT;
         }
-        let copts = CrossingOptions {
-            stage: opts,
-            gap_tolerance: args.gap_tolerance,
-            ..CrossingOptions::default()
-        };
         let kind = if args.numerical {
             GradientKind::Numerical(args.step)
         } else {
             GradientKind::Analytic
         };
-        return match minimize_mrsf_crossing(
-            &calc,
-            &start,
-            lower,
-            upper,
-            args.singlets,
-            args.triplets,
-            kind,
-            &copts,
-        ) {
+        let found = match args.crossing_method {
+            CrossingMethod::Penalty => minimize_mrsf_crossing(
+                &calc,
+                &start,
+                lower,
+                upper,
+                args.singlets,
+                args.triplets,
+                kind,
+                &CrossingOptions {
+                    stage: opts,
+                    gap_tolerance: args.gap_tolerance,
+                    ..CrossingOptions::default()
+                },
+            ),
+            CrossingMethod::Projection => minimize_mrsf_crossing_projected(
+                &calc,
+                &start,
+                lower,
+                upper,
+                args.singlets,
+                args.triplets,
+                kind,
+                (args.branching == Branching::Coupling).then_some(args.step),
+                &ProjectionOptions {
+                    optimizer: OptimizeOptions {
+                        trust_radius: ProjectionOptions::default().optimizer.trust_radius,
+                        max_trust_radius: ProjectionOptions::default().optimizer.max_trust_radius,
+                        ..opts
+                    },
+                    gap_tolerance: args.gap_tolerance,
+                },
+            ),
+        };
+        return match found {
             Ok(c) => {
                 let comment = format!(
                     "{what}: E({lower}) = {:.10} Eh, E({upper}) = {:.10} Eh, gap {:.2e} Eh",
@@ -279,15 +332,24 @@ pub fn execute(args: &OptimizeArgs) -> i32 {
                     t.elapsed().as_secs_f64(),
                     args.output.display()
                 );
-                println!("branching-plane gradient difference (unit vector, per atom):");
-                for (a, v) in mol.atoms.iter().zip(&c.gradient_difference) {
-                    println!(
-                        "  {:<2} {:>12.6} {:>12.6} {:>12.6}",
-                        a.element.symbol(),
-                        v[0],
-                        v[1],
-                        v[2]
-                    );
+                let mut planes = vec![("gradient difference", &c.gradient_difference)];
+                if let Some(y) = &c.coupling_direction {
+                    planes.push(match args.branching {
+                        Branching::Coupling => ("derivative coupling orthogonalised to it", y),
+                        Branching::Update => ("second vector from the branching-plane update", y),
+                    });
+                }
+                for (name, vectors) in planes {
+                    println!("branching plane, {name} (unit vector, per atom):");
+                    for (a, v) in mol.atoms.iter().zip(vectors) {
+                        println!(
+                            "  {:<2} {:>12.6} {:>12.6} {:>12.6}",
+                            a.element.symbol(),
+                            v[0],
+                            v[1],
+                            v[2]
+                        );
+                    }
                 }
                 exit::OK
             }

@@ -446,6 +446,142 @@ pub fn minimize_energy(
     )
 }
 
+/// Both MRSF states of a crossing search at `p`: energies and gradients
+/// (analytic, or central differences of both states from one set of
+/// displaced calculations), and the calculation itself.
+fn mrsf_state_pair(
+    calc: &crate::electronic::qc::gradient::numerical::ScfEnergy,
+    p: &[[f64; 3]],
+    guess: &crate::electronic::qc::scf::Guess,
+    labels: (&str, &str),
+    roots: (usize, usize),
+    gradient: GradientKind,
+) -> Result<
+    (
+        intersection::StatePair,
+        crate::electronic::qc::gradient::numerical::Computed,
+        [usize; 2],
+    ),
+    crate::electronic::qc::gradient::GradientError,
+> {
+    use crate::electronic::qc::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
+    use crate::electronic::qc::gradient::numerical::{
+        central_differences_many, orbital_guess, state_energy, Target,
+    };
+    let (lower, upper) = labels;
+    let target = Target::Mrsf {
+        label: lower.to_string(),
+        singlets: roots.0,
+        triplets: roots.1,
+    };
+    let c = calc.compute(p, guess, &target)?;
+    let x = c.excited.as_ref().expect("MRSF target");
+    let (el, eu) = (state_energy(x, lower)?, state_energy(x, upper)?);
+    let index = |e: f64| {
+        x.states
+            .iter()
+            .position(|s| s.energy == e)
+            .expect("the state just found")
+    };
+    let indices = [index(el), index(eu)];
+    let grads = match gradient {
+        GradientKind::Analytic => mrsf_state_gradients(
+            &c.basis,
+            &c.scf,
+            x,
+            &indices,
+            &calc.potential,
+            &calc.jk,
+            &ZVectorOptions::default(),
+        )?,
+        GradientKind::Numerical(step) => {
+            let g = orbital_guess(&c.scf);
+            central_differences_many(p, step, 2, |q| {
+                let d = calc.compute(q, &g, &target).map_err(|e| e.to_string())?;
+                let x = d.excited.as_ref().ok_or("no excited states")?;
+                Ok(vec![
+                    state_energy(x, lower).map_err(|e| e.to_string())?,
+                    state_energy(x, upper).map_err(|e| e.to_string())?,
+                ])
+            })?
+        }
+    };
+    let mut it = grads.into_iter();
+    let (lower_gradient, upper_gradient) = (it.next().expect("two"), it.next().expect("two"));
+    Ok((
+        intersection::StatePair {
+            lower: el,
+            upper: eu,
+            lower_gradient,
+            upper_gradient,
+        },
+        c,
+        indices,
+    ))
+}
+
+/// The derivative coupling ⟨ψ_lower|∂ψ_upper/∂q⟩ (1/bohr) of two MRSF states
+/// at `p`, by central differences of the state overlaps with the states at
+/// `p` (6N displaced calculations in parallel, each started from the
+/// orbitals of `p`); antisymmetrised, (d_lu − d_ul)/2, with the phases of
+/// the displaced states aligned to those at `p`.
+pub fn mrsf_derivative_coupling(
+    calc: &crate::electronic::qc::gradient::numerical::ScfEnergy,
+    p: &[[f64; 3]],
+    at: &crate::electronic::qc::gradient::numerical::Computed,
+    labels: (&str, &str),
+    roots: (usize, usize),
+    step: f64,
+) -> Result<Vec<[f64; 3]>, crate::electronic::qc::gradient::GradientError> {
+    use crate::electronic::qc::gradient::numerical::{
+        central_differences_many, orbital_guess, state_energy, Target,
+    };
+    use crate::electronic::qc::response::overlap::{state_overlaps, StateVectors};
+    let vectors = |x: &crate::electronic::qc::response::ExcitedStates| {
+        let mut idx = [0usize; 2];
+        for (k, l) in [labels.0, labels.1].iter().enumerate() {
+            let e = state_energy(x, l).map_err(|e| e.to_string())?;
+            idx[k] = x
+                .states
+                .iter()
+                .position(|s| s.energy == e)
+                .expect("the state just found");
+        }
+        StateVectors::from_states(x, &idx).map_err(|e| e.to_string())
+    };
+    let x0 = at.excited.as_ref().expect("MRSF target");
+    let v0 = vectors(x0).map_err(crate::electronic::qc::gradient::GradientError::Input)?;
+    let guess = orbital_guess(&at.scf);
+    let target = Target::Mrsf {
+        label: labels.0.to_string(),
+        singlets: roots.0,
+        triplets: roots.1,
+    };
+    // The "energies" of the displaced calculations are the overlaps S_lu and
+    // S_ul, phase-aligned; their central difference is the coupling.
+    let d = central_differences_many(p, step, 2, |q| {
+        let c = calc
+            .compute(q, &guess, &target)
+            .map_err(|e| e.to_string())?;
+        let x = c.excited.as_ref().ok_or("no excited states")?;
+        let v = vectors(x)?;
+        let s = state_overlaps(&v0, &at.basis, &v, &c.basis).map_err(|e| e.to_string())?;
+        let (sl, su) = (s[(0, 0)].signum(), s[(1, 1)].signum());
+        Ok(vec![s[(0, 1)] * su, s[(1, 0)] * sl])
+    })?;
+    Ok(d[0]
+        .iter()
+        .zip(&d[1])
+        .map(|(a, b)| {
+            [
+                0.5 * (a[0] - b[0]),
+                0.5 * (a[1] - b[1]),
+                0.5 * (a[2] - b[2]),
+            ]
+        })
+        .collect())
+}
+
 /// The minimum-energy crossing of two MRSF-TDDFT states of `calc` (labels
 /// as [`crate::electronic::qc::response::ExcitedStates::label`], e.g. `S0`
 /// and `S1`), with analytic MRSF gradients ([`GradientKind::Analytic`]) or
@@ -463,64 +599,79 @@ pub fn minimize_mrsf_crossing(
     gradient: GradientKind,
     opts: &intersection::CrossingOptions,
 ) -> Result<intersection::Crossing, OptimizeError> {
-    use crate::electronic::qc::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
-    use crate::electronic::qc::gradient::numerical::{
-        central_differences_many, orbital_guess, state_energy, Target,
-    };
+    use crate::electronic::qc::gradient::numerical::orbital_guess;
     use crate::electronic::qc::gradient::GradientError;
     use crate::electronic::qc::scf::Guess;
-    let target = Target::Mrsf {
-        label: lower.to_string(),
-        singlets,
-        triplets,
-    };
     let mut guess = Guess::AtomicSuperposition;
-    let index = |x: &crate::electronic::qc::response::ExcitedStates,
-                 label: &str|
-     -> Result<usize, GradientError> {
-        let e = state_energy(x, label)?;
-        Ok(x.states
-            .iter()
-            .position(|s| s.energy == e)
-            .expect("the state just found"))
-    };
     intersection::minimize_crossing(
         start,
         opts,
         |p| -> Result<intersection::StatePair, GradientError> {
-            let c = calc.compute(p, &guess, &target)?;
-            let x = c.excited.as_ref().expect("MRSF target");
-            let (el, eu) = (state_energy(x, lower)?, state_energy(x, upper)?);
-            let g = orbital_guess(&c.scf);
-            let grads = match gradient {
-                GradientKind::Analytic => mrsf_state_gradients(
-                    &c.basis,
-                    &c.scf,
-                    x,
-                    &[index(x, lower)?, index(x, upper)?],
-                    &calc.potential,
-                    &calc.jk,
-                    &ZVectorOptions::default(),
-                )?,
-                GradientKind::Numerical(step) => central_differences_many(p, step, 2, |q| {
-                    let d = calc.compute(q, &g, &target).map_err(|e| e.to_string())?;
-                    let x = d.excited.as_ref().ok_or("no excited states")?;
-                    Ok(vec![
-                        state_energy(x, lower).map_err(|e| e.to_string())?,
-                        state_energy(x, upper).map_err(|e| e.to_string())?,
-                    ])
-                })?,
+            let (pair, c, _) = mrsf_state_pair(
+                calc,
+                p,
+                &guess,
+                (lower, upper),
+                (singlets, triplets),
+                gradient,
+            )?;
+            guess = orbital_guess(&c.scf);
+            Ok(pair)
+        },
+    )
+}
+
+/// As [`minimize_mrsf_crossing`], by gradient projection
+/// ([`intersection::minimize_crossing_projected`]): with `coupling_step`
+/// the second branching-plane vector is the derivative coupling
+/// ([`mrsf_derivative_coupling`], central differences with that step, 6N
+/// extra calculations per step) while the gap exceeds 10 steps' worth of
+/// gap change (10 h |∇ΔE|: closer in, the displaced states swap and the
+/// overlaps no longer resolve the coupling), otherwise the branching-plane
+/// update.
+#[allow(clippy::too_many_arguments)]
+pub fn minimize_mrsf_crossing_projected(
+    calc: &crate::electronic::qc::gradient::numerical::ScfEnergy,
+    start: &[[f64; 3]],
+    lower: &str,
+    upper: &str,
+    singlets: usize,
+    triplets: usize,
+    gradient: GradientKind,
+    coupling_step: Option<f64>,
+    opts: &intersection::ProjectionOptions,
+) -> Result<intersection::Crossing, OptimizeError> {
+    use crate::electronic::qc::gradient::numerical::orbital_guess;
+    use crate::electronic::qc::gradient::GradientError;
+    use crate::electronic::qc::scf::Guess;
+    let mut guess = Guess::AtomicSuperposition;
+    intersection::minimize_crossing_projected(
+        start,
+        opts,
+        |p| -> Result<intersection::ProjectedPoint, GradientError> {
+            let labels = (lower, upper);
+            let roots = (singlets, triplets);
+            let (states, c, _) = mrsf_state_pair(calc, p, &guess, labels, roots, gradient)?;
+            // Overlap differences resolve the coupling only while the
+            // states do not swap within a step: beyond 10 steps from the
+            // crossing (gap > 10 h |∇ΔE|); closer in, the branching-plane
+            // update carries the last plane on.
+            let slope = states
+                .upper_gradient
+                .iter()
+                .flatten()
+                .zip(states.lower_gradient.iter().flatten())
+                .map(|(u, l)| (u - l) * (u - l))
+                .sum::<f64>()
+                .sqrt();
+            let coupling = match coupling_step {
+                Some(h) if states.upper - states.lower > 10.0 * h * slope => {
+                    Some(mrsf_derivative_coupling(calc, p, &c, labels, roots, h)?)
+                }
+                _ => None,
             };
-            guess = g;
-            let mut it = grads.into_iter();
-            let (lower_gradient, upper_gradient) =
-                (it.next().expect("two"), it.next().expect("two"));
-            Ok(intersection::StatePair {
-                lower: el,
-                upper: eu,
-                lower_gradient,
-                upper_gradient,
-            })
+            guess = orbital_guess(&c.scf);
+            Ok(intersection::ProjectedPoint { states, coupling })
         },
     )
 }
