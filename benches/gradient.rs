@@ -4,7 +4,8 @@
 //! Workloads: triplet formaldehyde (4 atoms, generic off-symmetry geometry)
 //! and triplet ethylene twisted by about 70° (6 atoms, the size the goal
 //! "≥ 20× faster than numerical" is stated for) in 6-31G*,
-//! ROHF and ROKS BH&HLYP ("coarse" grid) references, MRSF with 2 singlets
+//! ROHF and ROKS BH&HLYP ("coarse" grid; for ethylene also the command
+//! line's default "fine" grid) references, MRSF with 2 singlets
 //! and 1 triplet. Per reference, in the same run: the SCF, the MRSF energy
 //! (response solve), the analytic S1 gradient (Z-vector and derivative
 //! integrals; the SCF and response are not included) and the central-
@@ -191,4 +192,14 @@ fn main() {
         run("ROHF", what, &atoms, Potential::HartreeFock);
         run("ROKS BH&HLYP (coarse grid)", what, &atoms, roks());
     }
+    // The command line's default grid, for the 6-atom case.
+    run(
+        "ROKS BH&HLYP (fine grid)",
+        "twisted ethylene",
+        &twisted_ethylene(),
+        Potential::KohnSham {
+            functional: "bhhlyp".into(),
+            grid: GridSpec::level("fine").unwrap(),
+        },
+    );
 }

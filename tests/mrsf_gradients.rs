@@ -407,8 +407,11 @@ fn roks_bhhlyp_methylene_gradients_match_extrapolated_differences() {
 }
 
 // Source: finite-difference check (common practice) of the analytic XC
-// kernel: the kernel contraction by central differences of V_xc in density
-// space gives the same gradients.
+// terms: the kernel contraction and the explicit XC term by central
+// differences in density space give the same gradients, up to the
+// differences' own O(e²) step error (measured 1.1e-8 Eh/bohr at the
+// default step e = 1e-4; 1.0e-9 at 3e-5 and 1.2e-6 at 1e-3, scaling as e²,
+// so the analytic path is the limit).
 #[test]
 fn analytic_and_difference_xc_kernels_agree() {
     let (calc, pos) = setup("ch2", "6-31G", bhhlyp());
@@ -424,7 +427,7 @@ fn analytic_and_difference_xc_kernels_agree() {
     for (a, f) in analytic.iter().zip(&fd) {
         let d = max_diff(a, f);
         eprintln!("analytic vs difference kernel: {d:.2e}");
-        assert!(d < 1e-8, "{d:e}");
+        assert!(d < 2e-8, "{d:e}");
     }
 }
 

@@ -133,25 +133,24 @@
 //! default) enter as in the HF case. No third derivatives of E_xc appear:
 //! the collinear spin-flip kernel is zero, so ω has no explicit XC term.
 //!
-//! The kernel in (i) is analytic ([`XcKernel::Analytic`], default): the
-//! second derivatives of the functional (libxc order 2) at the reference
-//! density are evaluated once per call on every grid block and contracted
-//! with all trial densities of a Z-vector iteration in one pass;
+//! Both are analytic by default ([`XcKernel::Analytic`]). (i): the second
+//! derivatives of the functional (libxc order 2) at the reference density
+//! are evaluated once per call on every grid block and contracted with all
+//! trial densities of a Z-vector iteration in one pass;
 //! δV^s = ∫ [δv_ρs φφ + δ(2 v_σss ∇ρ_s + v_σαβ ∇ρ_s̄)·∇(φφ)], the
-//! derivative of the potential formula of the XC module docs.
-//! [`XcKernel::Differences`] takes it instead as central differences of
-//! the SCF's own V_xc along the trial density (a cross-check; the tests
-//! find the two within 6e−9 Eh/bohr in the gradient).
-//!
-//! **Departure (semi-numerical explicit XC term).** (ii) is taken as a
-//! central difference in density space, D ± e Γ' with e chosen so that
-//! the largest element of the perturbation is [`XC_STEP`] = 1e−4 (error
-//! O(e²) ≈ 1e−8 relative; round-off ≈ 1e−12), of the XC gradient code of
-//! the SCF gradients on the same grid — not an analytic contraction of the
-//! second functional derivatives with ∂ρ/∂R. Two extra XC-gradient
-//! evaluations per state. The tests (Richardson-extrapolated finite
-//! differences in geometry) bound the whole gradient error at ~1e−8
-//! Eh/bohr.
+//! derivative of the potential formula of the XC module docs. (ii): the
+//! directional derivative of the XC gradient formula along Γ', from the
+//! same second derivatives, computed for all states in the pass that gives
+//! the reference XC gradient ([`super::xc::xc_gradient_and_directional`]:
+//! one evaluation of the AO values, their derivatives and the partition-
+//! weight gradient for the reference and every state).
+//! [`XcKernel::Differences`] takes both instead as central differences in
+//! density space — (i) of the SCF's own V_xc along the trial density, (ii)
+//! of the XC gradient at D ± e Γ' with e chosen so that the largest element
+//! of the perturbation is [`XC_STEP`] = 1e−4 (two extra XC-gradient passes
+//! per state) — a cross-check: the tests find the two paths within the
+//! differences' O(e²) step error (1.1e−8 Eh/bohr at e = 1e−4, 1.0e−9 at
+//! 3e−5).
 //!
 //! Other departures from the published scheme: none intended.
 //!
@@ -166,7 +165,8 @@
 //!   as the response does; the SCF builds only Ms = +1 references, so no
 //!   caller reaches it), [`crate::electronic::qc::response::Mrsf::with_singlet_cv`]`(false)`
 //!   states and κ ≠ c_x (all go through the same code paths).
-//! * Cost: one pass over the bra-derivative ERIs for the reference and all
+//! * Cost: one pass over the unique shell quartets of derivative ERIs
+//!   (both centres of a pair from one kernel call) for the reference and all
 //!   states ([`integrals::eri_gradient_pairs`]); Z-vector iterations cost
 //!   one batched J/K build (and one kernel pass) each.
 
@@ -395,9 +395,47 @@ pub fn mrsf_state_gradients_detailed(
         let dt = &scf.density_alpha + &scf.density_beta;
         let w_ref = energy_weighted_density(scf);
         let mut g = nuclear_repulsion_gradient(basis);
-        let xc_ref = match ctx.xc() {
-            Some(ks) => Some(
-                xc::xc_gradient(
+        for a in 0..natoms {
+            for k in 0..3 {
+                g[a][k] += dt.dot(&dh[3 * a + k]) - w_ref.dot(&ds[3 * a + k]);
+            }
+        }
+        g
+    };
+    // Γ' = Γ + Δ of every state (↑, ↓), for the explicit XC term.
+    let gammas: Vec<(DMatrix<f64>, DMatrix<f64>)> = terms
+        .iter()
+        .zip(&zs)
+        .map(|(t, z)| {
+            let (m_up, m_dn) = setup.m_of(z);
+            (
+                setup.to_ao(&(&t.l_up + &m_up)),
+                setup.to_ao(&(&t.l_dn + &m_dn)),
+            )
+        })
+        .collect();
+    // The reference XC gradient and the explicit XC term of every state:
+    // one analytic pass (default), or the reference pass plus central
+    // differences in density space (XcKernel::Differences, the cross-check).
+    let (xc_ref, xc_states) = match ctx.xc() {
+        None => (None, vec![None; gammas.len()]),
+        Some(ks) => match setup.kernel {
+            XcKernel::Analytic => {
+                let (da, db) = setup.spins(&setup.d_up, &setup.d_dn);
+                let trials: Vec<(&DMatrix<f64>, &DMatrix<f64>)> =
+                    gammas.iter().map(|(u, d)| setup.spins(u, d)).collect();
+                let (r, t) = xc::xc_gradient_and_directional(
+                    basis,
+                    ks.grid(),
+                    ks.functional(),
+                    da,
+                    db,
+                    &trials,
+                )?;
+                (Some(r.total), t.into_iter().map(Some).collect())
+            }
+            XcKernel::Differences => {
+                let r = xc::xc_gradient(
                     basis,
                     ks.grid(),
                     ks.functional(),
@@ -405,15 +443,21 @@ pub fn mrsf_state_gradients_detailed(
                     &scf.density_beta,
                     false,
                 )?
-                .total,
-            ),
-            None => None,
-        };
-        for a in 0..natoms {
-            for k in 0..3 {
-                g[a][k] += dt.dot(&dh[3 * a + k]) - w_ref.dot(&ds[3 * a + k]);
-                if let Some(x) = &xc_ref {
-                    g[a][k] += x[a][k];
+                .total;
+                let mut t = Vec::with_capacity(gammas.len());
+                for (u, d) in &gammas {
+                    t.push(setup.xc_explicit(basis, &ctx, u, d)?);
+                }
+                (Some(r), t)
+            }
+        },
+    };
+    let reference = {
+        let mut g = reference;
+        if let Some(x) = &xc_ref {
+            for (ga, xa) in g.iter_mut().zip(x) {
+                for k in 0..3 {
+                    ga[k] += xa[k];
                 }
             }
         }
@@ -423,7 +467,6 @@ pub fn mrsf_state_gradients_detailed(
     let mut groups = Vec::with_capacity(terms.len());
     let mut out = Vec::with_capacity(terms.len());
     for (s, t) in terms.iter().enumerate() {
-        let (m_up, m_dn) = setup.m_of(&zs[s]);
         let ytot = &yw[s] + &ylam[s];
         let asym = &ytot - ytot.transpose();
         let blocks = [
@@ -448,10 +491,9 @@ pub fn mrsf_state_gradients_detailed(
         let mut w = setup.to_ao(&((&ytot + ytot.transpose()) * 0.5)) * 0.5;
         let wt = w.transpose();
         w = (&w + wt) * 0.5;
-        let gam_up = setup.to_ao(&(&t.l_up + &m_up));
-        let gam_dn = setup.to_ao(&(&t.l_dn + &m_dn));
+        let (gam_up, gam_dn) = gammas[s].clone();
         let p1 = &gam_up + &gam_dn;
-        let xc_part = setup.xc_explicit(basis, &ctx, &gam_up, &gam_dn)?;
+        let xc_part = &xc_states[s];
         let mut g = reference.clone();
         for a in 0..natoms {
             for k in 0..3 {
@@ -497,7 +539,7 @@ pub fn mrsf_state_gradients_detailed(
     let t_eri = t0.elapsed().as_secs_f64();
     tracing::info!(
         "MRSF gradient timings (cumulative, s): set-up {t_setup:.3}, ω and Y {t_omega:.3}, Z-vector {t_z:.3}, \
-         reference gradient {t_ref:.3}, one-electron/XC {t_one:.3}, ERI derivatives {t_eri:.3}"
+         reference and XC gradients {t_ref:.3}, one-electron {t_one:.3}, ERI derivatives {t_eri:.3}"
     );
     for (o, e) in out.iter_mut().zip(&eri) {
         for (a, v) in o.gradient.iter_mut().zip(e) {
