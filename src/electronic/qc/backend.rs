@@ -40,11 +40,13 @@
 //! machine and thread count).
 
 use super::basis::BasisSet;
-use super::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
+use super::gradient::mrsf::{mrsf_state_gradients, mrsf_state_gradients_reusing, ZVectorOptions};
 use super::gradient::numerical::ScfEnergy;
+use super::gradient::GradientError;
 use super::response::overlap::{state_overlaps, StateVectors};
 use super::response::tracking::ReferenceCharacter;
 use super::response::{self, ExcitedStates, Method, StateRequest};
+use super::scf::fock::JkEngine;
 use super::scf::{Guess, ScfResult};
 use crate::electronic::{
     check_geometry, Backend, BackendError, BackendInfo, Couplings, Diagnostics, Request, Results,
@@ -129,6 +131,9 @@ struct Point {
     gradients: Vec<Option<Vec<f64>>>,
     /// Displaced calculations (coordinate k: 2k = +h, 2k+1 = −h).
     displaced: Option<Vec<(BasisSet, StateVectors)>>,
+    /// The J/K engine of the SCF and response here, for the analytic
+    /// gradients (its integral store is reused).
+    engine: Option<JkEngine>,
 }
 
 /// The record of the last geometry that the next one builds on.
@@ -219,7 +224,7 @@ impl MrsfBackend {
         q: &[f64],
         guess: &Guess,
     ) -> Result<(BasisSet, ScfResult, ExcitedStates), BackendError> {
-        Self::solve_timed(spec, q, guess).map(|(b, s, x, _)| (b, s, x))
+        Self::solve_timed(spec, q, guess).map(|(b, s, x, _, _)| (b, s, x))
     }
 
     /// As [`Self::solve`], with the SCF and response times (s).
@@ -227,7 +232,7 @@ impl MrsfBackend {
         spec: &MolecularSpec,
         q: &[f64],
         guess: &Guess,
-    ) -> Result<(BasisSet, ScfResult, ExcitedStates, [f64; 2]), BackendError> {
+    ) -> Result<(BasisSet, ScfResult, ExcitedStates, JkEngine, [f64; 2]), BackendError> {
         let calc = &spec.calculation;
         let t0 = std::time::Instant::now();
         let basis = calc.basis_at(&positions(q)).map_err(failed)?;
@@ -249,7 +254,7 @@ impl MrsfBackend {
             )));
         }
         let times = [(t1 - t0).as_secs_f64(), t1.elapsed().as_secs_f64()];
-        Ok((basis, scf, excited, times))
+        Ok((basis, scf, excited, engine, times))
     }
 
     fn energies(excited: &ExcitedStates, n: usize) -> Vec<f64> {
@@ -297,7 +302,7 @@ impl MrsfBackend {
             }
             other => other,
         };
-        let (basis, scf, excited, [t_scf, t_response]) = solved?;
+        let (basis, scf, excited, engine, [t_scf, t_response]) = solved?;
         self.timings.scf += t_scf;
         self.timings.response += t_response;
         self.timings.geometries += 1;
@@ -342,6 +347,7 @@ impl MrsfBackend {
             vectors,
             gradients: vec![None; n],
             displaced: None,
+            engine: Some(engine),
         });
         Ok(())
     }
@@ -422,16 +428,35 @@ impl MrsfBackend {
                 let started = std::time::Instant::now();
                 let calc = &self.spec.calculation;
                 let point = self.current.as_mut().expect("a current point");
-                let g = mrsf_state_gradients(
-                    &point.basis,
-                    &point.scf,
-                    &point.excited,
-                    &missing,
-                    &calc.potential,
-                    &calc.jk,
-                    zvector,
-                )
-                .map_err(|e| BackendError::Failed(format!("analytic MRSF gradient: {e}")))?;
+                let failed =
+                    |e: GradientError| BackendError::Failed(format!("analytic MRSF gradient: {e}"));
+                let g = match point.engine.take() {
+                    Some(engine) => {
+                        let (g, engine) = mrsf_state_gradients_reusing(
+                            &point.basis,
+                            &point.scf,
+                            &point.excited,
+                            &missing,
+                            &calc.potential,
+                            &calc.jk,
+                            engine,
+                            zvector,
+                        )
+                        .map_err(failed)?;
+                        point.engine = Some(engine);
+                        g
+                    }
+                    None => mrsf_state_gradients(
+                        &point.basis,
+                        &point.scf,
+                        &point.excited,
+                        &missing,
+                        &calc.potential,
+                        &calc.jk,
+                        zvector,
+                    )
+                    .map_err(failed)?,
+                };
                 for (s, gs) in missing.iter().zip(g) {
                     point.gradients[*s] = Some(gs.into_iter().flatten().collect());
                 }

@@ -95,6 +95,17 @@ impl KohnSham {
         reference: Reference,
         opts: &KsOptions,
     ) -> Result<KohnSham, KsError> {
+        Self::with_engine(basis, reference, opts, None)
+    }
+
+    /// As [`KohnSham::new`] around an existing J/K engine of the same basis
+    /// (its integral store is not rebuilt), or a new one for `None`.
+    pub fn with_engine(
+        basis: &BasisSet,
+        reference: Reference,
+        opts: &KsOptions,
+        engine: Option<JkEngine>,
+    ) -> Result<KohnSham, KsError> {
         let spin = if reference == Reference::Restricted {
             Spin::Unpolarized
         } else {
@@ -121,7 +132,7 @@ impl KohnSham {
                 sigma: Vec::new(),
             }));
         }
-        let engine = JkEngine::new(basis, opts.jk.clone());
+        let engine = engine.unwrap_or_else(|| JkEngine::new(basis, opts.jk.clone()));
         tracing::debug!(
             "Kohn-Sham set-up: integral engine {:.3} s",
             t.elapsed().as_secs_f64()

@@ -198,22 +198,37 @@ enum Ctx {
 }
 
 impl Ctx {
-    fn new(basis: &BasisSet, potential: &Potential, jk: &JkOptions) -> Result<Ctx, GradientError> {
+    fn new(
+        basis: &BasisSet,
+        potential: &Potential,
+        jk: &JkOptions,
+        engine: Option<JkEngine>,
+    ) -> Result<Ctx, GradientError> {
         Ok(match potential {
-            Potential::HartreeFock => Ctx::HartreeFock(Box::new(JkEngine::new(basis, jk.clone()))),
+            Potential::HartreeFock => Ctx::HartreeFock(Box::new(
+                engine.unwrap_or_else(|| JkEngine::new(basis, jk.clone())),
+            )),
             Potential::KohnSham { functional, grid } => {
                 let opts = KsOptions {
                     functional: functional.clone(),
                     grid: grid.clone(),
                     jk: jk.clone(),
                 };
-                Ctx::KohnSham(Box::new(KohnSham::new(
+                Ctx::KohnSham(Box::new(KohnSham::with_engine(
                     basis,
                     Reference::RestrictedOpen,
                     &opts,
+                    engine,
                 )?))
             }
         })
+    }
+
+    fn into_engine(self) -> JkEngine {
+        match self {
+            Ctx::HartreeFock(e) => *e,
+            Ctx::KohnSham(k) => k.into_engine(),
+        }
     }
 
     fn engine(&mut self) -> &mut JkEngine {
@@ -308,6 +323,33 @@ pub fn mrsf_state_gradients(
     )
 }
 
+/// As [`mrsf_state_gradients`], reusing the J/K engine of the SCF and
+/// response at this geometry (same basis and [`JkOptions`]; its in-core
+/// integral store is not rebuilt), which is handed back.
+#[allow(clippy::too_many_arguments)]
+pub fn mrsf_state_gradients_reusing(
+    basis: &BasisSet,
+    scf: &ScfResult,
+    excited: &ExcitedStates,
+    state_indices: &[usize],
+    potential: &Potential,
+    jk: &JkOptions,
+    engine: JkEngine,
+    opts: &ZVectorOptions,
+) -> Result<(Vec<Vec<[f64; 3]>>, JkEngine), GradientError> {
+    let (g, engine) = gradients_with(
+        basis,
+        scf,
+        excited,
+        state_indices,
+        potential,
+        jk,
+        Some(engine),
+        opts,
+    )?;
+    Ok((g.into_iter().map(|s| s.gradient).collect(), engine))
+}
+
 /// [`mrsf_state_gradients`] with per-state diagnostics.
 pub fn mrsf_state_gradients_detailed(
     basis: &BasisSet,
@@ -318,6 +360,30 @@ pub fn mrsf_state_gradients_detailed(
     jk: &JkOptions,
     opts: &ZVectorOptions,
 ) -> Result<Vec<StateGradient>, GradientError> {
+    gradients_with(
+        basis,
+        scf,
+        excited,
+        state_indices,
+        potential,
+        jk,
+        None,
+        opts,
+    )
+    .map(|r| r.0)
+}
+
+#[allow(clippy::too_many_arguments)]
+fn gradients_with(
+    basis: &BasisSet,
+    scf: &ScfResult,
+    excited: &ExcitedStates,
+    state_indices: &[usize],
+    potential: &Potential,
+    jk: &JkOptions,
+    engine: Option<JkEngine>,
+    opts: &ZVectorOptions,
+) -> Result<(Vec<StateGradient>, JkEngine), GradientError> {
     let mut setup = Setup::new(basis, scf, excited, potential)?;
     setup.kernel = opts.xc_kernel;
     for &i in state_indices {
@@ -350,7 +416,7 @@ pub fn mrsf_state_gradients_detailed(
     );
     let _guard = span.enter();
     let t0 = std::time::Instant::now();
-    let mut ctx = Ctx::new(basis, potential, jk)?;
+    let mut ctx = Ctx::new(basis, potential, jk, engine)?;
     let t_setup = t0.elapsed().as_secs_f64();
 
     // ω, its term list and Y^ω for every state.
@@ -548,7 +614,7 @@ pub fn mrsf_state_gradients_detailed(
             }
         }
     }
-    Ok(out)
+    Ok((out, ctx.into_engine()))
 }
 
 /// A pair of AO matrices (↑, ↓).

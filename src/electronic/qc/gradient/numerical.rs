@@ -229,15 +229,30 @@ impl ScfEnergy {
         guess: &Guess,
         target: &Target,
     ) -> Result<Computed, GradientError> {
+        self.compute_with_engine(positions, guess, target)
+            .map(|r| r.0)
+    }
+
+    /// As [`ScfEnergy::compute`], also handing back the J/K engine of the
+    /// SCF and response (for [`super::mrsf::mrsf_state_gradients_reusing`]).
+    pub fn compute_with_engine(
+        &self,
+        positions: &[[f64; 3]],
+        guess: &Guess,
+        target: &Target,
+    ) -> Result<(Computed, JkEngine), GradientError> {
         let basis = self.basis_at(positions)?;
         let (result, mut engine, cx) = self.scf_with_engine(&basis, guess)?;
         match target {
-            Target::Ground => Ok(Computed {
-                energy: result.energy,
-                basis,
-                scf: result,
-                excited: None,
-            }),
+            Target::Ground => Ok((
+                Computed {
+                    energy: result.energy,
+                    basis,
+                    scf: result,
+                    excited: None,
+                },
+                engine,
+            )),
             Target::Mrsf {
                 label,
                 singlets,
@@ -258,12 +273,15 @@ impl ScfEnergy {
                 )
                 .map_err(|e| GradientError::Response(e.to_string()))?;
                 let energy = state_energy(&x, label)?;
-                Ok(Computed {
-                    energy,
-                    basis,
-                    scf: result,
-                    excited: Some(x),
-                })
+                Ok((
+                    Computed {
+                        energy,
+                        basis,
+                        scf: result,
+                        excited: Some(x),
+                    },
+                    engine,
+                ))
             }
         }
     }

@@ -1937,8 +1937,10 @@ pub struct DensityPairs {
 /// its degeneracy, and dE/dR_K collects from every unique quartet the four
 /// centre derivatives (∂a b|cd), (a ∂b|cd), (ab|∂c d), (ab|c ∂d) of the
 /// functions on K: two [`raw_pair_derivative_quartet`] calls per quartet
-/// (bra pair raised against the ket, ket pair raised against the bra), no
-/// translational-invariance shortcut, Γ built once. Parallel over the first
+/// (bra pair raised against the ket, ket pair raised against the bra), Γ
+/// built once; by translational invariance (the four derivatives sum to
+/// zero) one call suffices when either pair sits on one atom, and quartets
+/// on a single atom are skipped. Parallel over the first
 /// shell; the per-atom sums are reduced in a fixed order.
 pub fn eri_gradient_pairs(
     basis: &BasisSet,
@@ -2031,6 +2033,14 @@ pub fn eri_gradient_pairs(
                         continue;
                     }
                     let (k, l) = tri[pkl];
+                    // Translational invariance: the four centre derivatives
+                    // sum to zero, so a quartet on one atom contributes
+                    // nothing, and when one pair sits on a single atom the
+                    // other pair's call gives everything.
+                    let (one_bra, one_ket) = (atoms[i] == atoms[j], atoms[k] == atoms[l]);
+                    if one_bra && one_ket && atoms[i] == atoms[k] {
+                        continue;
+                    }
                     let deg = (if i == j { 1.0 } else { 2.0 })
                         * (if k == l { 1.0 } else { 2.0 })
                         * (if pij == pkl { 1.0 } else { 2.0 });
@@ -2072,25 +2082,40 @@ pub fn eri_gradient_pairs(
                             }
                         }
                     }
-                    // Bra centres A (out 0..3) and B (out 3..6): layout [a][b][c][d].
-                    raw_pair_derivative_quartet(
-                        raws[i].l,
-                        raws[j].l,
-                        &sets[pij],
-                        &pairs[pkl],
-                        &mut w,
-                        &mut dw,
-                    );
                     let info = [info_of(i), info_of(j), info_of(k), info_of(l)];
-                    for part in 0..6 {
-                        std::mem::swap(&mut w.raw, &mut dw.out[part]);
-                        transform_quartet(info, &mut w);
-                        std::mem::swap(&mut w.raw, &mut dw.out[part]);
-                        let atom = if part < 3 { atoms[i] } else { atoms[j] };
-                        for gi in 0..ng {
-                            let gg = &gam[gi * nblk..(gi + 1) * nblk];
-                            let s: f64 = w.out[..nblk].iter().zip(gg).map(|(v, y)| v * y).sum();
-                            g[gi * natoms + atom][part % 3] += s;
+                    // Σ Γ·(derivative block) per group and part (A, B or C, D
+                    // × x, y, z) of one call.
+                    let mut sums = vec![[0.0f64; 6]; ng];
+                    if !one_bra {
+                        // Bra centres A (out 0..3) and B (out 3..6): layout [a][b][c][d].
+                        raw_pair_derivative_quartet(
+                            raws[i].l,
+                            raws[j].l,
+                            &sets[pij],
+                            &pairs[pkl],
+                            &mut w,
+                            &mut dw,
+                        );
+                        for (part, o) in dw.out.iter_mut().enumerate() {
+                            std::mem::swap(&mut w.raw, o);
+                            transform_quartet(info, &mut w);
+                            std::mem::swap(&mut w.raw, o);
+                            for (gi, sg) in sums.iter_mut().enumerate() {
+                                let gg = &gam[gi * nblk..(gi + 1) * nblk];
+                                sg[part] = w.out[..nblk].iter().zip(gg).map(|(v, y)| v * y).sum();
+                            }
+                        }
+                        for (gi, sg) in sums.iter().enumerate() {
+                            for d in 0..3 {
+                                g[gi * natoms + atoms[i]][d] += sg[d];
+                                g[gi * natoms + atoms[j]][d] += sg[3 + d];
+                                if one_ket {
+                                    g[gi * natoms + atoms[k]][d] -= sg[d] + sg[3 + d];
+                                }
+                            }
+                        }
+                        if one_ket {
+                            continue;
                         }
                     }
                     // Ket centres C and D: the ket pair raised against the
@@ -2104,12 +2129,11 @@ pub fn eri_gradient_pairs(
                         &mut dw,
                     );
                     let info = [info_of(k), info_of(l), info_of(i), info_of(j)];
-                    for part in 0..6 {
-                        std::mem::swap(&mut w.raw, &mut dw.out[part]);
+                    for (part, o) in dw.out.iter_mut().enumerate() {
+                        std::mem::swap(&mut w.raw, o);
                         transform_quartet(info, &mut w);
-                        std::mem::swap(&mut w.raw, &mut dw.out[part]);
-                        let atom = if part < 3 { atoms[k] } else { atoms[l] };
-                        for gi in 0..ng {
+                        std::mem::swap(&mut w.raw, o);
+                        for (gi, sg) in sums.iter_mut().enumerate() {
                             let gg = &gam[gi * nblk..(gi + 1) * nblk];
                             let mut s = 0.0;
                             for cd in 0..ncd {
@@ -2118,7 +2142,16 @@ pub fn eri_gradient_pairs(
                                     s += v * gg[ab * ncd + cd];
                                 }
                             }
-                            g[gi * natoms + atom][part % 3] += s;
+                            sg[part] = s;
+                        }
+                    }
+                    for (gi, sg) in sums.iter().enumerate() {
+                        for d in 0..3 {
+                            g[gi * natoms + atoms[k]][d] += sg[d];
+                            g[gi * natoms + atoms[l]][d] += sg[3 + d];
+                            if one_bra {
+                                g[gi * natoms + atoms[i]][d] -= sg[d] + sg[3 + d];
+                            }
                         }
                     }
                 }

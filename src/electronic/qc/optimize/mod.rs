@@ -409,14 +409,14 @@ pub fn minimize_energy(
         start,
         opts,
         |p| -> Result<(f64, Vec<[f64; 3]>), GradientError> {
-            let c = calc.compute(p, &guess, target)?;
+            let (c, engine) = calc.compute_with_engine(p, &guess, target)?;
             let g = match (gradient, target) {
                 (GradientKind::Analytic, Target::Ground) => {
                     scf_gradient(&c.basis, &c.scf, &calc.potential)?
                 }
                 (GradientKind::Analytic, Target::Mrsf { label, .. }) => {
                     use crate::electronic::qc::gradient::mrsf::{
-                        mrsf_state_gradients, ZVectorOptions,
+                        mrsf_state_gradients_reusing, ZVectorOptions,
                     };
                     let x = c.excited.as_ref().expect("MRSF target");
                     let e = crate::electronic::qc::gradient::numerical::state_energy(x, label)?;
@@ -425,13 +425,14 @@ pub fn minimize_energy(
                         .iter()
                         .position(|s| s.energy == e)
                         .expect("the state just found");
-                    let mut g = mrsf_state_gradients(
+                    let (mut g, _) = mrsf_state_gradients_reusing(
                         &c.basis,
                         &c.scf,
                         x,
                         &[i],
                         &calc.potential,
                         &calc.jk,
+                        engine,
                         &ZVectorOptions::default(),
                     )?;
                     g.swap_remove(0)
@@ -464,7 +465,7 @@ fn mrsf_state_pair(
     ),
     crate::electronic::qc::gradient::GradientError,
 > {
-    use crate::electronic::qc::gradient::mrsf::{mrsf_state_gradients, ZVectorOptions};
+    use crate::electronic::qc::gradient::mrsf::{mrsf_state_gradients_reusing, ZVectorOptions};
     use crate::electronic::qc::gradient::numerical::{
         central_differences_many, orbital_guess, state_energy, Target,
     };
@@ -474,7 +475,7 @@ fn mrsf_state_pair(
         singlets: roots.0,
         triplets: roots.1,
     };
-    let c = calc.compute(p, guess, &target)?;
+    let (c, engine) = calc.compute_with_engine(p, guess, &target)?;
     let x = c.excited.as_ref().expect("MRSF target");
     let (el, eu) = (state_energy(x, lower)?, state_energy(x, upper)?);
     let index = |e: f64| {
@@ -485,15 +486,19 @@ fn mrsf_state_pair(
     };
     let indices = [index(el), index(eu)];
     let grads = match gradient {
-        GradientKind::Analytic => mrsf_state_gradients(
-            &c.basis,
-            &c.scf,
-            x,
-            &indices,
-            &calc.potential,
-            &calc.jk,
-            &ZVectorOptions::default(),
-        )?,
+        GradientKind::Analytic => {
+            mrsf_state_gradients_reusing(
+                &c.basis,
+                &c.scf,
+                x,
+                &indices,
+                &calc.potential,
+                &calc.jk,
+                engine,
+                &ZVectorOptions::default(),
+            )?
+            .0
+        }
         GradientKind::Numerical(step) => {
             let g = orbital_guess(&c.scf);
             central_differences_many(p, step, 2, |q| {
