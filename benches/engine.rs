@@ -263,58 +263,116 @@ fn writer_throughput(dir: &Path) {
     let _ = std::fs::remove_file(&path);
 }
 
-/// The same ensemble run in memory (reference) and into a run directory with
-/// every row written and a checkpoint every `checkpoint_every` steps (0:
-/// the default cadence, by wall-clock time). Wall and CPU time of the best
-/// of `repeats` alternating pairs.
-fn output_overhead(name: &str, cfg: &RunConfig, dir: &Path, checkpoint_every: u64, repeats: usize) {
+/// Wall and CPU seconds of one in-memory run (reference) and of one run
+/// into a run directory, and the part file's size.
+fn overhead_pair(cfg: &RunConfig, dir: &Path) -> ([f64; 2], [f64; 2], u64) {
     use flipswarm::ensemble::runner;
     use std::sync::atomic::AtomicBool;
     use std::sync::Arc;
-    let cfg = cfg.clone();
-    assert_eq!(
-        cfg.output.checkpoint_every, checkpoint_every,
-        "cadence in the TOML text"
-    );
     let model = cfg.model.clone();
     let factory = move |_: usize| swarm::make_backend(&model);
-    let (mut plain, mut plain_cpu, mut with, mut with_cpu) =
-        (f64::INFINITY, f64::INFINITY, f64::INFINITY, f64::INFINITY);
-    let mut size = 0u64;
-    for _ in 0..repeats {
-        let (t, c) = (Instant::now(), cpu_seconds());
-        swarm::run(&cfg, 1).expect("thread pool");
-        plain = plain.min(t.elapsed().as_secs_f64());
-        plain_cpu = plain_cpu.min(cpu_seconds() - c);
-        let opts = runner::Options {
-            threads: 1,
-            stop: Arc::new(AtomicBool::new(false)),
-            factory: &factory,
-            progress_bar: false,
-        };
-        let run_dir = dir.join("overhead-run");
-        let _ = std::fs::remove_dir_all(&run_dir);
-        let (t, c) = (Instant::now(), cpu_seconds());
-        runner::start(&cfg, &run_dir, (0, 1), &opts).expect("run into directory");
-        with = with.min(t.elapsed().as_secs_f64());
-        with_cpu = with_cpu.min(cpu_seconds() - c);
-        size = std::fs::metadata(run_dir.join(runner::part_name(0, 1)))
-            .map(|m| m.len())
-            .unwrap_or(0);
-        let _ = std::fs::remove_dir_all(&run_dir);
+    let (t, c) = (Instant::now(), cpu_seconds());
+    swarm::run(cfg, 1).expect("thread pool");
+    let plain = [t.elapsed().as_secs_f64(), cpu_seconds() - c];
+    let opts = runner::Options {
+        threads: 1,
+        stop: Arc::new(AtomicBool::new(false)),
+        factory: &factory,
+        progress_bar: false,
+    };
+    let run_dir = dir.join("overhead-run");
+    let _ = std::fs::remove_dir_all(&run_dir);
+    let (t, c) = (Instant::now(), cpu_seconds());
+    runner::start(cfg, &run_dir, (0, 1), &opts).expect("run into directory");
+    let with = [t.elapsed().as_secs_f64(), cpu_seconds() - c];
+    let size = std::fs::metadata(run_dir.join(runner::part_name(0, 1)))
+        .map(|m| m.len())
+        .unwrap_or(0);
+    let _ = std::fs::remove_dir_all(&run_dir);
+    (plain, with, size)
+}
+
+fn median(mut v: Vec<f64>) -> f64 {
+    v.sort_by(f64::total_cmp);
+    let n = v.len();
+    if n % 2 == 1 {
+        v[n / 2]
+    } else {
+        0.5 * (v[n / 2 - 1] + v[n / 2])
+    }
+}
+
+/// The same ensemble run in memory (reference) and into a run directory with
+/// a row every `record_every` steps and a checkpoint every `checkpoint_every`
+/// steps (0: the default cadence, by wall-clock time), for a run of
+/// `duration_fs` and one five times longer: medians of `repeats`
+/// interleaved pairs (reference, with output) per length. The difference
+/// of the two lengths separates the cost per step (the marginal overhead,
+/// what a long production run pays) from the fixed cost of a run (file and
+/// group creation, the final commit and close), which a sub-second
+/// benchmark run would otherwise mistake for a per-step cost.
+fn output_overhead(
+    name: &str,
+    make: &dyn Fn(f64) -> RunConfig,
+    duration_fs: f64,
+    checkpoint_every: u64,
+    dir: &Path,
+    repeats: usize,
+) {
+    let lengths = [duration_fs, 5.0 * duration_fs];
+    let mut runs = Vec::new();
+    let mut sizes = [0u64; 2];
+    let mut record_every = 1;
+    for (k, &d) in lengths.iter().enumerate() {
+        let cfg = make(d);
+        assert_eq!(
+            cfg.output.checkpoint_every, checkpoint_every,
+            "cadence in the TOML text"
+        );
+        record_every = cfg.output.record_every;
+        let mut samples = Vec::new();
+        for _ in 0..repeats {
+            let (p, w, size) = overhead_pair(&cfg, dir);
+            sizes[k] = size;
+            samples.push((p, w));
+        }
+        let m = |f: &dyn Fn(&([f64; 2], [f64; 2])) -> f64| median(samples.iter().map(f).collect());
+        runs.push([
+            m(&|s| s.0[0]),
+            m(&|s| s.0[1]),
+            m(&|s| s.1[0]),
+            m(&|s| s.1[1]),
+        ]);
     }
     let cadence = if checkpoint_every == 0 {
         "default checkpoints".to_string()
     } else {
         format!("checkpoint/{checkpoint_every} steps")
     };
-    let cadence = format!("row/{} steps, {cadence}", cfg.output.record_every);
+    let cadence = format!("row/{record_every} steps, {cadence}");
+    let pct = |with: f64, plain: f64| 100.0 * (with / plain - 1.0);
+    for (k, r) in runs.iter().enumerate() {
+        println!(
+            "{:<34} {:>6.0} fs: {:>7.3} s ({:.3} s CPU) with output, {cadence}, {:.1} MB | reference (no output) {:>7.3} s ({:.3} s CPU) | overhead wall {:>5.1} %, CPU {:>5.1} %",
+            format!("output + checkpoints ({name})"),
+            lengths[k],
+            r[2],
+            r[3],
+            sizes[k] as f64 / 1e6,
+            r[0],
+            r[1],
+            pct(r[2], r[0]),
+            pct(r[3], r[1]),
+        );
+    }
+    let (s, l) = (&runs[0], &runs[1]);
+    let marginal_wall = pct(l[2] - s[2], l[0] - s[0]);
+    let marginal_cpu = pct(l[3] - s[3], l[1] - s[1]);
+    let fixed = (s[2] - s[0]) - 0.01 * marginal_wall * s[0];
     println!(
-        "{:<34} {with:>7.3} s ({with_cpu:.3} s CPU) with output, {cadence}, {:.1} MB | reference (no output) {plain:>7.3} s ({plain_cpu:.3} s CPU) | overhead wall {:>5.1} %, CPU {:>5.1} % (goal < 2 %)",
+        "{:<34} per step: overhead wall {marginal_wall:>5.1} %, CPU {marginal_cpu:>5.1} % (goal < 2 %) | fixed cost per run {:.0} ms wall",
         format!("output + checkpoints ({name})"),
-        size as f64 / 1e6,
-        100.0 * (with / plain - 1.0),
-        100.0 * (with_cpu / plain_cpu - 1.0)
+        1e3 * fixed
     );
 }
 
@@ -371,14 +429,21 @@ fn main() {
     let lvc = lvc_config(200 / scale, &dir);
     // The run directory re-reads the configuration from its TOML text, so the
     // checkpoint cadence is part of the text.
-    let lvc20 = lvc20_config(20 / scale.min(4), 200.0, &dir, 200, 1);
-    let lvc20_default = lvc20_config(20 / scale.min(4), 200.0, &dir, 0, 1);
-    let lvc20_every20 = lvc20_config(20 / scale.min(4), 200.0, &dir, 0, 20);
+    let n20 = 20 / scale.min(4);
+    let lvc20 = lvc20_config(n20, 200.0, &dir, 200, 1);
+    let overheads = |dir: &Path, repeats: usize| {
+        let d = dir.to_path_buf();
+        let name = "LVC 20 atoms x 5 states";
+        let every200 = |t: f64| lvc20_config(n20, t, &d, 200, 1);
+        let default1 = |t: f64| lvc20_config(n20, t, &d, 0, 1);
+        let default20 = |t: f64| lvc20_config(n20, t, &d, 0, 20);
+        output_overhead(name, &every200, 200.0, 200, dir, repeats);
+        output_overhead(name, &default1, 200.0, 0, dir, repeats);
+        output_overhead(name, &default20, 200.0, 0, dir, repeats);
+    };
     if std::env::args().any(|a| a == "--overhead") {
         // Only the output overhead (scripts/bench engine -- --overhead).
-        output_overhead("LVC 20 atoms x 5 states", &lvc20, &dir, 200, 3);
-        output_overhead("LVC 20 atoms x 5 states", &lvc20_default, &dir, 0, 3);
-        output_overhead("LVC 20 atoms x 5 states", &lvc20_every20, &dir, 0, 3);
+        overheads(&dir, 5);
         std::fs::remove_dir_all(&dir).ok();
         return;
     }
@@ -386,9 +451,7 @@ fn main() {
     report("LVC 3 states x 10 modes", &lvc);
     report("LVC 20 atoms (60 modes) x 5 states", &lvc20);
     writer_throughput(&dir);
-    output_overhead("LVC 20 atoms x 5 states", &lvc20, &dir, 200, 3);
-    output_overhead("LVC 20 atoms x 5 states", &lvc20_default, &dir, 0, 3);
-    output_overhead("LVC 20 atoms x 5 states", &lvc20_every20, &dir, 0, 3);
+    overheads(&dir, if quick { 1 } else { 5 });
     std::fs::remove_dir_all(&dir).ok();
     let t = Instant::now();
     let cfg = tully_config(2000);
