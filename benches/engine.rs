@@ -336,7 +336,8 @@ fn output_overhead(
             sizes[k] = size;
             samples.push((p, w));
         }
-        let m = |f: &dyn Fn(&([f64; 2], [f64; 2])) -> f64| median(samples.iter().map(f).collect());
+        type Sample = ([f64; 2], [f64; 2]);
+        let m = |f: &dyn Fn(&Sample) -> f64| median(samples.iter().map(f).collect());
         runs.push([
             m(&|s| s.0[0]),
             m(&|s| s.0[1]),

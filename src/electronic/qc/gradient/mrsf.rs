@@ -323,6 +323,9 @@ pub fn mrsf_state_gradients(
     )
 }
 
+/// A gradient per atom (Eh/bohr).
+pub type PerAtom = Vec<[f64; 3]>;
+
 /// As [`mrsf_state_gradients`], reusing the J/K engine of the SCF and
 /// response at this geometry (same basis and [`JkOptions`]; its in-core
 /// integral store is not rebuilt), which is handed back.
@@ -336,7 +339,7 @@ pub fn mrsf_state_gradients_reusing(
     jk: &JkOptions,
     engine: JkEngine,
     opts: &ZVectorOptions,
-) -> Result<(Vec<Vec<[f64; 3]>>, JkEngine), GradientError> {
+) -> Result<(Vec<PerAtom>, JkEngine), GradientError> {
     let (g, engine) = gradients_with(
         basis,
         scf,

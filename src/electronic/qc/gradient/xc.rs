@@ -49,6 +49,9 @@ pub struct XcGradient {
 
 const CHUNKS: usize = 64;
 
+/// A gradient per atom (Eh/bohr).
+type PerAtom = Vec<[f64; 3]>;
+
 /// Index of ∂_k∂_l in the AO component layout (xx, xy, xz, yy, yz, zz after
 /// value and gradient).
 fn hess_comp(k: usize, l: usize) -> usize {
@@ -398,7 +401,7 @@ pub fn xc_gradient_and_directional(
     da: &DMatrix<f64>,
     db: &DMatrix<f64>,
     trials: &[(&DMatrix<f64>, &DMatrix<f64>)],
-) -> Result<(XcGradient, Vec<Vec<[f64; 3]>>), GradientError> {
+) -> Result<(XcGradient, Vec<PerAtom>), GradientError> {
     let natoms = basis.natoms();
     let zero = XcGradient {
         total: vec![[0.0; 3]; natoms],
@@ -427,7 +430,7 @@ pub fn xc_gradient_and_directional(
     for _ in 0..ranges.len() {
         funcs.push(functional.try_clone().map_err(xc_err)?);
     }
-    type Part = (XcGradient, Vec<Vec<[f64; 3]>>);
+    type Part = (XcGradient, Vec<PerAtom>);
     let parts: Vec<Result<Part, GradientError>> = ranges
         .into_par_iter()
         .zip(funcs.into_par_iter())
@@ -492,7 +495,7 @@ fn block_directional(
     out: &mut XcOutput,
     work: &mut PartitionWork,
     wgrad: &mut [[f64; 3]],
-    acc: &mut (XcGradient, Vec<Vec<[f64; 3]>>),
+    acc: &mut (XcGradient, Vec<PerAtom>),
 ) -> Result<(), GradientError> {
     let block = &grid.blocks[blk];
     let range = block.range.clone();
