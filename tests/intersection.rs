@@ -1,6 +1,8 @@
-//! Minimum-energy crossing search (penalty-function method, J. Phys. Chem.
-//! B 112, 405 (2008), from memory) on a two-state model of our own whose
-//! crossing seam and minimum-energy crossing point are known in closed form.
+//! Minimum-energy crossing searches (penalty-function method, J. Phys.
+//! Chem. B 112, 405 (2008); gradient projection, Chem. Phys. Lett. 223, 269
+//! (1994), with the branching-plane update, J. Chem. Theory Comput. 6, 1538
+//! (2010); all from memory) on a two-state model of our own whose crossing
+//! seam and minimum-energy crossing point are known in closed form.
 //!
 //! Then the real case: the twisted-pyramidalised S1/S0 intersection of
 //! ethylene with MRSF-TDDFT, and the geometric phase around it.
