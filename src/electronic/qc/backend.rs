@@ -16,7 +16,7 @@
 //!
 //! # Gradients and coupling vectors
 //! Gradients are analytic by default ([`GradientMethod::Analytic`]: the
-//! Z-vector gradients of [`mrsf_state_gradients`], computed for the states
+//! Z-vector gradients of [`mrsf_state_gradients`](super::gradient::mrsf::mrsf_state_gradients), computed for the states
 //! the engine asks for, once per geometry and state), or central
 //! differences of the response energies ([`GradientMethod::Numerical`]):
 //! one set of 6N displaced calculations gives the gradients of *all*
@@ -40,7 +40,7 @@
 //! machine and thread count).
 
 use super::basis::BasisSet;
-use super::gradient::mrsf::{mrsf_state_gradients, mrsf_state_gradients_reusing, ZVectorOptions};
+use super::gradient::mrsf::{mrsf_state_gradients_reusing, ZVectorOptions};
 use super::gradient::numerical::ScfEnergy;
 use super::gradient::GradientError;
 use super::response::overlap::{state_overlaps, StateVectors};
@@ -64,7 +64,7 @@ pub enum GradientMethod {
         /// Displacement h (bohr).
         step: f64,
     },
-    /// Analytic MRSF gradients ([`mrsf_state_gradients`]), one state at a
+    /// Analytic MRSF gradients ([`mrsf_state_gradients`](super::gradient::mrsf::mrsf_state_gradients)), one state at a
     /// time as the engine asks; coupling vectors still come from displaced
     /// state overlaps with `coupling_step` (bohr), at hop attempts only.
     Analytic {
@@ -430,33 +430,24 @@ impl MrsfBackend {
                 let point = self.current.as_mut().expect("a current point");
                 let failed =
                     |e: GradientError| BackendError::Failed(format!("analytic MRSF gradient: {e}"));
-                let g = match point.engine.take() {
-                    Some(engine) => {
-                        let (g, engine) = mrsf_state_gradients_reusing(
-                            &point.basis,
-                            &point.scf,
-                            &point.excited,
-                            &missing,
-                            &calc.potential,
-                            &calc.jk,
-                            engine,
-                            zvector,
-                        )
-                        .map_err(failed)?;
-                        point.engine = Some(engine);
-                        g
-                    }
-                    None => mrsf_state_gradients(
-                        &point.basis,
-                        &point.scf,
-                        &point.excited,
-                        &missing,
-                        &calc.potential,
-                        &calc.jk,
-                        zvector,
-                    )
-                    .map_err(failed)?,
-                };
+                // The engine of the SCF and response at this point (a new
+                // one if it was given up, e.g. after a restore).
+                let engine = point
+                    .engine
+                    .take()
+                    .unwrap_or_else(|| JkEngine::new(&point.basis, calc.jk.clone()));
+                let (g, engine) = mrsf_state_gradients_reusing(
+                    &point.basis,
+                    &point.scf,
+                    &point.excited,
+                    &missing,
+                    &calc.potential,
+                    &calc.jk,
+                    engine,
+                    zvector,
+                )
+                .map_err(failed)?;
+                point.engine = Some(engine);
                 for (s, gs) in missing.iter().zip(g) {
                     point.gradients[*s] = Some(gs.into_iter().flatten().collect());
                 }

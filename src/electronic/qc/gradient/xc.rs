@@ -107,10 +107,74 @@ pub fn xc_gradient(
         )));
     }
     let gga = functional.family() == Family::Gga;
-    let ao = AoBasis::new(basis).map_err(|e| GradientError::Ks(e.into()))?;
     let ao_atoms = basis.ao_atoms();
     let dt = da + db;
     let dens: Vec<&DMatrix<f64>> = if polarized { vec![da, db] } else { vec![&dt] };
+    let init = || XcGradient {
+        total: vec![[0.0; 3]; natoms],
+        grid_weights: vec![[0.0; 3]; natoms],
+        energy: 0.0,
+    };
+    let parts = over_blocks(
+        basis,
+        grid,
+        functional,
+        init,
+        |acc, blk, values, func, sc| {
+            block_gradient(
+                grid,
+                blk,
+                values,
+                &dens,
+                func,
+                polarized,
+                gga,
+                &ao_atoms,
+                &mut sc.out,
+                &mut sc.work,
+                &mut sc.wgrad,
+                acc,
+            )
+        },
+    )?;
+    let mut total = zero;
+    for p in parts {
+        total.energy += p.energy;
+        for a in 0..natoms {
+            for k in 0..3 {
+                total.total[a][k] += p.total[a][k];
+                total.grid_weights[a][k] += p.grid_weights[a][k];
+            }
+        }
+    }
+    Ok(total)
+}
+
+/// Per-thread scratch of a grid pass.
+struct Scratch {
+    out: XcOutput,
+    work: PartitionWork,
+    wgrad: Vec<[f64; 3]>,
+}
+
+/// One pass over the grid blocks in a fixed partition of [`CHUNKS`]
+/// chunks (parallel; the caller reduces the per-chunk accumulators in
+/// order, so the sums do not depend on the thread count): AO values to
+/// second (GGA) or first order per block, then `body`.
+fn over_blocks<A, F>(
+    basis: &BasisSet,
+    grid: &MolecularGrid,
+    functional: &Functional,
+    init: impl Fn() -> A + Sync,
+    body: F,
+) -> Result<Vec<A>, GradientError>
+where
+    A: Send,
+    F: Fn(&mut A, usize, &AoValues, &Functional, &mut Scratch) -> Result<(), GradientError> + Sync,
+{
+    let gga = functional.family() == Family::Gga;
+    let ao = AoBasis::new(basis).map_err(|e| GradientError::Ks(e.into()))?;
+    let natoms = basis.natoms();
     let nblocks = grid.blocks.len();
     let chunk = nblocks.div_ceil(CHUNKS).max(1);
     let ranges: Vec<std::ops::Range<usize>> = (0..nblocks)
@@ -121,46 +185,33 @@ pub fn xc_gradient(
     for _ in 0..ranges.len() {
         funcs.push(functional.try_clone().map_err(xc_err)?);
     }
-    let parts: Vec<Result<XcGradient, GradientError>> = ranges
+    ranges
         .into_par_iter()
         .zip(funcs.into_par_iter())
         .map(|(range, func)| {
-            let mut acc = XcGradient {
-                total: vec![[0.0; 3]; natoms],
-                grid_weights: vec![[0.0; 3]; natoms],
-                energy: 0.0,
-            };
+            let mut acc = init();
             let mut values = AoValues::new();
-            let mut out = XcOutput::new();
-            let mut work = PartitionWork::default();
-            let mut wgrad = vec![[0.0; 3]; natoms];
-            for blk in range.clone() {
-                let block = &grid.blocks[blk];
-                ao.eval_block(grid, block, if gga { 2 } else { 1 }, &mut values)
-                    .map_err(|e| GradientError::Ks(e.into()))?;
+            let mut scratch = Scratch {
+                out: XcOutput::new(),
+                work: PartitionWork::default(),
+                wgrad: vec![[0.0; 3]; natoms],
+            };
+            for blk in range {
+                ao.eval_block(
+                    grid,
+                    &grid.blocks[blk],
+                    if gga { 2 } else { 1 },
+                    &mut values,
+                )
+                .map_err(|e| GradientError::Ks(e.into()))?;
                 if values.nao() == 0 {
                     continue;
                 }
-                block_gradient(
-                    grid, blk, &values, &dens, &func, polarized, gga, &ao_atoms, &mut out,
-                    &mut work, &mut wgrad, &mut acc,
-                )?;
+                body(&mut acc, blk, &values, &func, &mut scratch)?;
             }
             Ok(acc)
         })
-        .collect();
-    let mut total = zero;
-    for p in parts {
-        let p = p?;
-        total.energy += p.energy;
-        for a in 0..natoms {
-            for k in 0..3 {
-                total.total[a][k] += p.total[a][k];
-                total.grid_weights[a][k] += p.grid_weights[a][k];
-            }
-        }
-    }
-    Ok(total)
+        .collect()
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -418,56 +469,32 @@ pub fn xc_gradient_and_directional(
         ));
     }
     let gga = functional.family() == Family::Gga;
-    let ao = AoBasis::new(basis).map_err(|e| GradientError::Ks(e.into()))?;
     let ao_atoms = basis.ao_atoms();
-    let nblocks = grid.blocks.len();
-    let chunk = nblocks.div_ceil(CHUNKS).max(1);
-    let ranges: Vec<std::ops::Range<usize>> = (0..nblocks)
-        .step_by(chunk)
-        .map(|s| s..(s + chunk).min(nblocks))
-        .collect();
-    let mut funcs = Vec::with_capacity(ranges.len());
-    for _ in 0..ranges.len() {
-        funcs.push(functional.try_clone().map_err(xc_err)?);
-    }
-    type Part = (XcGradient, Vec<PerAtom>);
-    let parts: Vec<Result<Part, GradientError>> = ranges
-        .into_par_iter()
-        .zip(funcs.into_par_iter())
-        .map(|(range, func)| {
-            let mut acc = (zero.clone(), zero_trials());
-            let mut values = AoValues::new();
-            let mut out = XcOutput::new();
-            let mut work = PartitionWork::default();
-            let mut wgrad = vec![[0.0; 3]; natoms];
-            for blk in range.clone() {
-                let block = &grid.blocks[blk];
-                ao.eval_block(grid, block, if gga { 2 } else { 1 }, &mut values)
-                    .map_err(|e| GradientError::Ks(e.into()))?;
-                if values.nao() == 0 {
-                    continue;
-                }
-                block_directional(
-                    grid,
-                    blk,
-                    &values,
-                    [da, db],
-                    trials,
-                    &func,
-                    gga,
-                    &ao_atoms,
-                    &mut out,
-                    &mut work,
-                    &mut wgrad,
-                    &mut acc,
-                )?;
-            }
-            Ok(acc)
-        })
-        .collect();
+    let init = || (zero.clone(), zero_trials());
+    let parts = over_blocks(
+        basis,
+        grid,
+        functional,
+        init,
+        |acc, blk, values, func, sc| {
+            block_directional(
+                grid,
+                blk,
+                values,
+                [da, db],
+                trials,
+                func,
+                gga,
+                &ao_atoms,
+                &mut sc.out,
+                &mut sc.work,
+                &mut sc.wgrad,
+                acc,
+            )
+        },
+    )?;
     let (mut total, mut directional) = (zero, zero_trials());
-    for p in parts {
-        let (g, d) = p?;
+    for (g, d) in parts {
         total.energy += g.energy;
         for a in 0..natoms {
             for k in 0..3 {
