@@ -897,7 +897,7 @@ impl Setup {
     ) -> Result<Vec<DMatrix<f64>>, GradientError> {
         let mut out = Vec::with_capacity(mats.len());
         for chunk in mats.chunks(MAX_BATCH) {
-            out.extend(ctx.engine().jk(chunk, true, true)?.1);
+            out.extend(ctx.engine().k_only(chunk)?);
         }
         Ok(out)
     }

@@ -21,8 +21,8 @@ pub mod two_electron;
 
 pub use two_electron::{
     coulomb_exchange, coulomb_exchange_direct, coulomb_exchange_in_core, eri_bra_derivative_tensor,
-    eri_gradient_pairs, eri_tensor, jk_gradient, DensityPairs, EriStore, EriWork, JkOptions,
-    JkResult, ShellPairData, ShellPairs, TwoElectronError,
+    eri_gradient_pairs, eri_tensor, exchange_in_core, jk_gradient, DensityPairs, EriStore, EriWork,
+    JkOptions, JkResult, ShellPairData, ShellPairs, TwoElectronError,
 };
 
 use crate::electronic::qc::basis::BasisSet;

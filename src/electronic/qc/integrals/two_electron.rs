@@ -1064,7 +1064,7 @@ impl EriStore {
     }
 
     /// J and K for each density (row-major flat n×n in and out).
-    fn jk_flat(&self, dens: &[Vec<f64>], want_k: bool) -> JkParts {
+    fn jk_flat(&self, dens: &[Vec<f64>], want_j: bool, want_k: bool) -> JkParts {
         let n = self.nbf;
         let npair = n * (n + 1) / 2;
         let nd = dens.len();
@@ -1122,7 +1122,7 @@ impl EriStore {
                     let (i, jj) = pairs_of[ij];
                     let base = ij * (ij + 1) / 2;
                     let row = &self.values[base..base + ij + 1];
-                    for m in 0..nd {
+                    for m in 0..if want_j { nd } else { 0 } {
                         let d = &dw[m];
                         let jpm = &mut jp[m];
                         let dij = d[ij];
@@ -1182,6 +1182,7 @@ impl EriStore {
         }
         let j: Vec<Vec<f64>> = jp
             .iter()
+            .take(if want_j { nd } else { 0 })
             .map(|p| {
                 let mut full = vec![0.0; n * n];
                 for (ij, &(a, b)) in pairs_of.iter().enumerate() {
@@ -1325,13 +1326,26 @@ pub fn coulomb_exchange_in_core(
 ) -> Result<JkResult, TwoElectronError> {
     let dens = check_densities(store.nbf, densities)?;
     let n = store.nbf;
-    let (j, k) = store.jk_flat(&dens, exchange);
+    let (j, k) = store.jk_flat(&dens, true, exchange);
     Ok(JkResult {
         j: j.iter().map(|v| DMatrix::from_row_slice(n, n, v)).collect(),
         k: k.iter().map(|v| DMatrix::from_row_slice(n, n, v)).collect(),
         in_core: true,
         quartets: store.quartets,
     })
+}
+
+/// K alone for each density from the packed in-core store (no Coulomb
+/// contraction): for the response products, which need only exchange-type
+/// builds.
+pub fn exchange_in_core(
+    store: &EriStore,
+    densities: &[DMatrix<f64>],
+) -> Result<Vec<DMatrix<f64>>, TwoElectronError> {
+    let dens = check_densities(store.nbf, densities)?;
+    let n = store.nbf;
+    let (_, k) = store.jk_flat(&dens, false, true);
+    Ok(k.iter().map(|v| DMatrix::from_row_slice(n, n, v)).collect())
 }
 
 /// J (and K) by recomputing the integrals (integral-direct), with Schwarz and

@@ -251,7 +251,7 @@ impl Kernel {
                     .iter()
                     .map(|x| &self.c_occ * x * self.c_vir.transpose())
                     .collect();
-                let (_, k) = engine.jk(&dens, true, true)?;
+                let k = engine.k_only(&dens)?;
                 for (o, kk) in chunk_o.iter_mut().zip(&k) {
                     *o -= (self.c_occ.transpose() * kk * &self.c_vir) * self.cx;
                 }

@@ -15,8 +15,8 @@
 
 use crate::electronic::qc::basis::BasisSet;
 use crate::electronic::qc::integrals::{
-    coulomb_exchange_direct, coulomb_exchange_in_core, EriStore, JkOptions, ShellPairs,
-    TwoElectronError,
+    coulomb_exchange_direct, coulomb_exchange_in_core, exchange_in_core, EriStore, JkOptions,
+    ShellPairs, TwoElectronError,
 };
 use nalgebra::DMatrix;
 
@@ -107,6 +107,19 @@ impl JkEngine {
     /// True if the packed store is used.
     pub fn in_core(&self) -> bool {
         matches!(self.store, Store::InCore(_))
+    }
+
+    /// K alone for each density (exchange-type builds of the response):
+    /// in core without the Coulomb contraction; integral-direct through
+    /// [`JkEngine::jk`] (there J costs little beside the integrals).
+    pub fn k_only(
+        &mut self,
+        densities: &[DMatrix<f64>],
+    ) -> Result<Vec<DMatrix<f64>>, TwoElectronError> {
+        match &self.store {
+            Store::InCore(store) => exchange_in_core(store, densities),
+            Store::Direct(_) => Ok(self.jk(densities, true, true)?.1),
+        }
     }
 
     /// J and K for each density (K only if `exchange`).
