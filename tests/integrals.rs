@@ -656,8 +656,9 @@ fn two_density_jk_gradient_matches_finite_differences() {
 // J/K builds
 // ---------------------------------------------------------------------------
 
-/// In-core and direct J/K for several densities (one not symmetric) against
-/// the explicit contraction with the full ERI tensor (reference implementation).
+/// In-core and direct J/K, and K alone, for several densities (one not
+/// symmetric) against the explicit contraction with the full ERI tensor
+/// (reference implementation).
 #[test]
 fn jk_builds_agree_with_explicit_contraction() {
     let mol = molecule_from(&fixture("integrals_nh3_cc-pvdz.json")["atoms"]);
@@ -680,6 +681,20 @@ fn jk_builds_agree_with_explicit_contraction() {
     )
     .unwrap();
     assert!(!jk_dir.in_core);
+    // K alone (the response's exchange-type builds), in core and direct.
+    let mut in_core = flipswarm::electronic::qc::scf::fock::JkEngine::new(&b, JkOptions::default());
+    assert!(in_core.in_core());
+    let k_in = in_core.k_only(&dens).unwrap();
+    let mut direct = flipswarm::electronic::qc::scf::fock::JkEngine::new(
+        &b,
+        JkOptions {
+            threshold: 1e-14,
+            max_in_core_bytes: 0,
+            ..JkOptions::default()
+        },
+    );
+    assert!(!direct.in_core());
+    let k_dir = direct.k_only(&dens).unwrap();
     for (m, d) in dens.iter().enumerate() {
         let j_ref = DMatrix::from_fn(n, n, |p, q| {
             (0..n)
@@ -698,6 +713,8 @@ fn jk_builds_agree_with_explicit_contraction() {
             ("K in-core", &jk_in.k[m], &k_ref),
             ("J direct", &jk_dir.j[m], &j_ref),
             ("K direct", &jk_dir.k[m], &k_ref),
+            ("K alone in-core", &k_in[m], &k_ref),
+            ("K alone direct", &k_dir[m], &k_ref),
         ] {
             let e = (a - bm).amax();
             assert!(e < 1e-11, "density {m} {what}: {e:e}");
