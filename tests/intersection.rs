@@ -245,6 +245,15 @@ fn ethylene_calculation() -> ScfEnergy {
     }
 }
 
+/// The start geometry of `calc` (bohr).
+fn start_of(calc: &ScfEnergy) -> Vec<[f64; 3]> {
+    calc.molecule
+        .atoms
+        .iter()
+        .map(|a| a.position_bohr)
+        .collect()
+}
+
 /// S0 and S1 state vectors at `positions`, SCF started from `guess`.
 fn states_at(
     calc: &ScfEnergy,
@@ -316,12 +325,7 @@ fn ethylene_crossing() -> &'static Crossing {
     static FOUND: std::sync::OnceLock<Crossing> = std::sync::OnceLock::new();
     FOUND.get_or_init(|| {
         let calc = ethylene_calculation();
-        let start: Vec<[f64; 3]> = calc
-            .molecule
-            .atoms
-            .iter()
-            .map(|a| a.position_bohr)
-            .collect();
+        let start = start_of(&calc);
         let opts = CrossingOptions {
             stage: OptimizeOptions {
                 max_steps: 80,
@@ -437,12 +441,7 @@ fn ethylene_s1_s0_intersection_and_its_geometric_phase() {
 #[test]
 fn gradient_projection_reaches_the_ethylene_crossing_the_penalty_search_approaches() {
     let calc = ethylene_calculation();
-    let start: Vec<[f64; 3]> = calc
-        .molecule
-        .atoms
-        .iter()
-        .map(|a| a.position_bohr)
-        .collect();
+    let start = start_of(&calc);
     let opts = ProjectionOptions {
         optimizer: OptimizeOptions {
             max_steps: 60,
