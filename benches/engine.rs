@@ -266,14 +266,21 @@ fn writer_throughput(dir: &Path) {
 /// Wall and CPU seconds of one in-memory run (reference) and of one run
 /// into a run directory, and the part file's size.
 fn overhead_pair(cfg: &RunConfig, dir: &Path) -> ([f64; 2], [f64; 2], u64) {
+    let (t, c) = (Instant::now(), cpu_seconds());
+    swarm::run(cfg, 1).expect("thread pool");
+    let plain = [t.elapsed().as_secs_f64(), cpu_seconds() - c];
+    let (with, size) = run_into_directory(cfg, dir);
+    (plain, with, size)
+}
+
+/// One run of `cfg` into a fresh run directory under `dir` (removed
+/// afterwards): wall and CPU seconds and the part file's size.
+fn run_into_directory(cfg: &RunConfig, dir: &Path) -> ([f64; 2], u64) {
     use flipswarm::ensemble::runner;
     use std::sync::atomic::AtomicBool;
     use std::sync::Arc;
     let model = cfg.model.clone();
     let factory = move |_: usize| swarm::make_backend(&model);
-    let (t, c) = (Instant::now(), cpu_seconds());
-    swarm::run(cfg, 1).expect("thread pool");
-    let plain = [t.elapsed().as_secs_f64(), cpu_seconds() - c];
     let opts = runner::Options {
         threads: 1,
         stop: Arc::new(AtomicBool::new(false)),
@@ -284,12 +291,12 @@ fn overhead_pair(cfg: &RunConfig, dir: &Path) -> ([f64; 2], [f64; 2], u64) {
     let _ = std::fs::remove_dir_all(&run_dir);
     let (t, c) = (Instant::now(), cpu_seconds());
     runner::start(cfg, &run_dir, (0, 1), &opts).expect("run into directory");
-    let with = [t.elapsed().as_secs_f64(), cpu_seconds() - c];
+    let times = [t.elapsed().as_secs_f64(), cpu_seconds() - c];
     let size = std::fs::metadata(run_dir.join(runner::part_name(0, 1)))
         .map(|m| m.len())
         .unwrap_or(0);
     let _ = std::fs::remove_dir_all(&run_dir);
-    (plain, with, size)
+    (times, size)
 }
 
 fn median(mut v: Vec<f64>) -> f64 {
@@ -379,24 +386,10 @@ fn output_overhead(
 
 /// One run with output (for profiling).
 fn output_overhead_once(cfg: &RunConfig, dir: &Path, checkpoint_every: u64) {
-    use flipswarm::ensemble::runner;
-    use std::sync::atomic::AtomicBool;
-    use std::sync::Arc;
     let mut cfg = cfg.clone();
     cfg.output.record_every = 1;
     cfg.output.checkpoint_every = checkpoint_every;
-    let model = cfg.model.clone();
-    let factory = move |_: usize| swarm::make_backend(&model);
-    let opts = runner::Options {
-        threads: 1,
-        stop: Arc::new(AtomicBool::new(false)),
-        factory: &factory,
-        progress_bar: false,
-    };
-    let run_dir = dir.join("overhead-run");
-    let _ = std::fs::remove_dir_all(&run_dir);
-    runner::start(&cfg, &run_dir, (0, 1), &opts).expect("run into directory");
-    let _ = std::fs::remove_dir_all(&run_dir);
+    run_into_directory(&cfg, dir);
 }
 
 fn main() {
