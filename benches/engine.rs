@@ -435,6 +435,14 @@ fn main() {
         output_overhead(name, &default1, 200.0, 0, dir, repeats);
         output_overhead(name, &default20, 200.0, 0, dir, repeats);
     };
+    if std::env::args().any(|a| a == "--overhead=default") {
+        // Only the default cadence (a row per step), seven pairs per length.
+        let d = dir.clone();
+        let default1 = |t: f64| lvc20_config(n20, t, &d, 0, 1);
+        output_overhead("LVC 20 atoms x 5 states", &default1, 200.0, 0, &dir, 7);
+        std::fs::remove_dir_all(&dir).ok();
+        return;
+    }
     if std::env::args().any(|a| a == "--overhead") {
         // Only the output overhead (scripts/bench engine -- --overhead).
         overheads(&dir, 5);

@@ -402,6 +402,58 @@ fn writer_loop(
     }
 }
 
+/// Reads the clock for the time-based checkpoint cadence about once per
+/// millisecond of trajectory time rather than at every step: a model step
+/// can take a few microseconds, and a clock read per step was a measurable
+/// share of the writer's overhead on the trajectory thread. Slow (molecular)
+/// steps read it at every step.
+struct ClockStride {
+    /// Steps between clock reads.
+    stride: u64,
+    /// The step and time of the last read.
+    last: Option<(u64, Instant)>,
+}
+
+impl ClockStride {
+    /// Aim for a read per this much wall time.
+    const TARGET: Duration = Duration::from_millis(1);
+    /// At most this many steps between reads.
+    const MAX_STRIDE: u64 = 64;
+
+    fn new() -> Self {
+        Self {
+            stride: 1,
+            last: None,
+        }
+    }
+
+    /// The time at `step` when a read is due there, else `None`; adapts the
+    /// stride to the measured time per step.
+    fn read(&mut self, step: u64) -> Option<Instant> {
+        self.read_with(step, Instant::now)
+    }
+
+    /// [`ClockStride::read`] with the clock given.
+    fn read_with(&mut self, step: u64, clock: impl FnOnce() -> Instant) -> Option<Instant> {
+        if let Some((last, _)) = self.last {
+            if step.saturating_sub(last) < self.stride {
+                return None;
+            }
+        }
+        let now = clock();
+        if let Some((last, then)) = self.last {
+            let steps = u32::try_from(step.saturating_sub(last).max(1)).unwrap_or(u32::MAX);
+            let per_step = now.saturating_duration_since(then) / steps;
+            self.stride = match per_step.as_nanos() {
+                0 => Self::MAX_STRIDE,
+                ns => (Self::TARGET.as_nanos() / ns).clamp(1, Self::MAX_STRIDE as u128) as u64,
+            };
+        }
+        self.last = Some((step, now));
+        Some(now)
+    }
+}
+
 /// The observer that buffers rows, checkpoints and reports the end.
 struct Recorder<'a> {
     index: usize,
@@ -410,6 +462,7 @@ struct Recorder<'a> {
     checkpoint_interval: Duration,
     last_checkpoint: Instant,
     last_checkpoint_step: u64,
+    clock: ClockStride,
     rows: RowBlock,
     hops: Vec<Hop>,
     warnings: Vec<WarningRow>,
@@ -536,7 +589,10 @@ impl Observer for Recorder<'_> {
                 }
                 let by_steps = self.checkpoint_every > 0
                     && rec.state.step - self.last_checkpoint_step >= self.checkpoint_every;
-                let by_time = self.last_checkpoint.elapsed() >= self.checkpoint_interval;
+                let by_time = self
+                    .clock
+                    .read(rec.state.step)
+                    .is_some_and(|now| now - self.last_checkpoint >= self.checkpoint_interval);
                 if by_steps || by_time {
                     self.checkpoint(rec)?;
                 } else if self.rows.len() >= BLOCK_ROWS
@@ -608,6 +664,7 @@ impl Session<'_> {
             checkpoint_interval: Duration::from_secs_f64(out.checkpoint_interval_s),
             last_checkpoint: Instant::now(),
             last_checkpoint_step: 0,
+            clock: ClockStride::new(),
             // A block from the pool, or one with room for a whole block: no
             // growth (reallocation, copying, page faults) while recording.
             rows: match self.pool.lock().unwrap_or_else(|p| p.into_inner()).pop() {
@@ -1323,4 +1380,39 @@ fn execute(
         return Err(RunError::Writer(e));
     }
     Ok(RunReport::default())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Common practice: the time-based checkpoint cadence must not be
+    /// delayed by more than about a millisecond of trajectory time, and slow
+    /// steps must read the clock at every step.
+    #[test]
+    fn the_clock_is_read_about_once_per_millisecond_of_steps() {
+        let t0 = Instant::now();
+        let mut c = ClockStride::new();
+        // The first step always reads.
+        assert_eq!(c.read_with(0, || t0), Some(t0));
+        // 10 µs per step: the next read is due 1 ms / 10 µs = 100 → 64 steps later.
+        let at = |s: u64| t0 + Duration::from_micros(10 * s);
+        assert_eq!(c.read_with(1, || at(1)), Some(at(1)));
+        assert_eq!(c.stride, 64);
+        for s in 2..65 {
+            assert_eq!(c.read_with(s, || panic!("read at step {s}")), None);
+        }
+        assert_eq!(c.read_with(65, || at(65)), Some(at(65)));
+        // 250 µs per step: every 4 steps.
+        let slow = |s: u64| at(65) + Duration::from_micros(250 * (s - 65));
+        assert_eq!(c.read_with(129, || slow(129)), Some(slow(129)));
+        assert_eq!(c.stride, 4);
+        assert_eq!(c.read_with(130, || panic!("read at step 130")), None);
+        assert_eq!(c.read_with(133, || slow(133)), Some(slow(133)));
+        // 2 s per step: every step.
+        let t = slow(133) + Duration::from_secs(8);
+        assert_eq!(c.read_with(137, || t), Some(t));
+        assert_eq!(c.stride, 1);
+        assert!(c.read_with(138, || t + Duration::from_secs(2)).is_some());
+    }
 }
