@@ -750,10 +750,16 @@ fn create_series<T: H5Type>(
         T::type_descriptor(),
         hdf5::types::TypeDescriptor::VarLenUnicode | hdf5::types::TypeDescriptor::VarLenAscii
     );
+    // No fill values for fixed-size data: every row is written before it is
+    // counted (`steps_written`), so zero-filling new chunks first is wasted
+    // work (HDF5 requires them for variable-length data).
     let builder = if varlen {
         group.new_dataset::<T>()
     } else {
-        group.new_dataset::<T>().fletcher32()
+        group
+            .new_dataset::<T>()
+            .fill_time(hdf5::plist::dataset_create::FillTime::Never)
+            .fletcher32()
     };
     let made = if matches!(spec.width, Width::One) {
         builder.chunk(rows).shape(0..).create(spec.name)
