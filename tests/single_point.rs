@@ -259,6 +259,74 @@ fn excited_states_from_the_command_line() {
     assert!(out.contains("SF-TDA") && out.contains("<S^2>"), "{out}");
 }
 
+// `--singlet-cv drop`: without the core→virtual configurations every MRSF
+// singlet is exactly spin-pure (exact spin algebra, module docs of
+// `response`: the singlet CV combination is 2/3 singlet + 1/3 quintet, so
+// with them <S²> = 2 w_CV), and each singlet energy can only rise, since the
+// block is then a principal submatrix of the full singlet block (Cauchy's
+// interlacing theorem, textbook linear algebra). Only MRSF takes the option.
+#[test]
+fn singlets_without_core_virtual_configurations_are_spin_pure() {
+    let fx = fixture();
+    let dir = scratch("singlet-cv");
+    let xyz = write_xyz(&dir, find(&fx, "ch2", "rohf", None));
+    let x = xyz.to_str().unwrap();
+    let singlets = |cv: &str| -> Vec<(f64, f64)> {
+        let (code, out, err) = run(&[
+            "single-point",
+            x,
+            "--method",
+            "rohf",
+            "--basis",
+            "6-31g*",
+            "--excited",
+            "mrsf",
+            "--singlets",
+            "4",
+            "--singlet-cv",
+            cv,
+            "--json",
+        ]);
+        assert_eq!(code, 0, "{err}");
+        let v: Value = serde_json::from_str(&out).unwrap();
+        v["excited_states"]["states"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|s| s["spin"] == "singlet")
+            .map(|s| {
+                (
+                    s["energy"].as_f64().unwrap(),
+                    s["s_squared"].as_f64().unwrap(),
+                )
+            })
+            .collect()
+    };
+    let (keep, drop) = (singlets("keep"), singlets("drop"));
+    assert_eq!((keep.len(), drop.len()), (4, 4));
+    eprintln!("keep {keep:?}\ndrop {drop:?}");
+    assert!(keep.iter().any(|s| s.1 > 1e-6), "{keep:?}");
+    for (k, d) in keep.iter().zip(&drop) {
+        assert!(d.1.abs() < 1e-10, "{drop:?}");
+        assert!(d.0 >= k.0 - 1e-10, "{keep:?} {drop:?}");
+    }
+    let (code, _, err) = run(&[
+        "single-point",
+        x,
+        "--method",
+        "rohf",
+        "--excited",
+        "sf",
+        "--singlet-cv",
+        "drop",
+    ]);
+    assert_eq!(code, 2, "{err}");
+    assert!(
+        err.contains("--singlet-cv") && err.contains("MRSF"),
+        "{err}"
+    );
+}
+
 // `flipswarm optimize`: the reported largest gradient component of the
 // RHF/STO-3G water minimum is below the documented threshold 4.5e-4 Eh/bohr
 // (common practice; tests/gradients.rs compares optimised geometries with

@@ -81,6 +81,15 @@ pub enum Excited {
     Sf,
 }
 
+/// Whether MRSF singlets include the core→virtual configurations.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum SingletCv {
+    /// Keep them (the published configuration space; <S²> = 2 w_CV).
+    Keep,
+    /// Drop them: exactly spin-pure singlets, a little less correlation.
+    Drop,
+}
+
 /// Arguments of `flipswarm single-point`.
 #[derive(Debug, Args)]
 pub struct SinglePointArgs {
@@ -134,6 +143,10 @@ pub struct SinglePointArgs {
     /// Number of triplet states (MRSF).
     #[arg(long, default_value_t = 0)]
     pub triplets: usize,
+    /// MRSF singlets with (keep) or without (drop) the core→virtual
+    /// configurations, whose singlet combination is one-third quintet.
+    #[arg(long, value_enum, default_value = "keep")]
+    pub singlet_cv: SingletCv,
     /// Print every iteration.
     #[arg(long)]
     pub iterations: bool,
@@ -251,6 +264,10 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
             return exit::INPUT;
         }
     }
+    if args.singlet_cv == SingletCv::Drop && args.excited != Some(Excited::Mrsf) {
+        eprintln!("error: --singlet-cv drop applies to MRSF singlets only: add --excited mrsf");
+        return exit::INPUT;
+    }
     if !(args.energy_tolerance > 0.0 && args.gradient_tolerance > 0.0) {
         eprintln!("error: --energy-tolerance and --gradient-tolerance must be positive");
         return exit::INPUT;
@@ -333,14 +350,25 @@ pub fn execute(args: &SinglePointArgs) -> i32 {
                 triplets: args.triplets,
             };
             let t = std::time::Instant::now();
-            match response::excited_states(
-                &basis,
-                &r,
-                exact_exchange,
-                engine,
-                request,
-                &DavidsonOptions::default(),
-            ) {
+            let solved = if args.singlet_cv == SingletCv::Drop {
+                response::Mrsf::new(&basis, &r, exact_exchange, engine).and_then(|m| {
+                    m.with_singlet_cv(false).solve(
+                        args.singlets,
+                        args.triplets,
+                        &DavidsonOptions::default(),
+                    )
+                })
+            } else {
+                response::excited_states(
+                    &basis,
+                    &r,
+                    exact_exchange,
+                    engine,
+                    request,
+                    &DavidsonOptions::default(),
+                )
+            };
+            match solved {
                 Ok(x) => Some((x, t.elapsed().as_secs_f64())),
                 Err(e) => {
                     eprintln!("error: --excited: {e}");
