@@ -786,7 +786,8 @@ pub fn transform_quartet(shells: QuartetShells, w: &mut EriWork) {
 
 /// All pairs of shell groups (i ≥ j) of a basis with their data and Schwarz
 /// factors. A group is a run of consecutive shells on one atom with the same
-/// angular momentum and the same exponents (a general contraction); its
+/// angular momentum whose exponents are among those of the first (a general
+/// contraction, with the uncontracted functions split from it); its
 /// functions are contiguous in AO order, contraction-major.
 pub struct ShellPairs {
     /// Pair data indexed by i(i+1)/2 + j over groups.
@@ -801,16 +802,35 @@ pub struct ShellPairs {
     pub nbf: usize,
 }
 
+/// The coefficients of a contraction over `exps` (those of its own
+/// exponents `own`, zero elsewhere) when every exponent of `own` is one of
+/// `exps`; `None` otherwise. With it a general contraction and the
+/// uncontracted functions split from it (cc-pVDZ: the outermost s and p
+/// primitives) form one group, so their primitive quartets are computed once.
+fn coefficients_on(exps: &[f64], own: &[f64], coefs: &[f64]) -> Option<Vec<f64>> {
+    let mut c = vec![0.0; exps.len()];
+    for (&e, &v) in own.iter().zip(coefs) {
+        let k = exps.iter().position(|&x| x == e)?;
+        if c[k] != 0.0 {
+            return None;
+        }
+        c[k] = v;
+    }
+    Some(c)
+}
+
 fn group_shells(basis: &BasisSet) -> Vec<(RawGroup, bool, usize, usize)> {
     let mut out: Vec<(RawGroup, bool, usize, usize)> = Vec::new();
     let mut last: Option<(usize, usize, bool)> = None;
     for (s, &off) in basis.shells.iter().zip(&basis.offsets) {
         let key = (s.atom, s.l, s.pure);
         if let (Some(k), Some(g)) = (last, out.last_mut()) {
-            if k == key && g.0.exps == s.exponents {
-                g.0.coefs.push(s.coefficients.clone());
-                g.3 += s.nfunc();
-                continue;
+            if k == key {
+                if let Some(c) = coefficients_on(&g.0.exps, &s.exponents, &s.coefficients) {
+                    g.0.coefs.push(c);
+                    g.3 += s.nfunc();
+                    continue;
+                }
             }
         }
         out.push((
