@@ -582,7 +582,12 @@ fn raw_quartet_into(
                 let wv = &mut w.w[..nhab * ncol];
                 let kq = &ket.k[iq * gcd..(iq + 1) * gcd];
                 // W[h1][g][cd] += k_g V[cd][h1]  (ncol = gcd·ncdc)
+                // (zero products: a primitive outside one of the group's
+                // contractions, e.g. cc-pVDZ's outer s beside 1s/2s)
                 for (g, &k) in kq.iter().enumerate() {
+                    if k == 0.0 {
+                        continue;
+                    }
                     let g = g * ncdc;
                     for cd in 0..ncdc {
                         let vrow = &vt[cd * nhab..(cd + 1) * nhab];
