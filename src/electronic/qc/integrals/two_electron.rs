@@ -1042,36 +1042,40 @@ impl EriStore {
         let out = SharedSlice(values.as_mut_ptr(), len);
         let counts: Vec<(usize, usize)> = bras
             .par_iter()
-            .map_init(EriWork::new, |w, &(i, j)| {
-                for_each_quartet(sp, i, j, threshold, |k, l| {
-                    sp.quartet(i, j, k, l, w);
-                    let (oi, ni) = sp.group_ao[i];
-                    let (oj, nj) = sp.group_ao[j];
-                    let (ok, nk) = sp.group_ao[k];
-                    let (ol, nl) = sp.group_ao[l];
-                    let mut x = 0;
-                    for a in 0..ni {
-                        for b in 0..nj {
-                            for c in 0..nk {
-                                for d in 0..nl {
+            .map_init(
+                || (EriWork::new(), Vec::<usize>::new()),
+                |(w, kets), &(i, j)| {
+                    for_each_quartet(sp, i, j, threshold, |k, l| {
+                        sp.quartet(i, j, k, l, w);
+                        let (oi, ni) = sp.group_ao[i];
+                        let (oj, nj) = sp.group_ao[j];
+                        let (ok, nk) = sp.group_ao[k];
+                        let (ol, nl) = sp.group_ao[l];
+                        let mut x = 0;
+                        // pair indices of the ket functions, once per quartet
+                        kets.clear();
+                        for c in 0..nk {
+                            for d in 0..nl {
+                                kets.push(pair_index(ok + c, ol + d));
+                            }
+                        }
+                        for a in 0..ni {
+                            for b in 0..nj {
+                                let ab = pair_index(oi + a, oj + b);
+                                for (&cd, &v) in kets.iter().zip(&w.out[x..x + nk * nl]) {
                                     // SAFETY: a canonical function quartet lies in exactly one
                                     // canonical group quartet, and each group quartet is handled
                                     // by one task; so no two tasks write the same element. Within
                                     // the block, mirror images write the same value.
-                                    unsafe {
-                                        out.write(
-                                            packed_index(oi + a, oj + b, ok + c, ol + d),
-                                            w.out[x],
-                                        )
-                                    };
-                                    x += 1;
+                                    unsafe { out.write(pair_index(ab, cd), v) };
                                 }
+                                x += nk * nl;
                             }
                         }
-                    }
-                    true
-                })
-            })
+                        true
+                    })
+                },
+            )
             .collect();
         let quartets = counts
             .iter()
