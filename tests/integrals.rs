@@ -973,3 +973,28 @@ fn bad_input_errors() {
         "{e}"
     );
 }
+
+// Source: the cc-pVDZ definition (Basis Set Exchange data in data/basis/):
+// O has 3 s, 2 p and 1 d contractions, H 2 s and 1 p, the outermost s and p
+// being single primitives of the contracted sets. The ERI code must see each
+// (atom, l) as one general contraction (a single group per (atom, l)), which
+// is what computes each primitive quartet once; the integrals themselves are
+// checked against the PySCF fixtures above.
+#[test]
+fn general_contractions_and_their_split_primitives_form_one_group() {
+    let mol = molecule_of(&[
+        ("O", [0.0, 0.0, 0.0]),
+        ("H", [0.0, 1.43, 1.11]),
+        ("H", [0.0, -1.43, 1.11]),
+    ]);
+    let b = BasisSet::builtin(&mol, "cc-pVDZ").unwrap();
+    let sp = integrals::ShellPairs::new(&b);
+    let groups: Vec<(usize, usize)> = sp.group_info.iter().map(|g| (g.0, g.2)).collect();
+    assert_eq!(
+        groups,
+        vec![(0, 3), (1, 2), (2, 1), (0, 2), (1, 1), (0, 2), (1, 1)]
+    );
+    let nf: usize = sp.group_ao.iter().map(|g| g.1).sum();
+    assert_eq!(nf, b.nbf);
+    assert_eq!(b.nbf, 24);
+}
