@@ -540,6 +540,21 @@ fn raw_quartet_into(
             if ket_single {
                 pref *= ket.k[iq];
             }
+            if lt == 0 {
+                // (ss|ss): one Hermite term, R_000 = pref F_0(α|PQ|²); W[g] += k_g R E.
+                let mut f0 = [0.0];
+                let x = alpha * (qp[0] * qp[0] + qp[1] * qp[1] + qp[2] * qp[2]);
+                crate::electronic::qc::boys::boys(0, x, &mut f0);
+                let v = pref * f0[0] * ket.es[iq];
+                if ket_single {
+                    w.w[0] += v;
+                } else {
+                    for (o, &k) in w.w[..gcd].iter_mut().zip(&ket.k[iq * gcd..(iq + 1) * gcd]) {
+                        *o += k * v;
+                    }
+                }
+                continue;
+            }
             w.r.compute(lt, alpha, qp, pref);
             let r = &w.r.r[..d * d * d];
             let esk = &ket.es[iq * nnz_k..(iq + 1) * nnz_k];
