@@ -199,6 +199,27 @@ fn bad_input_is_named_with_a_non_zero_exit() {
     assert!(err.contains("line 4") && err.contains("atom 2"), "{err}");
 }
 
+/// The states of `single-point X --method rohf --basis 6-31g* --excited mrsf
+/// EXTRA --json` (exit code 0 asserted).
+fn mrsf_states(x: &str, extra: &[&str]) -> Vec<Value> {
+    let mut args = vec![
+        "single-point",
+        x,
+        "--method",
+        "rohf",
+        "--basis",
+        "6-31g*",
+        "--excited",
+        "mrsf",
+    ];
+    args.extend_from_slice(extra);
+    args.push("--json");
+    let (code, out, err) = run(&args);
+    assert_eq!(code, 0, "{err}");
+    let v: Value = serde_json::from_str(&out).unwrap();
+    v["excited_states"]["states"].as_array().unwrap().clone()
+}
+
 // `--excited`: the table and JSON carry S0 as the lowest singlet at 0 eV,
 // exact triplet <S²> = 2 (MRSF triplet block, J. Chem. Phys. 149, 104101
 // (2018), from memory), and the same energies as the library call
@@ -210,24 +231,7 @@ fn excited_states_from_the_command_line() {
     let dir = scratch("excited");
     let xyz = write_xyz(&dir, case);
     let x = xyz.to_str().unwrap();
-    let (code, out, err) = run(&[
-        "single-point",
-        x,
-        "--method",
-        "rohf",
-        "--basis",
-        "6-31g*",
-        "--excited",
-        "mrsf",
-        "--singlets",
-        "2",
-        "--triplets",
-        "1",
-        "--json",
-    ]);
-    assert_eq!(code, 0, "{err}");
-    let v: Value = serde_json::from_str(&out).unwrap();
-    let states = v["excited_states"]["states"].as_array().unwrap();
+    let states = &mrsf_states(x, &["--singlets", "2", "--triplets", "1"]);
     assert_eq!(states.len(), 3);
     let s0 = states.iter().find(|s| s["label"] == "S0").unwrap();
     assert_eq!(s0["excitation_ev"].as_f64().unwrap(), 0.0);
@@ -272,26 +276,7 @@ fn singlets_without_core_virtual_configurations_are_spin_pure() {
     let xyz = write_xyz(&dir, find(&fx, "ch2", "rohf", None));
     let x = xyz.to_str().unwrap();
     let singlets = |cv: &str| -> Vec<(f64, f64)> {
-        let (code, out, err) = run(&[
-            "single-point",
-            x,
-            "--method",
-            "rohf",
-            "--basis",
-            "6-31g*",
-            "--excited",
-            "mrsf",
-            "--singlets",
-            "4",
-            "--singlet-cv",
-            cv,
-            "--json",
-        ]);
-        assert_eq!(code, 0, "{err}");
-        let v: Value = serde_json::from_str(&out).unwrap();
-        v["excited_states"]["states"]
-            .as_array()
-            .unwrap()
+        mrsf_states(x, &["--singlets", "4", "--singlet-cv", cv])
             .iter()
             .filter(|s| s["spin"] == "singlet")
             .map(|s| {
