@@ -10,8 +10,9 @@
 //!
 //! One writer thread owns the part file; the trajectories, run in parallel
 //! by rayon, buffer their rows ([`PackedRows`], one row-major buffer) and send
-//! them in blocks, which the writer turns into columns ([`RowBlock`]), (at each checkpoint, and whenever a block passes
-//! [`BLOCK_BYTES`]). A trajectory checkpoints by handing its rows together
+//! them in blocks (at each checkpoint, and whenever a block reaches
+//! [`BLOCK_ROWS`] rows or [`BLOCK_BYTES`]), which the writer turns into
+//! columns ([`RowBlock`]) and appends. A trajectory checkpoints by handing its rows together
 //! with its state to the writer and going on at once: the writer appends
 //! the rows, and at its next commit — as soon as its queue is empty —
 //! flushes the part file, syncs it to disk and only then writes the
