@@ -120,7 +120,7 @@ pub fn write(path: &Path, ckpt: &Checkpoint) -> Result<(), CheckpointError> {
     Ok(())
 }
 
-/// Write several checkpoints, each atomically as [`write`] does, with one
+/// Write several checkpoints, each atomically as [`write()`] does, with one
 /// directory sync per directory at the end (the writer's commit).
 pub fn write_batch(items: &[(PathBuf, Checkpoint)]) -> Result<(), CheckpointError> {
     let mut dirs: Vec<PathBuf> = Vec::new();

@@ -1725,7 +1725,7 @@ struct FaultInjector {
     remaining: Option<u64>,
 }
 
-/// The environment variable read by [`FaultInjector`].
+/// The environment variable read by the part writer's fault injector.
 pub const INJECT_WRITE_FAILURE: &str = "FLIPSWARM_INJECT_WRITE_FAILURE";
 
 impl FaultInjector {

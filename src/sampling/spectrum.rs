@@ -9,7 +9,7 @@
 //! (e²/4πε₀ = α ħ c), 1.0976 eV·Å² with CODATA 2018 constants, so the sum
 //! rule ∫ σ(E) dE = 1.0976 eV·Å² · (1/N) Σ f holds for any normalised g.
 //! The molar (decadic) absorption coefficient is ε = N_A σ / (1000 ln 10)
-//! with σ in cm², i.e. ε [M⁻¹ cm⁻¹] = σ [Å²] · 10⁻¹⁶ N_A / (1000 ln 10)
+//! with σ in cm², i.e. ε \[M⁻¹ cm⁻¹\] = σ \[Å²\] · 10⁻¹⁶ N_A / (1000 ln 10)
 //! (Beer–Lambert with decadic absorbance, common practice).
 //!
 //! Line shapes (half width at half maximum δ): Gaussian

@@ -8,10 +8,10 @@
 //!    (superposition of atomic densities at the first one);
 //! 2. the MRSF response for the tracked singlets ([`response`]);
 //! 3. the reference-character check against the previous geometry
-//!    ([`tracking`]): a change of the open-shell pair is a warning in the
+//!    ([`response::tracking`]): a change of the open-shell pair is a warning in the
 //!    diagnostics (the published limitation of triplet-reference methods);
 //! 4. when asked, the state overlaps with the previous geometry
-//!    ([`overlap::state_overlaps`], exact, raw phases), the gradients and
+//!    ([`response::overlap::state_overlaps`], exact, raw phases), the gradients and
 //!    the coupling vectors.
 //!
 //! # Gradients and coupling vectors

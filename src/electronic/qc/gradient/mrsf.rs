@@ -11,14 +11,14 @@
 //! Orbitals C (nbf × n_mo), partition C | O1 O2 | V as in the response
 //! (MO rows/columns in that order), occupations n^↑ (1 on C ∪ O) and n^↓
 //! (1 on C); ↑ is the spin with two more electrons (α for an Ms = +1
-//! reference). D^σ = C n^σ Cᵀ, F^σ = h + J[D] − c_x K[D^σ] + V^σ_xc (the
+//! reference). D^σ = C n^σ Cᵀ, F^σ = h + J\[D\] − c_x K\[D^σ\] + V^σ_xc (the
 //! AO Fock matrices of the SCF result), F̃^σ = Cᵀ F^σ C.
 //!
 //! A state is stored with its SF-frame amplitudes x⁺ (n_occ × n_vir, rows
 //! C ∪ O, columns O ∪ V). With u = √2 x⁺, z_OO = x⁺ restricted to the four
 //! OO entries divided by √2, z_n = √2 x⁺ without its OO entries and s = +1
 //! for singlets, −1 for triplets, the eigenvalue of the spin-adapted block
-//! (module docs of the response: σ_X = [A z″]_X + s κ C_X[z], σ_OO =
+//! (module docs of the response: σ_X = \[A z″\]_X + s κ C_X\[z\], σ_OO =
 //! √2 Wᵀ([A z″]_OO − A_OO z_OO), z″ = u) is the quadratic form
 //!
 //! ```text
@@ -65,8 +65,8 @@
 //! * Fock terms: 2 F̃^σ L^σ, plus through D^τ = C n^τ Cᵀ the response of
 //!   F^σ, 2 Ṽ^τ diag(n^τ) with V^τ = ∂/∂D^τ Σ_σ tr(F^σ Γ^σ) =
 //!   J[Γ^↑ + Γ^↓] − c_x K[Γ^τ] + Σ_σ f^{τσ}_xc[Γ^σ] (Γ^σ = C L^σ Cᵀ);
-//! * J(P, Q): J̃[Q](L_P + L_Pᵀ) + J̃[P](L_Q + L_Qᵀ);
-//! * X(P, Q): G = K[Q]ᵀ with L_P and G = K[P]ᵀ with L_Q.
+//! * J(P, Q): J̃\[Q\](L_P + L_Pᵀ) + J̃\[P\](L_Q + L_Qᵀ);
+//! * X(P, Q): G = K\[Q\]ᵀ with L_P and G = K\[P\]ᵀ with L_Q.
 //!
 //! Under C → C e^Z (Z antisymmetric), dE = Σ_{p<q} (Y − Yᵀ)_pq Z_pq; under
 //! the orthonormality connection C → C(1 − ½ S^R_MO), dE = −½ Σ Y_pq S^R_pq.
@@ -124,9 +124,9 @@
 //! (i) the XC kernel in Y (V^τ above gains Σ_σ f^{τσ}_xc[Γ^σ]; the kernel is
 //! symmetric, so this is the derivative of V^τ_xc along (Γ^↑, Γ^↓)) and in
 //! the Z-vector Hessian (along (Δ^↑, Δ^↓)), and (ii) the fixed-matrix
-//! geometric derivative of Σ_σ tr(Γ'^σ V^σ_xc[D]) (Γ' = Γ + Δ): basis-
+//! geometric derivative of Σ_σ tr(Γ'^σ V^σ_xc\[D\]) (Γ' = Γ + Δ): basis-
 //! function, kernel (through ∂ρ/∂R) and grid-weight terms. Since
-//! Σ_σ tr(Γ'^σ V^σ_xc[D]) = d/dt E_xc[D + tΓ'] at t = 0, (ii) is the
+//! Σ_σ tr(Γ'^σ V^σ_xc\[D\]) = d/dt E_xc\[D + tΓ'\] at t = 0, (ii) is the
 //! derivative along Γ' of the XC energy gradient at fixed densities, which
 //! [`super::xc::xc_gradient`] computes (with the grid-weight term). The
 //! exact exchange c_x and κ (both from the excited states; κ = c_x by

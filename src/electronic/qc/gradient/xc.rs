@@ -439,7 +439,7 @@ fn on_block(values: &AoValues, d: &DMatrix<f64>, gga: bool) -> OnBlock {
 /// t = 0 — the explicit XC term of response gradients. Differentiating the
 /// module docs' formula along Γ: the coefficients a, c change by
 /// δa^σ = w δ(∂f/∂ρ^σ), δc^σ = w δ(2 v_σσσ ∇ρ^σ + v_σαβ ∇ρ^σ̄) (second
-/// derivatives of the functional times δρ = ρ[Γ], δσ), the products T by
+/// derivatives of the functional times δρ = ρ\[Γ\], δσ), the products T by
 /// those of Γ, and the energy density of the weight term by
 /// δf = Σ_σ v_ρσ δρ^σ + Σ_x v_σx δσ_x, so
 /// δY = Y(δa, δc; D) + Y(a, c; Γ). AO values, their derivatives and the

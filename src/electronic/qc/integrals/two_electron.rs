@@ -1994,7 +1994,7 @@ pub struct DensityPairs {
 /// over the unique shell quartets (ij|kl), i ≥ j, k ≥ l, ij ≥ kl, each with
 /// its degeneracy, and dE/dR_K collects from every unique quartet the four
 /// centre derivatives (∂a b|cd), (a ∂b|cd), (ab|∂c d), (ab|c ∂d) of the
-/// functions on K: two [`raw_pair_derivative_quartet`] calls per quartet
+/// functions on K: two `raw_pair_derivative_quartet` calls per quartet
 /// (bra pair raised against the ket, ket pair raised against the bra), Γ
 /// built once; by translational invariance (the four derivatives sum to
 /// zero) one call suffices when either pair sits on one atom, and quartets

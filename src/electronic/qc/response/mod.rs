@@ -146,7 +146,7 @@
 //! warm-starts it from the previous geometry's states. [`tracking`] follows
 //! the character of the reference triplet between steps.
 //!
-//! The response needs its own [`JkEngine`](crate::electronic::qc::scf::fock::JkEngine)
+//! The response needs its own [`JkEngine`]
 //! (or any engine of the same geometry): four builds at set-up, then one
 //! exchange build per trial vector.
 //!

@@ -8,7 +8,7 @@
 //!
 //! The Coulomb/exchange builds can be incremental (design note: the
 //! incremental build is an explicit argument): in integral-direct mode,
-//! J/K[D] = J/K[D_prev] + J/K[D − D_prev], which lets the density screening
+//! J/K\[D\] = J/K\[D_prev\] + J/K\[D − D_prev\], which lets the density screening
 //! skip most quartets near convergence. Every `rebuild_every` builds, and
 //! whenever the driver asks, the build starts afresh to stop round-off from
 //! accumulating.

@@ -1,5 +1,5 @@
 //! Self-consistent field: RHF/UHF/ROHF and, with a Kohn–Sham
-//! [`FockBuilder`](fock::FockBuilder), RKS/UKS/ROKS.
+//! [`fock::FockBuilder`], RKS/UKS/ROKS.
 //!
 //! # The driver
 //! One function, [`run`], over replaceable steps (design note 4): the core
