@@ -395,19 +395,23 @@ fn output_overhead_once(cfg: &RunConfig, dir: &Path, checkpoint_every: u64) {
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
     if std::env::args().any(|a| a == "--push") {
-        // Recording one row on the trajectory's thread and turning it into
-        // columns on the writer's, against a plain copy of the same bytes.
-        use flipswarm::ensemble::record::{Diagnostics, PackedRows, RowBlock};
+        // Recording one row into a trajectory's block of columns (on the
+        // trajectory's thread), against a plain copy of the same bytes.
+        use flipswarm::ensemble::record::{Diagnostics, RowBlock};
         let (nd, ns, rows) = (60, 5, 1024u64);
         let q: Vec<f64> = (0..nd).map(|k| k as f64 * 0.1).collect();
         let e: Vec<f64> = (0..ns).map(|k| k as f64).collect();
         let a = vec![num_complex::Complex64::new(0.5, 0.1); ns];
         let d = Diagnostics::default();
-        let width = PackedRows::width_for(nd, ns);
-        let row: Vec<u64> = (0..width as u64).collect();
+        // The reference copies a row's worth of 8-byte words (the stored
+        // row: step, time, three energies, q, v, energies, amplitudes and
+        // <S²> in 8-byte values, the active state and two counts in 4).
+        let words = 8 + 2 * nd + 4 * ns;
+        let bytes = 8 * (5 + 2 * nd + 4 * ns) + 4 * 3;
+        let row: Vec<u64> = (0..words as u64).collect();
         let per_row = |t: Instant| t.elapsed().as_secs_f64() / (1000 * rows) as f64 * 1e9;
         for _ in 0..3 {
-            let mut copy = Vec::with_capacity(width * rows as usize);
+            let mut copy = Vec::with_capacity(words * rows as usize);
             let t = Instant::now();
             for _ in 0..1000 {
                 copy.clear();
@@ -416,27 +420,19 @@ fn main() {
                 }
             }
             let reference = per_row(t);
-            let mut p = PackedRows::with_capacity(nd, ns, rows as usize);
+            let mut b = RowBlock::with_capacity(nd, ns, rows as usize);
             let t = Instant::now();
             for r in 0..1000 {
-                p.clear();
+                b.clear();
                 for k in 0..rows {
-                    p.push(r * rows + k, 1.0, &q, &q, &e, 1, &a, 0.5, 0.25, &d);
+                    b.push(r * rows + k, 1.0, &q, &q, &e, 1, &a, 0.5, 0.25, &d);
                 }
             }
             let push = per_row(t);
-            let mut columns = RowBlock::default();
-            let t = Instant::now();
-            for _ in 0..1000 {
-                p.unpack_into(&mut columns)
-                    .expect("rows of the block's widths");
-            }
-            let unpack = per_row(t);
             println!(
-                "one row of 60 coordinates x 5 states ({} bytes): record {push:.1} ns, into columns {unpack:.1} ns | reference (copy of the bytes) {reference:.1} ns | ratios {:.2}, {:.2}",
-                8 * width,
-                push / reference,
-                unpack / reference
+                "one row of 60 coordinates x 5 states ({} bytes) into a block of columns: {push:.1} ns | reference (copy of the bytes) {reference:.1} ns | ratio {:.2}",
+                bytes,
+                push / reference
             );
         }
         return;
@@ -483,7 +479,7 @@ fn main() {
         output_overhead(name, &default20, 200.0, 0, dir, repeats);
     };
     if std::env::args().any(|a| a == "--overhead=pairs") {
-        // The default cadence, as medians and quartiles over nine rounds of
+        // The default cadence, as medians and quartiles over nine rounds (`--rounds=N`) of
         // back-to-back pairs (reference, with output) at two lengths, which
         // cancels slow drifts of the machine's speed: the overhead per step
         // (from the difference of the two lengths: what a long production
@@ -494,7 +490,11 @@ fn main() {
         let cfg_long = lvc20_config(n20, long, &dir, 0, 1);
         let (mut per_step, mut per_step_cpu, mut fixed, mut whole) =
             (Vec::new(), Vec::new(), Vec::new(), Vec::new());
-        for _ in 0..9 {
+        let rounds = std::env::args()
+            .find_map(|a| a.strip_prefix("--rounds=").and_then(|n| n.parse().ok()))
+            .unwrap_or(9usize)
+            .max(3);
+        for _ in 0..rounds {
             let (ps, ws, _) = overhead_pair(&cfg_short, &dir);
             let (pl, wl, _) = overhead_pair(&cfg_long, &dir);
             let marginal = (wl[0] - ws[0]) / (pl[0] - ps[0]);
@@ -505,12 +505,13 @@ fn main() {
         }
         let quartiles = |mut v: Vec<f64>| {
             v.sort_by(f64::total_cmp);
-            [v[2], v[4], v[6]].map(|r| 100.0 * (r - 1.0))
+            let n = v.len() - 1;
+            [v[n / 4], median(v.clone()), v[(3 * n).div_ceil(4)]].map(|r| 100.0 * (r - 1.0))
         };
         let [lo, mid, hi] = quartiles(per_step);
         let [wlo, wmid, whi] = quartiles(whole);
         println!(
-            "{:<34} row/1 steps, default checkpoints, 9 rounds of back-to-back pairs ({short} and {long} fs): per step overhead wall median {mid:>5.1} % (quartiles {lo:.1} … {hi:.1} %), CPU median {:>5.1} % (goal < 2 %) | fixed cost per run {:.0} ms wall | whole {long} fs run {wmid:.1} % (quartiles {wlo:.1} … {whi:.1} %)",
+            "{:<34} row/1 steps, default checkpoints, {rounds} rounds of back-to-back pairs ({short} and {long} fs): per step overhead wall median {mid:>5.1} % (quartiles {lo:.1} … {hi:.1} %), CPU median {:>5.1} % (goal < 2 %) | fixed cost per run {:.0} ms wall | whole {long} fs run {wmid:.1} % (quartiles {wlo:.1} … {whi:.1} %)",
             "output + checkpoints (LVC 20 atoms x 5 states)",
             100.0 * (median(per_step_cpu) - 1.0),
             1e3 * median(fixed),

@@ -231,6 +231,44 @@ impl RowBlock {
         (self.n_dof, self.n_states) = (n_dof, n_states);
     }
 
+    /// Append one row given by its parts (the widths are checked by the writer).
+    #[allow(clippy::too_many_arguments)]
+    pub fn push(
+        &mut self,
+        step: u64,
+        time: f64,
+        q: &[f64],
+        v: &[f64],
+        energies: &[f64],
+        active: u32,
+        amplitudes: &[Complex64],
+        kinetic: f64,
+        potential: f64,
+        diagnostics: &Diagnostics,
+    ) {
+        self.step.push(step);
+        self.time.push(time);
+        self.q.extend_from_slice(q);
+        self.v.extend_from_slice(v);
+        self.energies.extend_from_slice(energies);
+        self.active.push(active);
+        self.amplitudes.extend_from_slice(amplitudes);
+        self.kinetic.push(kinetic);
+        self.potential.push(potential);
+        self.total.push(kinetic + potential);
+        let count = |c: Option<u32>| c.map_or(-1, |c| i32::try_from(c).unwrap_or(i32::MAX));
+        self.iterations.push(count(diagnostics.iterations));
+        self.response_iterations
+            .push(count(diagnostics.response_iterations));
+        let start = self.spin_squared.len();
+        self.spin_squared.resize(start + self.n_states, f64::NAN);
+        if let Some(s) = &diagnostics.spin_squared {
+            for (dst, src) in self.spin_squared[start..].iter_mut().zip(s) {
+                *dst = *src;
+            }
+        }
+    }
+
     /// Append a stored row and its diagnostics.
     pub fn push_row(&mut self, r: &StepRow, d: &RowDiagnostics) {
         self.step.push(r.step);
@@ -273,310 +311,5 @@ impl RowBlock {
             })
             .collect();
         (rows, diags)
-    }
-}
-
-/// Rows of one trajectory as its thread gathers them: one row-major buffer
-/// of 8-byte words, a row's fields side by side, so that recording a step
-/// is one sequential run of stores (about 30 ns for 20 atoms and 5 states,
-/// `cargo bench --bench engine -- --push`), and the transposition into
-/// columns ([`PackedRows::unpack_into`], about 50 ns a row) is done by the
-/// writer thread, off the trajectory's critical path.
-///
-/// A row is `[step, time, kinetic, potential, total, active, iterations,
-/// response iterations, q (n_dof), v (n_dof), energies (n_states),
-/// amplitudes (re, im per state), <S²> (n_states)]`, floating-point values
-/// by their bits, the iteration counts as sign-extended `i32` (−1 = none).
-#[derive(Clone, Debug, Default, PartialEq)]
-pub struct PackedRows {
-    /// Coordinates per row.
-    pub n_dof: usize,
-    /// States per row.
-    pub n_states: usize,
-    words: Vec<u64>,
-    /// The first row given with widths that do not fit the block, if any
-    /// (such rows are not stored; unpacking then fails).
-    malformed: Option<String>,
-}
-
-impl PackedRows {
-    /// Words of the fixed part of a row.
-    const HEAD: usize = 8;
-
-    /// Words per row for `n_dof` coordinates and `n_states` states.
-    pub fn width_for(n_dof: usize, n_states: usize) -> usize {
-        Self::HEAD + 2 * n_dof + 4 * n_states
-    }
-
-    /// An empty block with room for `rows` rows.
-    pub fn with_capacity(n_dof: usize, n_states: usize, rows: usize) -> Self {
-        Self {
-            n_dof,
-            n_states,
-            words: Vec::with_capacity(rows * Self::width_for(n_dof, n_states)),
-            malformed: None,
-        }
-    }
-
-    /// Words per row.
-    pub fn width(&self) -> usize {
-        Self::width_for(self.n_dof, self.n_states)
-    }
-
-    /// Rows held.
-    pub fn len(&self) -> usize {
-        self.words.len() / self.width()
-    }
-
-    /// No rows.
-    pub fn is_empty(&self) -> bool {
-        self.words.is_empty()
-    }
-
-    /// Rows that fit without growing the buffer.
-    pub fn capacity(&self) -> usize {
-        self.words.capacity() / self.width()
-    }
-
-    /// Forget the rows, keep the buffer.
-    pub fn clear(&mut self) {
-        self.words.clear();
-        self.malformed = None;
-    }
-
-    /// Append one row given by its parts; <S²> values missing from the
-    /// diagnostics are stored as NaN.
-    #[allow(clippy::too_many_arguments)]
-    pub fn push(
-        &mut self,
-        step: u64,
-        time: f64,
-        q: &[f64],
-        v: &[f64],
-        energies: &[f64],
-        active: u32,
-        amplitudes: &[Complex64],
-        kinetic: f64,
-        potential: f64,
-        diagnostics: &Diagnostics,
-    ) {
-        let (nd, ns) = (self.n_dof, self.n_states);
-        if q.len() != nd || v.len() != nd || energies.len() != ns || amplitudes.len() != ns {
-            self.malformed.get_or_insert_with(|| {
-                format!(
-                    "row of step {step}: {} coordinates, {} velocities, {} energies and {} amplitudes for n_dof = {nd}, n_states = {ns}",
-                    q.len(),
-                    v.len(),
-                    energies.len(),
-                    amplitudes.len()
-                )
-            });
-            return;
-        }
-        let count = |c: Option<u32>| {
-            let c = c.map_or(-1, |c| i32::try_from(c).unwrap_or(i32::MAX));
-            i64::from(c) as u64
-        };
-        let w = &mut self.words;
-        w.reserve(Self::HEAD + 2 * nd + 4 * ns);
-        w.extend_from_slice(&[
-            step,
-            time.to_bits(),
-            kinetic.to_bits(),
-            potential.to_bits(),
-            (kinetic + potential).to_bits(),
-            u64::from(active),
-            count(diagnostics.iterations),
-            count(diagnostics.response_iterations),
-        ]);
-        w.extend(q.iter().map(|x| x.to_bits()));
-        w.extend(v.iter().map(|x| x.to_bits()));
-        w.extend(energies.iter().map(|x| x.to_bits()));
-        for a in amplitudes {
-            w.extend_from_slice(&[a.re.to_bits(), a.im.to_bits()]);
-        }
-        let given = diagnostics.spin_squared.as_deref().unwrap_or(&[]);
-        let given = &given[..given.len().min(ns)];
-        w.extend(given.iter().map(|x| x.to_bits()));
-        w.extend(std::iter::repeat_n(f64::NAN.to_bits(), ns - given.len()));
-    }
-
-    /// The rows as columns, in `block` (emptied first, its buffers reused).
-    pub fn unpack_into(&self, block: &mut RowBlock) -> Result<(), String> {
-        if let Some(m) = &self.malformed {
-            return Err(m.clone());
-        }
-        let (nd, ns) = (self.n_dof, self.n_states);
-        block.clear();
-        (block.n_dof, block.n_states) = (nd, ns);
-        let f = f64::from_bits;
-        let int = |w: u64| w as i64 as i32;
-        for row in self.words.chunks_exact(self.width()) {
-            let (head, rest) = row.split_at(Self::HEAD);
-            let (q, rest) = rest.split_at(nd);
-            let (v, rest) = rest.split_at(nd);
-            let (energies, rest) = rest.split_at(ns);
-            let (amplitudes, spin) = rest.split_at(2 * ns);
-            block.step.push(head[0]);
-            block.time.push(f(head[1]));
-            block.kinetic.push(f(head[2]));
-            block.potential.push(f(head[3]));
-            block.total.push(f(head[4]));
-            block
-                .active
-                .push(u32::try_from(head[5]).unwrap_or(u32::MAX));
-            block.iterations.push(int(head[6]));
-            block.response_iterations.push(int(head[7]));
-            block.q.extend(q.iter().map(|&x| f(x)));
-            block.v.extend(v.iter().map(|&x| f(x)));
-            block.energies.extend(energies.iter().map(|&x| f(x)));
-            block.amplitudes.extend(
-                amplitudes
-                    .chunks_exact(2)
-                    .map(|c| Complex64::new(f(c[0]), f(c[1]))),
-            );
-            block.spin_squared.extend(spin.iter().map(|&x| f(x)));
-        }
-        Ok(())
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    /// A row of `n_dof` coordinates and `n_states` states whose every value
-    /// differs, with the given diagnostics.
-    fn parts(
-        step: u64,
-        n_dof: usize,
-        n_states: usize,
-    ) -> (Vec<f64>, Vec<f64>, Vec<f64>, Vec<Complex64>) {
-        let x = step as f64;
-        let q = (0..n_dof).map(|k| x + 0.25 * k as f64).collect();
-        let v = (0..n_dof).map(|k| -x - 0.5 * k as f64).collect();
-        let e = (0..n_states).map(|k| 1e-3 * x - k as f64).collect();
-        let a = (0..n_states)
-            .map(|k| Complex64::new(0.1 * k as f64, -x))
-            .collect();
-        (q, v, e, a)
-    }
-
-    // Round trip (common practice: a transposition must lose nothing): rows
-    // packed and unpacked equal, bit for bit, the same rows put into the
-    // columns as stored rows and stored diagnostics — signed zeros, NaN
-    // payloads, missing and partial diagnostics and the largest counts
-    // included.
-    #[test]
-    fn packed_rows_unpack_to_the_columns_bit_for_bit() {
-        let (nd, ns) = (7, 3);
-        let diagnostics = [
-            Diagnostics::default(),
-            Diagnostics {
-                iterations: Some(12),
-                response_iterations: Some(u32::MAX),
-                spin_squared: Some(vec![0.0, 2.0, -0.0]),
-                warnings: vec!["ignored here".into()],
-            },
-            Diagnostics {
-                iterations: None,
-                response_iterations: Some(3),
-                spin_squared: Some(vec![f64::from_bits(0x7ff8_0000_dead_beef)]),
-                warnings: vec![],
-            },
-        ];
-        let mut packed = PackedRows::with_capacity(nd, ns, 2);
-        let mut columns = RowBlock::new(nd, ns);
-        for step in 0..9u64 {
-            let (mut q, v, e, a) = parts(step, nd, ns);
-            q[0] = if step % 2 == 0 {
-                -0.0
-            } else {
-                f64::NEG_INFINITY
-            };
-            let d = &diagnostics[step as usize % 3];
-            let kinetic = 0.5 + step as f64;
-            packed.push(
-                step,
-                0.5 * step as f64,
-                &q,
-                &v,
-                &e,
-                (step % 3) as u32,
-                &a,
-                kinetic,
-                -2.0,
-                d,
-            );
-            let row = StepRow {
-                step,
-                time: 0.5 * step as f64,
-                q,
-                v,
-                energies: e,
-                active: (step % 3) as u32,
-                amplitudes: a,
-                kinetic,
-                potential: -2.0,
-                total: kinetic - 2.0,
-            };
-            columns.push_row(&row, &RowDiagnostics::from_backend(d, ns));
-        }
-        assert_eq!(packed.len(), 9);
-        assert!(packed.capacity() >= 9);
-        let mut out = RowBlock::new(1, 1);
-        out.step.push(99); // emptied first
-        packed.unpack_into(&mut out).unwrap();
-        let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
-        assert_eq!((out.n_dof, out.n_states, out.len()), (nd, ns, 9));
-        assert_eq!(out.step, columns.step);
-        assert_eq!(out.active, columns.active);
-        assert_eq!(out.iterations, columns.iterations);
-        assert_eq!(out.response_iterations, columns.response_iterations);
-        assert_eq!(out.iterations[1], 12);
-        assert_eq!(out.iterations[0], -1);
-        assert_eq!(out.response_iterations[1], i32::MAX);
-        for (got, want) in [
-            (&out.time, &columns.time),
-            (&out.q, &columns.q),
-            (&out.v, &columns.v),
-            (&out.energies, &columns.energies),
-            (&out.kinetic, &columns.kinetic),
-            (&out.potential, &columns.potential),
-            (&out.total, &columns.total),
-            (&out.spin_squared, &columns.spin_squared),
-        ] {
-            assert_eq!(bits(got), bits(want));
-        }
-        assert_eq!(out.amplitudes, columns.amplitudes);
-        // The partial <S²> list: one value given, NaN for the other two.
-        assert_eq!(out.spin_squared[6].to_bits(), 0x7ff8_0000_dead_beef);
-        assert!(out.spin_squared[7].is_nan() && out.spin_squared[8].is_nan());
-        assert_eq!(out.spin_squared[5].to_bits(), (-0.0f64).to_bits());
-        // Cleared blocks keep their buffer and unpack to nothing.
-        packed.clear();
-        assert!(packed.is_empty() && packed.capacity() >= 9);
-        packed.unpack_into(&mut out).unwrap();
-        assert!(out.is_empty());
-    }
-
-    // A row whose widths do not fit the block is not stored and makes the
-    // block fail to unpack, naming the step and the widths (common practice:
-    // never write a row shifted into its neighbours' columns).
-    #[test]
-    fn packed_rows_refuse_rows_of_the_wrong_width() {
-        let (nd, ns) = (4, 2);
-        let mut packed = PackedRows::with_capacity(nd, ns, 4);
-        let (q, v, e, a) = parts(1, nd, ns);
-        let d = Diagnostics::default();
-        packed.push(1, 0.0, &q, &v, &e, 0, &a, 0.0, 0.0, &d);
-        packed.push(2, 0.0, &q[..3], &v, &e, 0, &a, 0.0, 0.0, &d);
-        packed.push(3, 0.0, &q, &v, &e[..1], 0, &a, 0.0, 0.0, &d);
-        assert_eq!(packed.len(), 1);
-        let err = packed.unpack_into(&mut RowBlock::default()).unwrap_err();
-        assert!(
-            err.contains("step 2") && err.contains("3 coordinates") && err.contains("n_dof = 4"),
-            "{err}"
-        );
     }
 }

@@ -9,10 +9,9 @@
 //! ```
 //!
 //! One writer thread owns the part file; the trajectories, run in parallel
-//! by rayon, buffer their rows ([`PackedRows`], one row-major buffer) and send
-//! them in blocks (at each checkpoint, and whenever a block reaches
-//! [`BLOCK_ROWS`] rows or [`BLOCK_BYTES`]), which the writer turns into
-//! columns ([`RowBlock`]) and appends. A trajectory checkpoints by handing its rows together
+//! by rayon, buffer their rows in columns ([`RowBlock`]) and send them in
+//! blocks (at each checkpoint, and whenever a block passes
+//! [`BLOCK_BYTES`]). A trajectory checkpoints by handing its rows together
 //! with its state to the writer and going on at once: the writer appends
 //! the rows, and at its next commit — as soon as its queue is empty —
 //! flushes the part file, syncs it to disk and only then writes the
@@ -35,7 +34,7 @@ use rayon::prelude::*;
 
 use super::checkpoint::{self, with_suffix, Checkpoint, Source};
 use super::h5::{now_rfc3339, Counts, EnsembleError, PartReader, PartWriter, WriterState};
-use super::record::{PackedRows, PartMeta, RowBlock, TrajectoryHeader, WarningRow};
+use super::record::{PartMeta, RowBlock, TrajectoryHeader, WarningRow};
 use crate::config::RunConfig;
 use crate::dynamics::{
     Flow, Hop, Observer, RecordKind, Status, StepRecord, Trajectory, TrajectoryState,
@@ -123,7 +122,7 @@ struct PendingCheckpoint {
 /// What a trajectory hands the writer in one message.
 struct Batch {
     index: usize,
-    rows: PackedRows,
+    rows: RowBlock,
     hops: Vec<Hop>,
     warnings: Vec<WarningRow>,
 }
@@ -152,7 +151,7 @@ enum ToWriter {
 
 /// Emptied row blocks, handed back by the writer so that trajectories
 /// reuse their buffers (no allocation and page faults per block).
-type BlockPool = Arc<Mutex<Vec<PackedRows>>>;
+type BlockPool = Arc<Mutex<Vec<RowBlock>>>;
 
 /// Blocks kept in the pool at most.
 const POOL_BLOCKS: usize = 64;
@@ -160,8 +159,6 @@ const POOL_BLOCKS: usize = 64;
 /// The writer thread's state.
 struct WriterLoop {
     pool: BlockPool,
-    /// A block in columns, as the part file takes it (buffers reused).
-    columns: RowBlock,
     w: PartWriter,
     /// Rows, hops and warnings in the file per trajectory (after the appends so far).
     counts: HashMap<usize, Counts>,
@@ -184,11 +181,8 @@ impl WriterLoop {
         };
         self.dirty = true;
         if !(b.rows.is_empty() && b.hops.is_empty() && b.warnings.is_empty()) {
-            b.rows
-                .unpack_into(&mut self.columns)
-                .map_err(|e| format!("trajectory {}: {e}", b.index))?;
             self.w
-                .append_block(b.index, &self.columns, &b.hops, &b.warnings)
+                .append_block(b.index, &b.rows, &b.hops, &b.warnings)
                 .map_err(|e| e.to_string())?;
         }
         let c = Counts {
@@ -201,8 +195,8 @@ impl WriterLoop {
     }
 
     /// Return a written block's buffers to the pool.
-    fn recycle(&self, mut rows: PackedRows) {
-        if rows.capacity() == 0 {
+    fn recycle(&self, mut rows: RowBlock) {
+        if rows.q.capacity() == 0 {
             return;
         }
         rows.clear();
@@ -350,7 +344,6 @@ fn writer_loop(
 ) -> Result<(), String> {
     let mut st = WriterLoop {
         pool,
-        columns: RowBlock::default(),
         w,
         counts: HashMap::new(),
         pending: BTreeMap::new(),
@@ -470,7 +463,7 @@ struct Recorder<'a> {
     last_checkpoint: Instant,
     last_checkpoint_step: u64,
     clock: ClockStride,
-    rows: PackedRows,
+    rows: RowBlock,
     hops: Vec<Hop>,
     warnings: Vec<WarningRow>,
     last_recorded_step: Option<u64>,
@@ -508,7 +501,7 @@ impl Recorder<'_> {
         let recycled = self.pool.lock().unwrap_or_else(|p| p.into_inner()).pop();
         let fresh = match recycled {
             Some(b) if (b.n_dof, b.n_states) == (self.rows.n_dof, self.rows.n_states) => b,
-            _ => PackedRows::with_capacity(
+            _ => RowBlock::with_capacity(
                 self.rows.n_dof,
                 self.rows.n_states,
                 self.rows.len().clamp(16, BLOCK_ROWS),
@@ -676,10 +669,12 @@ impl Session<'_> {
             // growth (reallocation, copying, page faults) while recording.
             rows: match self.pool.lock().unwrap_or_else(|p| p.into_inner()).pop() {
                 Some(b) if (b.n_dof, b.n_states) == (n_dof, n_states) => b,
-                _ => PackedRows::with_capacity(
+                _ => RowBlock::with_capacity(
                     n_dof,
                     n_states,
-                    BLOCK_ROWS.min(BLOCK_BYTES / (8 * PackedRows::width_for(n_dof, n_states))),
+                    BLOCK_ROWS.min(
+                        BLOCK_BYTES / (8 * (2 * n_dof + 2 * n_states + 6) + 16 * n_states).max(1),
+                    ),
                 ),
             },
             hops: Vec::new(),
@@ -690,7 +685,7 @@ impl Session<'_> {
             checkpoint_path: path.clone(),
             stop: self.stop,
             stopped: false,
-            row_bytes: 8 * PackedRows::width_for(n_dof, n_states),
+            row_bytes: 8 * (2 * n_dof + 2 * n_states + 6) + 16 * n_states,
             pool: self.pool.clone(),
         };
         let masses = backend.info().masses;
@@ -724,7 +719,7 @@ impl Session<'_> {
                         };
                         let batch = Batch {
                             index,
-                            rows: PackedRows::with_capacity(n_dof, n_states, 0),
+                            rows: RowBlock::new(n_dof, n_states),
                             hops: vec![],
                             warnings: vec![],
                         };
