@@ -403,15 +403,14 @@ fn main() {
         let e: Vec<f64> = (0..ns).map(|k| k as f64).collect();
         let a = vec![num_complex::Complex64::new(0.5, 0.1); ns];
         let d = Diagnostics::default();
-        // The reference copies a row's worth of 8-byte words (the stored
-        // row: step, time, three energies, q, v, energies, amplitudes and
-        // <S²> in 8-byte values, the active state and two counts in 4).
-        let words = 8 + 2 * nd + 4 * ns;
+        // The bytes of one stored row: step, time, three energies, q, v,
+        // energies, amplitudes and <S²> in 8-byte values, the active state
+        // and two counts in 4.
         let bytes = 8 * (5 + 2 * nd + 4 * ns) + 4 * 3;
-        let row: Vec<u64> = (0..words as u64).collect();
+        let row: Vec<u8> = (0..bytes).map(|k| k as u8).collect();
         let per_row = |t: Instant| t.elapsed().as_secs_f64() / (1000 * rows) as f64 * 1e9;
         for _ in 0..3 {
-            let mut copy = Vec::with_capacity(words * rows as usize);
+            let mut copy = Vec::with_capacity(bytes * rows as usize);
             let t = Instant::now();
             for _ in 0..1000 {
                 copy.clear();
@@ -479,9 +478,10 @@ fn main() {
         output_overhead(name, &default20, 200.0, 0, dir, repeats);
     };
     if std::env::args().any(|a| a == "--overhead=pairs") {
-        // The default cadence, as medians and quartiles over nine rounds (`--rounds=N`) of
-        // back-to-back pairs (reference, with output) at two lengths, which
-        // cancels slow drifts of the machine's speed: the overhead per step
+        // The default cadence, as medians and quartiles over nine rounds
+        // (`--rounds=N`) of back-to-back pairs (reference, with output) at
+        // two lengths, which cancels slow drifts of the machine's speed:
+        // the overhead per step
         // (from the difference of the two lengths: what a long production
         // run pays), the fixed cost per run (file creation, final commit and
         // close) and the whole overhead of the longer run.
