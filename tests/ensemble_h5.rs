@@ -829,6 +829,16 @@ fn every_dataset_has_units_and_description() {
             !units.is_empty() && description.len() > 10,
             "{name}: units {units:?}, description {description:?}"
         );
+        // Every trajectory group is a copy of one built once per writer:
+        // each copy keeps the chunking and the checksum filter.
+        if name.starts_with("/trajectories/") && !name.ends_with("warnings/text") {
+            assert!(ds.chunk().is_some(), "{name}: not chunked");
+            assert!(
+                ds.filters().contains(&hdf5::filters::Filter::Fletcher32),
+                "{name}: no Fletcher-32 checksum ({:?})",
+                ds.filters()
+            );
+        }
         seen.push((name, units));
     });
     // 2 at the root; per trajectory 2 initial + 10 per-step + 3 diagnostics

@@ -267,13 +267,30 @@ fn fuzz_target_file(path: &Path) {
 /// (the C library crashes): `inspect` and `merge` now read a file in a
 /// child process first and report the crash as a damaged file — exit code
 /// 4 (inspect) or 2 (merge), a message naming the file, no output written.
+/// The writer's layout moves the heap between versions, so the test finds
+/// the heap object of `config_toml` by its text and flips, xor 0xab, the
+/// second byte of its 8-byte size field (16-byte object header: index,
+/// reference count, reserved, size; HDF5 file format specification,
+/// "Global Heap"), which makes HDF5 1.10 segfault in the same place.
 #[test]
 fn fuzz_crash_global_heap_flip_is_reported_not_crashed() {
     let bin = env!("CARGO_BIN_EXE_flipswarm");
     let dir = scratch("heapflip");
     let good = dir.join("good.h5");
     fuzz_target_file(&good);
-    let bad = flipped_copy(&good, &dir, 0x2101_0400, 0xab);
+    let bytes = std::fs::read(&good).unwrap();
+    let text = b"title = \"fuzz\"\n";
+    let at = bytes
+        .windows(text.len())
+        .position(|w| w == text)
+        .expect("config_toml is stored in the global heap");
+    let size = u64::from_le_bytes(bytes[at - 8..at].try_into().unwrap());
+    assert_eq!(
+        size,
+        text.len() as u64,
+        "the heap object's size field precedes the text"
+    );
+    let bad = flipped_copy(&good, &dir, (at - 8 + 1) as u32, 0xab);
     let out = std::process::Command::new(bin)
         .args(["inspect", bad.to_str().unwrap()])
         .output()

@@ -56,6 +56,23 @@ fn saved_run_summary_equals_in_memory_summary() {
         assert_eq!(s[key], memory[key], "summary field {key} differs");
     }
     assert_eq!(saved["finished"], 120);
+    // The summary reads only each trajectory's course (steps, active
+    // states, amplitudes, total energies, hops): the same outcome, field for
+    // field, as from the whole trajectory.
+    let r = flipswarm::ensemble::h5::PartReader::open(&out.join("part-0000-of-0001.h5")).unwrap();
+    let mut hops = 0;
+    for i in r.trajectory_indices() {
+        let whole = flipswarm::swarm::Outcome::from_data(&r.read(i).unwrap());
+        let course = flipswarm::swarm::Outcome::from_course(&r.read_course(i).unwrap());
+        assert_eq!(course, whole, "trajectory {i}");
+        assert!(
+            whole.series.len() > 100,
+            "trajectory {i}: {} rows",
+            whole.series.len()
+        );
+        hops += whole.hops.len();
+    }
+    assert!(hops > 0, "the comparison covers hop attempts");
     let _ = std::fs::remove_dir_all(&dir);
 }
 

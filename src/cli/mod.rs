@@ -214,9 +214,9 @@ fn read_outcomes(
     let reader = crate::ensemble::h5::PartReader::open(part)?;
     let mut out = Vec::new();
     for i in reader.trajectory_indices() {
-        let data = reader.read(i)?;
-        if !matches!(data.status, crate::dynamics::Status::Running) {
-            out.push(crate::swarm::Outcome::from_data(&data));
+        let course = reader.read_course(i)?;
+        if !matches!(course.status, crate::dynamics::Status::Running) {
+            out.push(crate::swarm::Outcome::from_course(&course));
         }
     }
     Ok(out)

@@ -79,6 +79,14 @@
 //! damaged data block is reported instead of read; the file is written with
 //! the HDF5 1.8 object format (checksummed metadata), readable by HDF5 ≥ 1.8.
 //!
+//! A writer builds one empty trajectory group (`create_trajectory`, with all
+//! its datasets and attributes) in an in-memory HDF5 file the first time it
+//! begins a trajectory, and copies it (H5Ocopy) for every new trajectory,
+//! then writes the header (index, seed, initial state, initial positions and
+//! velocities) into the copy: about half the writer's work for a trajectory
+//! of a few thousand rows went into creating two dozen datasets and fifty
+//! attributes one by one. The copy is the layout above, object for object.
+//!
 //! # Statuses
 //! [`Status::Running`] is stored as "running", [`Status::Finished`] as
 //! "finished" plus `end_reason`, [`Status::Failed`] as "failed" plus
@@ -347,6 +355,28 @@ pub struct TrajectoryData {
     pub status: Status,
     /// The stored status word.
     pub phase: Phase,
+}
+
+/// What a run's summary needs of a trajectory, without its coordinates,
+/// velocities and diagnostics (the bulk of the file).
+#[derive(Clone, Debug, PartialEq)]
+pub struct TrajectoryCourse {
+    /// Index in the ensemble.
+    pub index: usize,
+    /// The state it started on.
+    pub initial_state: usize,
+    /// Status ("stopped" and "pending" read as `Running`).
+    pub status: Status,
+    /// Step number of each row.
+    pub step: Vec<u64>,
+    /// Active state of each row.
+    pub active: Vec<u32>,
+    /// Amplitudes, row-major (rows × states).
+    pub amplitudes: Vec<Complex64>,
+    /// Total energy of each row (hartree).
+    pub total: Vec<f64>,
+    /// Hop attempts.
+    pub hops: Vec<Hop>,
 }
 
 /// Rows, hop attempts and warnings of a trajectory in its file.
@@ -634,16 +664,13 @@ fn put_attr<T: H5Type>(
     value: &T,
 ) -> Result<(), EnsembleError> {
     let what = format!("writing attribute `{name}`");
-    if loc
-        .attr_names()
-        .map_err(cx.h5(object, &what))?
-        .iter()
-        .any(|n| n == name)
-    {
-        let attr = loc.attr(name).map_err(cx.h5(object, &what))?;
+    // Opening the attribute (an error when it is absent) costs one lookup;
+    // listing the object's attributes would cost one per attribute.
+    if let Ok(attr) = loc.attr(name) {
         if attr.dtype().map_err(cx.h5(object, &what))?.is::<T>() {
             return attr.write_scalar(value).map_err(cx.h5(object, &what));
         }
+        drop(attr);
         loc.delete_attr(name).map_err(cx.h5(object, &what))?;
     }
     loc.new_attr::<T>()
@@ -1199,6 +1226,17 @@ pub struct PartWriter {
     /// so that their chunk caches hold the last, partly filled chunk (no
     /// read-back and re-checksum of it at the next append).
     open: std::collections::HashMap<usize, Vec<Dataset>>,
+    /// An empty trajectory group, built once in an in-memory file and
+    /// copied for every new trajectory (one H5Ocopy instead of two dozen
+    /// dataset and fifty attribute creations).
+    /// (None: not built yet; Some(None): not copyable, see
+    /// `compact_attributes`.)
+    template: Option<Option<(File, Group)>>,
+    /// What the file holds of each trajectory written to in this session
+    /// (rows, hop attempts, warnings), so that an append does not open
+    /// three datasets to count them; forgotten whenever anything but a
+    /// successful append changes a trajectory.
+    counts: std::collections::HashMap<usize, Counts>,
 }
 
 impl PartWriter {
@@ -1231,6 +1269,8 @@ impl PartWriter {
             meta: meta.clone(),
             fault: FaultInjector::from_env(),
             open: Default::default(),
+            template: None,
+            counts: Default::default(),
         };
         writer.file.flush().map_err(cx.h5("/", "flushing"))?;
         Ok(writer)
@@ -1257,6 +1297,8 @@ impl PartWriter {
                 meta: meta.clone(),
                 fault: FaultInjector::from_env(),
                 open: Default::default(),
+                template: None,
+                counts: Default::default(),
             },
             meta,
         ))
@@ -1291,7 +1333,7 @@ impl PartWriter {
     /// group if absent and sets its status to "running". An existing group
     /// must have the same header, bit for bit.
     pub fn begin(&mut self, header: &TrajectoryHeader) -> Result<(), EnsembleError> {
-        let cx = self.cx();
+        let cx = Ctx(&self.path);
         let object = group_path(header.index);
         if self.meta.trajectories.binary_search(&header.index).is_err() {
             return Err(cx.input(
@@ -1334,7 +1376,9 @@ impl PartWriter {
             }
             g
         } else {
-            create_trajectory(cx, &traj, header, self.meta.n_dof, self.meta.n_states)?
+            let g = copy_template(cx, &mut self.template, &self.meta, &traj, header)?;
+            self.counts.insert(header.index, Counts::default());
+            g
         };
         write_status(cx, &g, &object, &Status::Running, Phase::Running)
     }
@@ -1406,7 +1450,10 @@ impl PartWriter {
         check_block(cx, &object, block, n_dof, n_states)?;
         let hop_cols = hop_columns(cx, &object, hops, n_states)?;
         let g = self.group(index)?;
-        let c = self.all_counts(index)?;
+        let c = match self.counts.remove(&index) {
+            Some(c) => c,
+            None => self.all_counts(index)?,
+        };
         if !block.is_empty() {
             if !self.open.contains_key(&index) {
                 if self.open.len() >= MAX_OPEN_TRAJECTORIES {
@@ -1452,6 +1499,16 @@ impl PartWriter {
                 &(c.warnings + warnings.len() as u64),
             )?;
         }
+        // Only a complete append is remembered (an error above leaves the
+        // count to be read from the file again).
+        self.counts.insert(
+            index,
+            Counts {
+                rows: c.rows + block.len() as u64,
+                hops: c.hops + hops.len() as u64,
+                warnings: c.warnings + warnings.len() as u64,
+            },
+        );
         Ok(())
     }
 
@@ -1472,6 +1529,7 @@ impl PartWriter {
     /// Discards everything beyond `keep` (rows, hop attempts, warnings) of trajectory `index`.
     pub fn truncate_all(&mut self, index: usize, keep: Counts) -> Result<(), EnsembleError> {
         self.open.remove(&index);
+        self.counts.remove(&index);
         let cx = self.cx();
         let object = group_path(index);
         let g = self.group(index)?;
@@ -1520,6 +1578,7 @@ impl PartWriter {
     pub fn set_status(&mut self, index: usize, status: &Status) -> Result<(), EnsembleError> {
         if !matches!(status, Status::Running) {
             self.open.remove(&index);
+            self.counts.remove(&index);
         }
         let g = self.group(index)?;
         write_status(
@@ -1535,6 +1594,7 @@ impl PartWriter {
     /// back as `Status::Running` with [`Phase::Stopped`].
     pub fn mark_stopped(&mut self, index: usize) -> Result<(), EnsembleError> {
         self.open.remove(&index);
+        self.counts.remove(&index);
         let g = self.group(index)?;
         write_status(
             self.cx(),
@@ -1562,6 +1622,9 @@ impl PartWriter {
     /// Rows, hop attempts and warnings written for trajectory `index` (the
     /// lengths of `time`, `hops/step` and `warnings/step`).
     pub fn all_counts(&self, index: usize) -> Result<Counts, EnsembleError> {
+        if let Some(c) = self.counts.get(&index) {
+            return Ok(*c);
+        }
         let (rows, hops) = self.counts(index)?;
         let cx = self.cx();
         let object = group_path(index);
@@ -1678,6 +1741,81 @@ fn create_trajectory(
     put_str(cx, &wg, &wobject, "description", "Non-fatal warnings of the back end, one row per warning, from every step (not only the recorded ones).")?;
     create_series::<u64>(cx, &wg, &wobject, &WARN_STEP, 1, WARN_CHUNK_ROWS)?;
     create_series::<VarLenUnicode>(cx, &wg, &wobject, &WARN_TEXT, 1, WARN_CHUNK_ROWS)?;
+    Ok(g)
+}
+
+/// HDF5 keeps up to 8 attributes per object in its header ("compact"
+/// storage, the default phase change of the 1.8 format) and more in a
+/// separate B-tree ("dense"). HDF5 1.10.8's H5Ocopy crashes (a null
+/// conversion function in `H5T__conv_vlen`) copying dense variable-length
+/// string attributes from one file to another — seen with ten attributes on
+/// the trajectory group — so a template with any object beyond 8 is not
+/// copied: every trajectory is then created one object at a time.
+fn compact_attributes(g: &Group) -> bool {
+    const MAX_COMPACT: usize = 8;
+    let few = |loc: &Location| loc.attr_names().is_ok_and(|n| n.len() <= MAX_COMPACT);
+    few(g)
+        && g.datasets().is_ok_and(|d| d.iter().all(|d| few(d)))
+        && g.groups()
+            .is_ok_and(|sub| sub.iter().all(compact_attributes))
+}
+
+/// A new trajectory group: a copy of the template group (built at the
+/// first call) with this trajectory's header written into it.
+fn copy_template(
+    cx: Ctx,
+    template: &mut Option<Option<(File, Group)>>,
+    meta: &PartMeta,
+    traj: &Group,
+    header: &TrajectoryHeader,
+) -> Result<Group, EnsembleError> {
+    let object = group_path(header.index);
+    if template.is_none() {
+        static SERIAL: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+        let name = format!(
+            "flipswarm-template-{}-{}.h5",
+            std::process::id(),
+            SERIAL.fetch_add(1, std::sync::atomic::Ordering::Relaxed)
+        );
+        let f = File::with_options()
+            .with_fapl(|p| p.core_filebacked(false).libver_v18())
+            .create(&name)
+            .map_err(cx.h5(&object, "creating the in-memory template"))?;
+        let blank = TrajectoryHeader {
+            index: 0,
+            q0: vec![0.0; meta.n_dof],
+            v0: vec![0.0; meta.n_dof],
+            initial_state: 0,
+            seed: 0,
+        };
+        let t = create_trajectory(cx, &f, &blank, meta.n_dof, meta.n_states)?;
+        *template = Some(compact_attributes(&t).then_some((f, t)));
+    }
+    let Some(Some((_, t))) = template.as_ref() else {
+        return create_trajectory(cx, traj, header, meta.n_dof, meta.n_states);
+    };
+    t.copy_to(traj, &group_name(header.index))
+        .map_err(cx.h5(&object, "creating group"))?;
+    let g = traj
+        .group(&group_name(header.index))
+        .map_err(cx.h5(&object, "opening group"))?;
+    put_attr(cx, &g, &object, "index", &(header.index as u64))?;
+    put_attr(cx, &g, &object, "seed", &header.seed)?;
+    put_attr(
+        cx,
+        &g,
+        &object,
+        "initial_state",
+        &(header.initial_state as u64),
+    )?;
+    for (name, data) in [
+        ("initial_positions", &header.q0),
+        ("initial_velocities", &header.v0),
+    ] {
+        open_ds(cx, &g, &object, name)?
+            .write_raw(data)
+            .map_err(cx.h5(&format!("{object}/{name}"), "writing"))?;
+    }
     Ok(g)
 }
 
@@ -2243,6 +2381,42 @@ impl PartReader {
         })
     }
 
+    /// The course of trajectory `index`: status, step numbers, active
+    /// states, amplitudes, total energies and hop attempts (what a run's
+    /// summary needs; a fraction of [`PartReader::read`]'s work).
+    pub fn read_course(&self, index: usize) -> Result<TrajectoryCourse, EnsembleError> {
+        let cx = Ctx(&self.path);
+        let object = group_path(index);
+        let g = self.group(index)?;
+        let (status, _) = read_status(cx, &g, &object)?;
+        let (rows, hops) = self.counts(&g, &object)?;
+        let column = |spec: &Spec| -> Result<(Dataset, String), EnsembleError> {
+            Ok((
+                open_ds(cx, &g, &object, spec.name)?,
+                format!("{object}/{}", spec.name),
+            ))
+        };
+        let (ds, o) = column(&STEP)?;
+        let step = read_rows_from::<u64>(cx, &ds, &o, rows, None, false)?;
+        let (ds, o) = column(&ACTIVE)?;
+        let active = read_rows_from::<u32>(cx, &ds, &o, rows, None, false)?;
+        let (ds, o) = column(&AMPLITUDES)?;
+        let amplitudes =
+            read_rows_from::<Complex64>(cx, &ds, &o, rows, Some(self.meta.n_states), false)?;
+        let (ds, o) = column(&TOTAL)?;
+        let total = read_rows_from::<f64>(cx, &ds, &o, rows, None, false)?;
+        Ok(TrajectoryCourse {
+            index,
+            initial_state: get_usize(cx, &g, &object, "initial_state")?,
+            status,
+            step,
+            active,
+            amplitudes,
+            total,
+            hops: read_hops(cx, &g, &object, hops, false)?,
+        })
+    }
+
     /// The status attributes of trajectory `index` only (no datasets read).
     pub fn status(&self, index: usize) -> Result<(Status, Phase), EnsembleError> {
         let g = self.group(index)?;
@@ -2767,4 +2941,39 @@ fn verify_merged(readers: &[PartReader], out: &Path) -> Result<(), EnsembleError
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The template of a trajectory is copied only while every object keeps
+    /// its attributes in the object header: at most 8 (the default
+    /// `max_compact` of H5Pset_attr_phase_change, HDF5 reference manual,
+    /// from memory). The layout written today passes; a ninth attribute on
+    /// any object, at any depth, turns the copying off.
+    #[test]
+    fn templates_are_copied_only_with_compact_attributes() {
+        let f = File::with_options()
+            .with_fapl(|p| p.core_filebacked(false).libver_v18())
+            .create("flipswarm-unit-compact.h5")
+            .unwrap();
+        let cx = Ctx(Path::new("flipswarm-unit-compact.h5"));
+        let blank = TrajectoryHeader {
+            index: 0,
+            q0: vec![0.0; 6],
+            v0: vec![0.0; 6],
+            initial_state: 0,
+            seed: 0,
+        };
+        let t = create_trajectory(cx, &f, &blank, 6, 3).unwrap();
+        assert!(compact_attributes(&t), "today's layout must stay copyable");
+        let hops = t.group("hops").unwrap();
+        for k in 0..7 {
+            put_attr(cx, &hops, "/hops", &format!("extra{k}"), &(k as u64)).unwrap();
+        }
+        assert!(compact_attributes(&t), "description + 7 = 8 attributes");
+        put_attr(cx, &hops, "/hops", "extra7", &7u64).unwrap();
+        assert!(!compact_attributes(&t), "9 attributes on a subgroup");
+    }
 }

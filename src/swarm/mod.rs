@@ -166,6 +166,42 @@ impl Outcome {
     }
 }
 
+impl Outcome {
+    /// The outcome of a trajectory from its course in an ensemble file
+    /// (the same as [`Outcome::from_data`] of the whole trajectory).
+    pub fn from_course(c: &crate::ensemble::h5::TrajectoryCourse) -> Self {
+        let n_states = if c.step.is_empty() {
+            0
+        } else {
+            c.amplitudes.len() / c.step.len()
+        };
+        let populations = |k: usize| -> Vec<f64> {
+            c.amplitudes[k * n_states..(k + 1) * n_states]
+                .iter()
+                .map(|a| a.norm_sqr())
+                .collect()
+        };
+        let rows = c.step.len();
+        let e0 = c.total.first().copied().unwrap_or(0.0);
+        Outcome {
+            index: c.index,
+            status: c.status.clone(),
+            active: c.active.last().map_or(c.initial_state, |&a| a as usize),
+            populations: if rows == 0 {
+                Vec::new()
+            } else {
+                populations(rows - 1)
+            },
+            steps: c.step.last().copied().unwrap_or(0),
+            max_drift: c.total.iter().map(|t| (t - e0).abs()).fold(0.0, f64::max),
+            hops: c.hops.clone(),
+            series: (0..rows)
+                .map(|k| (c.active[k] as usize, populations(k)))
+                .collect(),
+        }
+    }
+}
+
 /// Collects the per-trajectory series and energy drift.
 struct Recorder {
     every: u64,
