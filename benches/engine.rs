@@ -649,15 +649,18 @@ fn main() {
         std::fs::remove_dir_all(&dir).ok();
         return;
     }
-    if std::env::args().any(|a| a == "--writer") {
-        // The writer's own CPU per row (what every row costs when all cores
-        // run trajectories and the writer takes its share from them).
-        let (create, per_row, plain) = writer_per_row(&dir, 9);
+    // The writer's own CPU per row (what every row costs when all cores run
+    // trajectories and the writer takes its share from them).
+    let writer_line = |dir: &Path| {
+        let (create, per_row, plain) = writer_per_row(dir, 9);
         println!(
             "{:<34} {per_row:>6.2} µs per row (1172 bytes), {create:.2} ms per trajectory created | reference (the same bytes to a plain file) {plain:.2} µs per row | ratio {:.1}",
             "writer: 60 coords x 5 states",
             per_row / plain
         );
+    };
+    if std::env::args().any(|a| a == "--writer") {
+        writer_line(&dir);
         std::fs::remove_dir_all(&dir).ok();
         return;
     }
@@ -671,6 +674,7 @@ fn main() {
     report("LVC 3 states x 10 modes", &lvc);
     report("LVC 20 atoms (60 modes) x 5 states", &lvc20);
     writer_throughput(&dir);
+    writer_line(&dir);
     overheads(&dir, if quick { 1 } else { 5 });
     std::fs::remove_dir_all(&dir).ok();
     let t = Instant::now();
