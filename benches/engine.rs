@@ -191,12 +191,13 @@ fn report(name: &str, cfg: &RunConfig) {
 /// Writer throughput: rows of a 20-atom (60 coordinates), 5-state system
 /// appended in batches of 100, flushed after every batch, against the same
 /// rows serialised to memory only (the reference).
-fn writer_throughput(dir: &Path) {
-    use flipswarm::ensemble::h5::PartWriter;
-    use flipswarm::ensemble::record::{PartMeta, StepRow, TrajectoryHeader};
-    use num_complex::Complex64;
-    let (n_dof, n_states, trajectories, rows_each) = (60, 5, 20, 2000);
-    let meta = PartMeta {
+/// Part-file metadata of the writer benchmarks (unit masses, one slice).
+fn bench_meta(
+    n_dof: usize,
+    n_states: usize,
+    trajectories: usize,
+) -> flipswarm::ensemble::record::PartMeta {
+    flipswarm::ensemble::record::PartMeta {
         config_toml: String::new(),
         program_version: "bench".into(),
         created: "2026-01-01T00:00:00Z".into(),
@@ -206,7 +207,15 @@ fn writer_throughput(dir: &Path) {
         slice: (0, 1),
         trajectories: (0..trajectories).collect(),
         timestep_au: 1.0,
-    };
+    }
+}
+
+fn writer_throughput(dir: &Path) {
+    use flipswarm::ensemble::h5::PartWriter;
+    use flipswarm::ensemble::record::{StepRow, TrajectoryHeader};
+    use num_complex::Complex64;
+    let (n_dof, n_states, trajectories, rows_each) = (60, 5, 20, 2000);
+    let meta = bench_meta(n_dof, n_states, trajectories);
     let row = |k: u64| StepRow {
         step: k,
         time: k as f64,
@@ -274,21 +283,11 @@ fn writer_per_row(dir: &Path, repeats: usize) -> (f64, f64, f64) {
     use flipswarm::dynamics::trajectory::{EndReason, Status};
     use flipswarm::electronic::Diagnostics;
     use flipswarm::ensemble::h5::PartWriter;
-    use flipswarm::ensemble::record::{PartMeta, RowBlock, TrajectoryHeader};
+    use flipswarm::ensemble::record::{RowBlock, TrajectoryHeader};
     use flipswarm::ensemble::runner::BLOCK_ROWS;
     use std::io::Write;
     let (n_dof, n_states, trajectories, rows_each) = (60, 5, 4, 20480);
-    let meta = PartMeta {
-        config_toml: String::new(),
-        program_version: "bench".into(),
-        created: "2026-01-01T00:00:00Z".into(),
-        n_states,
-        n_dof,
-        masses: vec![1.0; n_dof],
-        slice: (0, 1),
-        trajectories: (0..trajectories).collect(),
-        timestep_au: 1.0,
-    };
+    let meta = bench_meta(n_dof, n_states, trajectories);
     let q: Vec<f64> = (0..n_dof).map(|i| (i as f64).sin()).collect();
     let e = vec![-1.0; n_states];
     let a = vec![num_complex::Complex64::new(0.3, 0.1); n_states];
