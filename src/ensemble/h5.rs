@@ -357,6 +357,26 @@ pub struct TrajectoryData {
     pub phase: Phase,
 }
 
+impl TrajectoryData {
+    /// Its course: what [`PartReader::read_course`] reads of it.
+    pub fn course(&self) -> TrajectoryCourse {
+        TrajectoryCourse {
+            index: self.header.index,
+            initial_state: self.header.initial_state,
+            status: self.status.clone(),
+            step: self.rows.iter().map(|r| r.step).collect(),
+            active: self.rows.iter().map(|r| r.active).collect(),
+            amplitudes: self
+                .rows
+                .iter()
+                .flat_map(|r| r.amplitudes.iter().copied())
+                .collect(),
+            total: self.rows.iter().map(|r| r.total).collect(),
+            hops: self.hops.clone(),
+        }
+    }
+}
+
 /// What a run's summary needs of a trajectory, without its coordinates,
 /// velocities and diagnostics (the bulk of the file).
 #[derive(Clone, Debug, PartialEq)]

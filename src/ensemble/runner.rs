@@ -23,7 +23,7 @@
 //! its state, generator and snapshot, the continued trajectory is bit-for-bit
 //! the one that never stopped.
 
-use std::collections::{BTreeMap, HashMap};
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc::{self, RecvTimeoutError, SyncSender};
@@ -160,8 +160,6 @@ const POOL_BLOCKS: usize = 64;
 struct WriterLoop {
     pool: BlockPool,
     w: PartWriter,
-    /// Rows, hops and warnings in the file per trajectory (after the appends so far).
-    counts: HashMap<usize, Counts>,
     /// The newest checkpoint per trajectory not yet written, with the counts it covers.
     pending: BTreeMap<usize, (Box<PendingCheckpoint>, Counts)>,
     /// Checkpoints of ended trajectories, removed at the next commit.
@@ -174,24 +172,16 @@ struct WriterLoop {
 }
 
 impl WriterLoop {
+    /// Appends a batch; the counts the file then holds (the writer keeps
+    /// them after an append, so this reads nothing back).
     fn append(&mut self, b: &Batch) -> Result<Counts, String> {
-        let c = match self.counts.get(&b.index) {
-            Some(c) => *c,
-            None => self.w.all_counts(b.index).map_err(|e| e.to_string())?,
-        };
         self.dirty = true;
         if !(b.rows.is_empty() && b.hops.is_empty() && b.warnings.is_empty()) {
             self.w
                 .append_block(b.index, &b.rows, &b.hops, &b.warnings)
                 .map_err(|e| e.to_string())?;
         }
-        let c = Counts {
-            rows: c.rows + b.rows.len() as u64,
-            hops: c.hops + b.hops.len() as u64,
-            warnings: c.warnings + b.warnings.len() as u64,
-        };
-        self.counts.insert(b.index, c);
-        Ok(c)
+        self.w.all_counts(b.index).map_err(|e| e.to_string())
     }
 
     /// Return a written block's buffers to the pool.
@@ -218,7 +208,6 @@ impl WriterLoop {
         match msg {
             ToWriter::Begin(h) => {
                 self.dirty = true;
-                self.counts.remove(&h.index);
                 self.w.begin(&h).map_err(|e| e.to_string())
             }
             ToWriter::Append { .. } => unreachable!("handled above"),
@@ -345,7 +334,6 @@ fn writer_loop(
     let mut st = WriterLoop {
         pool,
         w,
-        counts: HashMap::new(),
         pending: BTreeMap::new(),
         to_remove: Vec::new(),
         dirty: false,

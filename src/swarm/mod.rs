@@ -136,39 +136,11 @@ pub struct Outcome {
 impl Outcome {
     /// The outcome of a trajectory read back from an ensemble file.
     pub fn from_data(data: &crate::ensemble::h5::TrajectoryData) -> Self {
-        let last = data.rows.last();
-        let e0 = data.rows.first().map_or(0.0, |r| r.total);
-        Outcome {
-            index: data.header.index,
-            status: data.status.clone(),
-            active: last.map_or(data.header.initial_state, |r| r.active as usize),
-            populations: last.map_or_else(Vec::new, |r| {
-                r.amplitudes.iter().map(|c| c.norm_sqr()).collect()
-            }),
-            steps: last.map_or(0, |r| r.step),
-            max_drift: data
-                .rows
-                .iter()
-                .map(|r| (r.total - e0).abs())
-                .fold(0.0, f64::max),
-            hops: data.hops.clone(),
-            series: data
-                .rows
-                .iter()
-                .map(|r| {
-                    (
-                        r.active as usize,
-                        r.amplitudes.iter().map(|c| c.norm_sqr()).collect(),
-                    )
-                })
-                .collect(),
-        }
+        Self::from_course(&data.course())
     }
-}
 
-impl Outcome {
     /// The outcome of a trajectory from its course in an ensemble file
-    /// (the same as [`Outcome::from_data`] of the whole trajectory).
+    /// ([`PartReader::read_course`](crate::ensemble::h5::PartReader::read_course)).
     pub fn from_course(c: &crate::ensemble::h5::TrajectoryCourse) -> Self {
         let n_states = if c.step.is_empty() {
             0
